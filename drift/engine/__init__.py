@@ -1,0 +1,60 @@
+"""drift's statistics engine: pure functions on arrays, batched over models (first axis = model).
+
+No I/O, no globals, no logging of data. A single model (1-D ``y``, 2-D ``X``) is a batch of one and the
+results are squeezed back to scalars / 1-D paths. Public names are re-exported here lazily so that
+importing :mod:`drift.engine` stays cheap.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from drift.engine.results import TestResult
+
+# public name -> submodule of drift.engine that defines it
+_EXPORTS: dict[str, str] = {
+    # recursive least squares, recursive residuals, CUSUM family, rolling
+    "recursive_residuals": "recursive",
+    "recursive_fit": "recursive",
+    "RecursiveFit": "recursive",
+    "cusum": "cusum",
+    "cusum_squares": "cusum",
+    "ols_cusum": "cusum",
+    "CusumResult": "cusum",
+    "rolling_coefficients": "rolling",
+    "RollingFit": "rolling",
+    # break tests and parameter stability
+    "chow": "breaks",
+    "predictive_failure": "breaks",
+    "sup_f": "breaks",
+    "nyblom": "breaks",
+    # change points
+    "change_points": "changepoints",
+    # sequential monitoring
+    "monitor": "monitor",
+    "MonitorResult": "monitor",
+    # tracking signals
+    "tracking_signal": "tracking",
+    "trigg_signal": "tracking",
+    # ARMA error prewhitening
+    "fit_error_model": "arma",
+    "prewhiten": "arma",
+    # forecast comparison and driver worth
+    "clark_west": "worth",
+    "diebold_mariano": "worth",
+    # lag profiles
+    "lag_profile": "lags",
+}
+
+__all__ = ["TestResult", *_EXPORTS]
+
+
+def __getattr__(name: str) -> Any:
+    try:
+        mod = _EXPORTS[name]
+    except KeyError:
+        raise AttributeError(f"module 'drift.engine' has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(f"drift.engine.{mod}"), name)
+    globals()[name] = value
+    return value
