@@ -1,0 +1,665 @@
+"""Configuration: YAML -> validated, typed objects, with errors that name the file, key path and line.
+
+Defaults are defined exactly once, here, on the pydantic models. :func:`load_config` is the only entry
+point; everything else receives a :class:`Config`.
+
+Time conventions
+----------------
+- A period value names the period's first day (``W``: the week starting that day) unless the source says
+  ``period_label: end``; periods are normalised to their first day at ingest.
+- ``delay`` (per driver, or per source as a default) is a publication delay such as ``2 days``: without an
+  ``available_column``, the first vintage of a value counts as available at the end of its period plus the
+  delay; a revision counts as available when it was ingested.
+"""
+
+from __future__ import annotations
+
+import difflib
+import glob as _glob
+import os
+import re
+from datetime import date, timedelta
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import pandas as pd
+import yaml
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+from drift.exceptions import ConfigError
+
+FREQUENCIES = ("D", "W", "M", "Q")
+#: periods per year, per frequency (used for the default annual season and lag ranges)
+SEASON_BY_FREQ = {"D": 7, "W": 52, "M": 12, "Q": 4}
+#: default largest lag scanned by the lag profile, per frequency
+MAX_LAG_BY_FREQ = {"D": 14, "W": 8, "M": 3, "Q": 2}
+
+_DURATION_RE = re.compile(
+    r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|secs|second|seconds|m|min|mins|minute|minutes|h|hour|hours|"
+    r"d|day|days|w|week|weeks)\s*$",
+    re.I,
+)
+_UNIT_SECONDS = {
+    "s": 1, "sec": 1, "secs": 1, "second": 1, "seconds": 1,
+    "m": 60, "min": 60, "mins": 60, "minute": 60, "minutes": 60,
+    "h": 3600, "hour": 3600, "hours": 3600,
+    "d": 86400, "day": 86400, "days": 86400,
+    "w": 604800, "week": 604800, "weeks": 604800,
+}
+
+
+def parse_duration(text: str | int | float | timedelta) -> timedelta:
+    """Parse ``"2 days"``, ``"36h"``, ``"10m"``, ``"1 week"`` (or a number of days) into a timedelta."""
+    if isinstance(text, timedelta):
+        return text
+    if isinstance(text, (int, float)) and not isinstance(text, bool):
+        return timedelta(days=float(text))
+    m = _DURATION_RE.match(str(text))
+    if not m:
+        raise ValueError(
+            f"'{text}' is not a duration; write a number and a unit, e.g. '2 days', '36 hours', '10m', '1 week'"
+        )
+    return timedelta(seconds=float(m.group(1)) * _UNIT_SECONDS[m.group(2).lower()])
+
+
+Duration = Annotated[timedelta, Field()]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+class SourceConfig(_Strict):
+    """One data source. Wide format: every column other than the period (and available/issued) columns
+    is a series named by its header. Long format: ``series_column`` and ``value_column``."""
+
+    name: str
+    kind: Literal["csv", "parquet", "sql"]
+    path: str | None = None
+    url: str | None = None
+    url_env: str | None = None
+    query: str | None = None
+    since: str | None = None
+    period_column: str
+    period_label: Literal["start", "end"] = "start"
+    period_format: str | None = None
+    series_column: str | None = None
+    value_column: str | None = None
+    available_column: str | None = None
+    issued_column: str | None = None
+    delay: timedelta = timedelta(0)
+    frequency: Literal["D", "W", "M", "Q"] | None = None
+    delimiter: str = ","
+    decimal: str = "."
+    columns: list[str] | None = None
+
+    _dur = field_validator("delay", mode="before")(lambda cls, v: parse_duration(v))
+
+    @model_validator(mode="after")
+    def _check(self) -> SourceConfig:
+        if self.kind in ("csv", "parquet") and not self.path:
+            raise ValueError(f"a {self.kind} source needs 'path' (a file or a glob, relative to the config)")
+        if self.kind == "sql":
+            if not (self.url or self.url_env):
+                raise ValueError("a sql source needs 'url' (an SQLAlchemy URL) or 'url_env' (a variable holding it)")
+            if not self.query:
+                raise ValueError("a sql source needs 'query' (it may use the bound parameter :since)")
+        if (self.series_column is None) != (self.value_column is None):
+            raise ValueError("long format needs both 'series_column' and 'value_column'")
+        return self
+
+    @property
+    def long_format(self) -> bool:
+        return self.series_column is not None
+
+
+class DriverConfig(_Strict):
+    series: str
+    lag: int = Field(1, ge=0)
+    form: Literal["lagged", "forecast", "known"] = "lagged"
+    delay: timedelta | None = None
+    unit: str | None = None
+
+    _dur = field_validator("delay", mode="before")(lambda cls, v: None if v is None else parse_duration(v))
+
+
+class ReferenceConfig(_Strict):
+    start: date
+    end: date
+
+    @model_validator(mode="after")
+    def _order(self) -> ReferenceConfig:
+        if self.end <= self.start:
+            raise ValueError(f"reference end {self.end} must come after start {self.start}")
+        return self
+
+
+class PreprocessConfig(_Strict):
+    trend: Literal["none", "linear"] = "linear"
+    season: Literal["none", "auto"] | int = "auto"
+    method: Literal["fourier", "dummies", "stl"] = "fourier"
+    harmonics: int = Field(3, ge=1, le=26)
+
+    @field_validator("season")
+    @classmethod
+    def _season(cls, v: Any) -> Any:
+        if isinstance(v, int) and v < 2:
+            raise ValueError("season must be 'none', 'auto' or a period length of at least 2")
+        return v
+
+
+_ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\))\s*$", re.I)
+
+
+class ModelConfig(_Strict):
+    name: str
+    target: str
+    frequency: Literal["D", "W", "M", "Q"]
+    drivers: list[DriverConfig] = Field(default_factory=list)
+    reference: ReferenceConfig
+    errors: str = "ols"
+    preprocess: PreprocessConfig = Field(default_factory=PreprocessConfig)
+    target_lags: list[int] = Field(default_factory=list)
+    horizon: int = Field(1, ge=1)
+    unit: str = "units"
+    monitor_start: date | None = None
+
+    @field_validator("errors")
+    @classmethod
+    def _errors(cls, v: str) -> str:
+        if not _ERR_RE.match(v):
+            raise ValueError(f"'{v}' is not an error model; use 'ols', 'ar(p)' or 'arma(p,q)', e.g. 'ar(1)'")
+        return v.strip().lower().replace(" ", "")
+
+    @field_validator("target_lags")
+    @classmethod
+    def _tl(cls, v: list[int]) -> list[int]:
+        if any(x < 1 for x in v):
+            raise ValueError("target_lags must be positive integers (lags of the target, e.g. [1])")
+        return sorted(set(v))
+
+    @model_validator(mode="after")
+    def _drivers_unique(self) -> ModelConfig:
+        seen = set()
+        for d in self.drivers:
+            if d.series in seen:
+                raise ValueError(f"driver '{d.series}' is listed twice")
+            seen.add(d.series)
+            if d.series == self.target:
+                raise ValueError(f"driver '{d.series}' is the target itself; use target_lags for its lags")
+        return self
+
+    @property
+    def error_order(self) -> tuple[int, int]:
+        """(p, q) of the error model; (0, 0) for OLS."""
+        m = _ERR_RE.match(self.errors)
+        assert m is not None  # validated above
+        if m.group(2) is not None:
+            return int(m.group(2)), 0
+        if m.group(3) is not None:
+            return int(m.group(3)), int(m.group(4))
+        return 0, 0
+
+    @property
+    def season_length(self) -> int | None:
+        if self.preprocess.season == "none":
+            return None
+        if self.preprocess.season == "auto":
+            return SEASON_BY_FREQ[self.frequency]
+        return int(self.preprocess.season)
+
+    @property
+    def series(self) -> list[str]:
+        return [self.target, *[d.series for d in self.drivers]]
+
+
+class CheckConfig(_Strict):
+    """Thresholds of the check and of the verdicts (defaults are common practice, see README)."""
+
+    level: float = Field(0.05, gt=0, lt=0.5)
+    warn_level: float = Field(0.10, gt=0, lt=0.5)
+    recent_window: int = Field(52, ge=8)
+    rolling_window: int | None = Field(None, ge=8)
+    max_lag: int | None = Field(None, ge=1)
+    feed_limit: int = Field(4, ge=1)
+    monitor_detector: Literal["csw", "mosum", "page"] = "page"
+    confirm: int = Field(1, ge=1)
+
+    @model_validator(mode="after")
+    def _levels(self) -> CheckConfig:
+        if self.warn_level < self.level:
+            raise ValueError(f"warn_level {self.warn_level} must be at least level {self.level}")
+        return self
+
+
+class EmailChannel(_Strict):
+    kind: Literal["email"]
+    name: str | None = None
+    host: str
+    port: int = Field(25, ge=1, le=65535)
+    security: Literal["none", "starttls", "ssl"] = "none"
+    sender: str
+    to: list[str]
+    username_env: str | None = None
+    password_env: str | None = None
+    timeout: float = Field(20.0, gt=0)
+
+    @field_validator("to", mode="before")
+    @classmethod
+    def _to(cls, v: Any) -> Any:
+        return [v] if isinstance(v, str) else v
+
+
+class FolderChannel(_Strict):
+    kind: Literal["folder"]
+    name: str | None = None
+    path: str
+
+
+class WebhookChannel(_Strict):
+    kind: Literal["webhook"]
+    name: str | None = None
+    url: str
+    timeout: float = Field(10.0, gt=0)
+    headers_env: dict[str, str] = Field(default_factory=dict)
+
+
+Channel = Annotated[EmailChannel | FolderChannel | WebhookChannel, Field(discriminator="kind")]
+
+
+class AlertsConfig(_Strict):
+    channels: list[Channel] = Field(default_factory=list)
+    min_action: Literal["watch", "act"] = "act"
+    retry_backoff: timedelta = timedelta(minutes=5)
+    retry_max_backoff: timedelta = timedelta(hours=6)
+    digest_path: str = "digests/"
+
+    _dur = field_validator("retry_backoff", "retry_max_backoff", mode="before")(
+        lambda cls, v: parse_duration(v)
+    )
+
+
+_EVERY_RE = re.compile(r"^\s*every\s+(\d+)\s*([smhd])\s*$", re.I)
+
+
+def parse_trigger(text: str) -> tuple[str, Any]:
+    """``"every 10m"`` -> ("interval", timedelta); a 5-field cron string -> ("cron", fields)."""
+    m = _EVERY_RE.match(text)
+    if m:
+        n = int(m.group(1))
+        if n <= 0:
+            raise ValueError(f"'{text}': the interval must be positive")
+        return "interval", timedelta(seconds=n * _UNIT_SECONDS[m.group(2).lower()])
+    fields = text.split()
+    if len(fields) != 5:
+        raise ValueError(
+            f"'{text}' is neither a cron expression (5 fields: minute hour day month weekday) "
+            "nor an interval ('every <n>s|m|h|d')"
+        )
+    from apscheduler.triggers.cron import CronTrigger
+
+    try:
+        CronTrigger.from_crontab(text, timezone="UTC")
+    except ValueError as exc:
+        raise ValueError(f"'{text}' is not a valid cron expression: {exc}") from None
+    return "cron", fields
+
+
+class ScheduleConfig(_Strict):
+    timezone: str | None = None
+    ingest: str | None = None
+    check: str | None = None
+    digest: str | None = None
+    retry: str | None = "every 10m"
+    misfire_grace: timedelta = timedelta(hours=1)
+    job_timeout: timedelta = timedelta(hours=2)
+
+    _dur = field_validator("misfire_grace", "job_timeout", mode="before")(lambda cls, v: parse_duration(v))
+
+    @field_validator("timezone")
+    @classmethod
+    def _tz(cls, v: str | None) -> str | None:
+        if v is None:
+            return v
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"'{v}' is not a known time zone; use an IANA name such as 'Europe/Lisbon'") from None
+        return v
+
+    @field_validator("ingest", "check", "digest", "retry")
+    @classmethod
+    def _trigger(cls, v: str | None) -> str | None:
+        if v is not None:
+            parse_trigger(v)
+        return v
+
+
+class Config(_Strict):
+    """The whole validated configuration. ``base_dir`` is the folder of the config file."""
+
+    store: str | None = None
+    timezone: str = "UTC"
+    sources: list[SourceConfig] = Field(default_factory=list)
+    models: list[ModelConfig] = Field(default_factory=list)
+    check: CheckConfig = Field(default_factory=CheckConfig)
+    alerts: AlertsConfig = Field(default_factory=AlertsConfig)
+    schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)
+
+    # not from YAML
+    base_dir: Path = Field(default=Path("."), exclude=True)
+    file: Path | None = Field(default=None, exclude=True)
+
+    @model_validator(mode="after")
+    def _cross(self) -> Config:
+        names = [s.name for s in self.sources]
+        dup = {n for n in names if names.count(n) > 1}
+        if dup:
+            raise ValueError(f"source names must be unique; repeated: {sorted(dup)}")
+        mnames = [m.name for m in self.models]
+        dup = {n for n in mnames if mnames.count(n) > 1}
+        if dup:
+            raise ValueError(f"model names must be unique; repeated: {sorted(dup)}")
+        return self
+
+    # ----- derived views (no state) -----
+    def store_url(self) -> str:
+        """The SQLAlchemy URL of the store; a relative SQLite path is taken relative to the config file."""
+        url = self.store or "sqlite:///drift.db"
+        if url.startswith("sqlite:///") and not url.startswith("sqlite:////"):
+            rel = url[len("sqlite:///"):]
+            if rel and rel != ":memory:":
+                return "sqlite:///" + str((self.base_dir / rel).resolve())
+        return url
+
+    def resolve(self, path: str) -> Path:
+        p = Path(os.path.expanduser(path))
+        return p if p.is_absolute() else (self.base_dir / p)
+
+    def source_files(self, source: SourceConfig) -> list[Path]:
+        assert source.path is not None
+        pattern = str(self.resolve(source.path))
+        if any(ch in source.path for ch in "*?["):
+            return [Path(p) for p in sorted(_glob.glob(pattern))]
+        return [Path(pattern)]
+
+    def model(self, name: str) -> ModelConfig:
+        for m in self.models:
+            if m.name == name:
+                return m
+        raise ConfigError(
+            f"no model named '{name}'" + _did_you_mean(name, [m.name for m in self.models]),
+            file=str(self.file) if self.file else None, key="models",
+        )
+
+    def series_frequency(self) -> dict[str, str]:
+        """Frequency of every series some model uses (the model's frequency)."""
+        out: dict[str, str] = {}
+        for m in self.models:
+            for s in m.series:
+                out.setdefault(s, m.frequency)
+        return out
+
+    def driver_delay(self, model: ModelConfig, driver: DriverConfig) -> timedelta:
+        if driver.delay is not None:
+            return driver.delay
+        return self.series_delays().get(driver.series, timedelta(0))
+
+    def series_delays(self) -> dict[str, timedelta]:
+        """Publication delay per series: the driver's own ``delay`` when a model sets one."""
+        out: dict[str, timedelta] = {}
+        for m in self.models:
+            for d in m.drivers:
+                if d.delay is not None:
+                    out[d.series] = max(out.get(d.series, timedelta(0)), d.delay)
+        return out
+
+
+# --------------------------------------------------------------------------------------------------
+# loading with located errors
+
+
+def _did_you_mean(word: str, options: list[str]) -> str:
+    close = difflib.get_close_matches(word, options, n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def _line_map(text: str) -> dict[tuple[Any, ...], int]:
+    """Map key paths (tuples of keys / list indices) to 1-based line numbers in the YAML text."""
+    out: dict[tuple[Any, ...], int] = {}
+    try:
+        root = yaml.compose(text)
+    except yaml.YAMLError:
+        return out
+
+    def walk(node: Any, path: tuple[Any, ...]) -> None:
+        out.setdefault(path, node.start_mark.line + 1)
+        if isinstance(node, yaml.MappingNode):
+            for k, v in node.value:
+                key = k.value
+                out[path + (key,)] = k.start_mark.line + 1
+                walk(v, path + (key,))
+                out[path + (key,)] = k.start_mark.line + 1
+        elif isinstance(node, yaml.SequenceNode):
+            for i, v in enumerate(node.value):
+                walk(v, path + (i,))
+
+    if root is not None:
+        walk(root, ())
+    return out
+
+
+_MODEL_FOR_LOC: dict[str, type[BaseModel]] = {}
+
+
+def _allowed_keys(loc: tuple[Any, ...]) -> list[str]:
+    """Keys allowed at the mapping that contains ``loc[-1]`` (for did-you-mean)."""
+    model: Any = Config
+    for part in loc[:-1]:
+        if isinstance(part, int):
+            continue
+        fields = getattr(model, "model_fields", {})
+        if part not in fields:
+            return []
+        ann = fields[part].annotation
+        model = _inner_model(ann, part)
+        if model is None:
+            return []
+    return [k for k in getattr(model, "model_fields", {}) if k not in ("base_dir", "file")]
+
+
+def _inner_model(ann: Any, part: Any) -> Any:
+    import typing
+
+    args = typing.get_args(ann)
+    if isinstance(ann, type) and issubclass(ann, BaseModel):
+        return ann
+    for a in args:
+        r = _inner_model(a, part)
+        if r is not None:
+            return r
+    return None
+
+
+def _key_path(loc: tuple[Any, ...]) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out
+
+
+def _clean_loc(loc: tuple[Any, ...]) -> tuple[Any, ...]:
+    # pydantic inserts discriminator tags ('email', 'folder', ...) and function names into loc
+    cleaned = []
+    for part in loc:
+        if isinstance(part, str) and (part in ("email", "folder", "webhook") or part.startswith("function-")):
+            continue
+        cleaned.append(part)
+    return tuple(cleaned)
+
+
+def load_config(path: str | os.PathLike[str], *, check_files: bool = False) -> Config:
+    """Read and validate a YAML config file.
+
+    Raises
+    ------
+    ConfigError
+        naming the file, the key path and the line, with what was expected.
+    """
+    file = Path(path)
+    if not file.exists():
+        raise ConfigError("config file not found", file=str(file))
+    try:
+        text = file.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read the config file: {exc}", file=str(file)) from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        line = mark.line + 1 if mark is not None else None
+        problem = getattr(exc, "problem", None) or str(exc)
+        raise ConfigError(f"not valid YAML: {problem}", file=str(file), line=line) from None
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise ConfigError("the config must be a mapping of keys (store, sources, models, ...)", file=str(file), line=1)
+    lines = _line_map(text)
+    try:
+        cfg = Config.model_validate({**data, "base_dir": file.resolve().parent, "file": file})
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        loc = _clean_loc(tuple(err["loc"]))
+        line = None
+        for i in range(len(loc), -1, -1):
+            if loc[:i] in lines:
+                line = lines[loc[:i]]
+                break
+        etype = err["type"]
+        if etype == "extra_forbidden":
+            allowed = _allowed_keys(loc)
+            msg = f"unknown key '{loc[-1]}'" + _did_you_mean(str(loc[-1]), allowed)
+            if allowed:
+                msg += "; allowed here: " + ", ".join(allowed)
+        elif etype == "missing":
+            msg = f"required key '{loc[-1]}' is missing"
+        elif etype == "literal_error":
+            expected = err.get("ctx", {}).get("expected", "")
+            msg = f"'{err.get('input')}' is not allowed; expected {expected}"
+        elif etype == "union_tag_invalid":
+            msg = f"'{err.get('input', {}).get('kind') if isinstance(err.get('input'), dict) else err.get('input')}' "
+            msg += "is not a channel kind; expected 'email', 'folder' or 'webhook'"
+        else:
+            msg = err["msg"].removeprefix("Value error, ")
+        if len(exc.errors()) > 1:
+            msg += f" (and {len(exc.errors()) - 1} more problem(s))"
+        raise ConfigError(msg, file=str(file), key=_key_path(loc) or None, line=line) from None
+    _check_semantics(cfg, lines)
+    if check_files:
+        for s in cfg.sources:
+            if s.kind != "sql" and not cfg.source_files(s):
+                raise ConfigError(f"no file matches '{s.path}'", file=str(file),
+                                  key=f"sources[{cfg.sources.index(s)}].path")
+    return cfg
+
+
+def _check_semantics(cfg: Config, lines: dict[tuple[Any, ...], int]) -> None:
+    """Checks that need more than one key: lags vs delays, the time zone."""
+    file = str(cfg.file) if cfg.file else None
+    for i, m in enumerate(cfg.models):
+        step = period_length(m.frequency)
+        for j, d in enumerate(m.drivers):
+            delay = d.delay or timedelta(0)
+            if d.form == "lagged":
+                # value for period t-L is usable at end(t-L) + delay; the forecast for period t is made at
+                # the start of t (= end of t-1), so we need L*step >= step + delay, i.e. L >= 1 + delay/step.
+                need = 1 + _ceil_div(delay, step)
+                if d.lag < need:
+                    key = ("models", i, "drivers", j, "lag")
+                    raise ConfigError(
+                        f"lag {d.lag} is too short for '{d.series}': with a publication delay of "
+                        f"{_fmt_td(delay)}, its value for the period {d.lag} before the forecast period does "
+                        f"not exist yet when the forecast is made, so the model would use data from the "
+                        f"future; use lag >= {need}, or form 'forecast'/'known' if a forecast or plan of it "
+                        f"is available in advance",
+                        file=file, key=_key_path(key), line=lines.get(key) or lines.get(key[:-1]),
+                    )
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+    try:
+        ZoneInfo(cfg.timezone)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(f"'{cfg.timezone}' is not a known time zone", file=file, key="timezone",
+                          line=lines.get(("timezone",))) from None
+
+
+def _ceil_div(a: timedelta, b: timedelta) -> int:
+    q, r = divmod(a, b)
+    return int(q) + (1 if r else 0)
+
+
+def _fmt_td(td: timedelta) -> str:
+    s = td.total_seconds()
+    if s == 0:
+        return "0"
+    if s % 86400 == 0:
+        d = int(s // 86400)
+        return f"{d} day" + ("s" if d != 1 else "")
+    if s % 3600 == 0:
+        return f"{int(s // 3600)} hours"
+    return str(td)
+
+
+def period_length(freq: str) -> timedelta:
+    """Nominal length of one period (for delays and lag checks; months and quarters are approximate)."""
+    return {"D": timedelta(days=1), "W": timedelta(days=7), "M": timedelta(days=28),
+            "Q": timedelta(days=89)}[freq]
+
+
+def pandas_freq(freq: str, anchor: date | None = None) -> str:
+    """pandas offset alias for a drift frequency (weeks anchored on the weekday of ``anchor``)."""
+    if freq == "W":
+        wd = (anchor or date(2021, 1, 4)).weekday()
+        return "W-" + ["SUN", "MON", "TUE", "WED", "THU", "FRI", "SAT"][(wd - 1) % 7]
+    return {"D": "D", "M": "MS", "Q": "QS"}[freq]
+
+
+def period_start(ts: pd.Timestamp | date, freq: str, *, week_anchor: int | None = None) -> pd.Timestamp:
+    """The first day of the period that contains ``ts`` (weeks start on weekday ``week_anchor``)."""
+    t = pd.Timestamp(ts).normalize()
+    if freq == "D":
+        return t
+    if freq == "W":
+        anchor = 0 if week_anchor is None else week_anchor
+        return t - pd.Timedelta(days=(t.weekday() - anchor) % 7)
+    if freq == "M":
+        return t.replace(day=1)
+    if freq == "Q":
+        return t.replace(day=1, month=3 * ((t.month - 1) // 3) + 1)
+    raise ValueError(f"frequency must be one of {FREQUENCIES}, got {freq!r}")
+
+
+def next_period(ts: pd.Timestamp, freq: str, n: int = 1) -> pd.Timestamp:
+    """Start of the period ``n`` periods after the one starting at ``ts``."""
+    t = pd.Timestamp(ts)
+    if freq == "D":
+        return t + pd.Timedelta(days=n)
+    if freq == "W":
+        return t + pd.Timedelta(days=7 * n)
+    if freq == "M":
+        return t + pd.DateOffset(months=n)
+    if freq == "Q":
+        return t + pd.DateOffset(months=3 * n)
+    raise ValueError(f"frequency must be one of {FREQUENCIES}, got {freq!r}")
