@@ -1,0 +1,464 @@
+"""Sequential monitoring of a frozen reference fit (first ``m`` observations) over later observations.
+
+The regression ``y_t = x_t' beta + u_t`` is fitted on the reference (historical) sample ``t < m`` and
+the observations ``t >= m`` are monitored one at a time. What is *measured* is the same for every
+detector: the recursive residuals that continue the least-squares recursion from the reference fit,
+
+.. math:: w_t = \\frac{y_t - x_t' b_{t-1}}{\\sqrt{1 + x_t' (X_{t-1}'X_{t-1})^{-1} x_t}},
+          \\qquad t = m+1, \\dots, T \\ (\\text{1-based}),
+
+standardised by the reference-sample :math:`\\hat\\sigma` (``RSS / (m - k)``), and their partial sums
+:math:`S_n = \\sum_{t=m+1}^{n} w_t / \\hat\\sigma`. Under the null of a stable relationship with iid
+N(0, sigma^2) errors the w_t are iid N(0, sigma^2) *whatever the regressors* (Brown, Durbin & Evans 1975),
+so ``S_n / sqrt(m)`` is a Brownian motion in monitoring time ``(n - m)/m``. *How it is monitored* is the
+detector, chosen by a short name from :data:`DETECTORS`:
+
+``"csw"``
+    Chu, Stinchcombe & White (1996): signal at the first n > m with
+    :math:`|S_n| \\ge \\sqrt{n\\,[a^2 + \\ln(n/m)]}`. The paper's monitor is exactly this recursive-residual
+    CUSUM. ``horizon=None`` uses the infinite-horizon a^2 (:mod:`drift.engine.tables.csw`; conservative
+    over any finite span); a finite ``horizon`` uses the simulated finite-horizon a^2.
+``"mosum"``
+    Moving sum of the last ``L = round(window * m)`` monitored residuals, boundary
+    :math:`c\\sqrt{L}` (constant), in the spirit of Leisch, Hornik & Kuan (2000) and Zeileis et al.
+    (2005). While fewer than L residuals have been monitored the window holds what there is (the rest
+    counts as zero, so there is no early-time singularity). Reacts to a change a window-length after it,
+    however late it comes.
+``"page"``
+    Page-type CUSUM (Fremdt 2015): :math:`\\max_{m \\le j \\le n} |S_n - S_j|` (the CUSUM restarted at
+    the most favourable point), boundary :math:`c\\sqrt{m}\\,w(\\tau)`,
+    :math:`w(\\tau) = \\sqrt{1+\\tau}\\,(\\tau/(1+\\tau))^{\\gamma}`, :math:`\\tau = (n-m)/m`.
+
+The mosum and page critical values ``c`` and the finite-horizon csw a^2 hold the false-alarm probability
+over the monitoring horizon; they were simulated by ``tools/simulate_monitoring.py`` into
+:mod:`drift.engine.tables.monitoring`.
+
+Why recursive residuals for every detector: their null distribution is exact for any design, including a
+detrended design without an intercept, whereas the frozen-fit (OLS-based) residual process of Zeileis et
+al. (2005) has a limit that depends on whether the regressors contain a constant. The price is that the
+recursion keeps learning after a change, which slightly dilutes a very persistent shift.
+
+References
+----------
+Brown, R. L., Durbin, J. and Evans, J. M. (1975). Techniques for testing the constancy of regression
+relationships over time. JRSS B 37(2), 149-192.
+Chu, C.-S. J., Stinchcombe, M. and White, H. (1996). Monitoring structural change. Econometrica 64(5),
+1045-1065.
+Leisch, F., Hornik, K. and Kuan, C.-M. (2000). Monitoring structural changes with the generalized
+fluctuation test. Econometric Theory 16(6), 835-854.
+Zeileis, A., Leisch, F., Kleiber, C. and Hornik, K. (2005). Monitoring structural change in dynamic
+econometric models. J. Applied Econometrics 20(1), 99-121.
+Fremdt, S. (2015). Page's sequential procedure for change-point detection in time series regression.
+J. Time Series Analysis 36(6).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from drift.engine.results import TestResult
+from drift.engine.tables import csw as csw_table
+from drift.engine.tables import monitoring as mon_table
+from drift.exceptions import InsufficientDataError
+from drift.typing import FloatArray, IntArray
+
+#: Levels reported in ``critical_values`` (the table keys).
+REPORTED_LEVELS = (0.10, 0.05, 0.01)
+
+
+@dataclass(frozen=True)
+class ReferenceFit:
+    """Reference-period OLS fit and the recursive residuals continued from it (batched).
+
+    Attributes
+    ----------
+    coef : (M, k) reference-period OLS coefficients (NaN for degenerate models).
+    sigma : (M,) reference residual standard deviation, ``sqrt(RSS / (m_eff - k))``.
+    nobs_reference : (M,) usable reference observations ``m_eff``.
+    m : (M,) index of the first monitored observation.
+    w : (M, T) recursive residuals for t >= m (NaN before m and at missing rows).
+    ok : (M,) False for models whose reference fit is degenerate (too few rows, collinear, zero variance).
+    """
+
+    coef: FloatArray
+    sigma: FloatArray
+    nobs_reference: IntArray
+    m: IntArray
+    w: FloatArray
+    ok: np.ndarray
+
+
+@dataclass(frozen=True)
+class MonitorResult(TestResult):
+    """Result of :func:`monitor`; extends :class:`~drift.engine.results.TestResult`.
+
+    Attributes
+    ----------
+    statistic : max over the monitored span of ``|path| / boundary`` (>= 1 means an alarm).
+    pvalue : csw: infinite-horizon p-value (closed form) or the simulated finite-horizon one; mosum/page:
+        simulated, interpolated in the horizon and clipped to [0.005, 0.5]. NaN for degenerate models.
+    path : (M, T) detector path aligned to the input index, NaN before ``m`` (csw: S_n; mosum: window
+        sum; page: max_j |S_n - S_j|; all in units of sigma-hat).
+    boundary : (M, T) boundary aligned to the input index, NaN before ``m`` and beyond the horizon.
+    alarm_index : (M,) first index with ``|path| >= boundary``; -1 if none.
+    critical_value : the constant used (csw: a^2; mosum/page: c), float or (M,).
+    reference : the :class:`ReferenceFit` (coefficients, sigma, recursive residuals).
+    """
+
+    path: Any = None
+    boundary: Any = None
+    alarm_index: Any = None
+    critical_value: Any = None
+    reference: Any = None
+
+
+# --------------------------------------------------------------------------------------------- inputs
+def _as_batch(y: Any, X: Any) -> tuple[FloatArray, FloatArray, bool]:
+    y = np.asarray(y, dtype=float)
+    X = np.asarray(X, dtype=float)
+    if y.ndim == 1:
+        squeeze = True
+        y = y[None, :]
+        if X.ndim == 1:
+            X = X[:, None]
+        if X.ndim != 2:
+            raise ValueError(f"X must be 2-D (T, k) for 1-D y, got shape {X.shape}")
+        X = X[None]
+    elif y.ndim == 2:
+        squeeze = False
+        if X.ndim == 2:  # shared design
+            X = np.broadcast_to(X, (y.shape[0], *X.shape))
+        if X.ndim != 3:
+            raise ValueError(f"X must be 3-D (M, T, k) or 2-D (T, k) for 2-D y, got shape {X.shape}")
+    else:
+        raise ValueError(f"y must be 1-D (T,) or 2-D (M, T), got shape {y.shape}")
+    if X.shape[:2] != y.shape:
+        raise ValueError(f"X shape {X.shape} does not match y shape {y.shape} (need (M, T, k))")
+    if X.shape[2] < 1:
+        raise ValueError("X needs at least one column")
+    return y, X, squeeze
+
+
+def _as_m(m: Any, n_models: int, T: int) -> IntArray:
+    arr = np.asarray(m)
+    if arr.dtype.kind not in "iu" and not (arr.dtype.kind == "f" and np.all(np.mod(arr, 1) == 0)):
+        raise TypeError(f"m must be an integer or an (M,) integer array, got {m!r}")
+    arr = np.broadcast_to(arr.astype(np.int64), (n_models,)).copy()
+    if np.any(arr < 1) or np.any(arr >= T):
+        raise InsufficientDataError("monitoring (reference size m must leave observations to monitor)",
+                                    int(arr.max()) + 1, T)
+    return arr
+
+
+# ---------------------------------------------------------------------------------- what is measured
+def reference_fit(y: Any, X: Any, m: Any) -> ReferenceFit:
+    """Fit OLS on the first ``m`` rows and continue the recursive residuals over the rest (batched).
+
+    Parameters
+    ----------
+    y : (T,) or (M, T) target.
+    X : (T, k), or (M, T, k) regressors (a 2-D X with 2-D y is shared by all models).
+    m : int or (M,) ints; rows ``t < m`` form the reference sample.
+
+    Returns
+    -------
+    ReferenceFit
+
+    Raises
+    ------
+    InsufficientDataError : ``m`` leaves nothing to monitor; or, for a single model, its reference sample
+        cannot support the fit (fewer than k + 1 complete rows, collinear regressors, zero residual
+        variance). In a batch such models are flagged in ``ok`` instead, so one bad model does not stop a
+        screening run.
+
+    Notes
+    -----
+    Rows with any NaN in y or x are skipped: excluded from the reference fit and, in the monitored span,
+    neither give a residual nor update the recursion. The recursion is one loop over time with numpy
+    operations vectorised over models: ``f = 1 + x'Px``, ``e = y - x'b``, ``w = e / sqrt(f)``,
+    ``b += Px e / f``, ``P -= Px x'P / f``.
+    """
+    yb, Xb, _ = _as_batch(y, X)
+    return _reference_fit(yb, Xb, _as_m(m, yb.shape[0], yb.shape[1]))
+
+
+def _reference_fit(y: FloatArray, X: FloatArray, m: IntArray) -> ReferenceFit:
+    M, T, k = X.shape
+    valid = np.isfinite(y) & np.all(np.isfinite(X), axis=2)
+    tt = np.arange(T)
+    ref = valid & (tt[None, :] < m[:, None])
+    n_ref = ref.sum(axis=1)
+    Xr = np.where(ref[:, :, None], X, 0.0)
+    yr = np.where(ref, y, 0.0)
+    xtx = np.einsum("mti,mtj->mij", Xr, Xr)
+    xty = np.einsum("mti,mt->mi", Xr, yr)
+    # Rank check relative to the scale of the design (collinear or empty reference samples).
+    sv = np.linalg.svd(xtx, compute_uv=False)
+    full_rank = sv[:, -1] > sv[:, 0] * (k * np.finfo(float).eps * 1e4)
+    ok = (n_ref > k) & full_rank & (sv[:, 0] > 0)
+    eye = np.broadcast_to(np.eye(k), (M, k, k))
+    safe = np.where(ok[:, None, None], xtx, eye)
+    P = np.linalg.inv(safe)
+    b = np.einsum("mij,mj->mi", P, np.where(ok[:, None], xty, 0.0))
+    resid = np.where(ref, y - np.einsum("mtk,mk->mt", np.where(ref[:, :, None], X, 0.0), b), 0.0)
+    dof = np.maximum(n_ref - k, 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sigma = np.sqrt(np.einsum("mt,mt->m", resid, resid) / dof)
+        scale = np.sqrt(np.einsum("mt,mt->m", yr, yr) / np.maximum(n_ref, 1))
+    # Zero (or numerically zero) residual variance: a perfect fit cannot standardise anything.
+    ok &= sigma > scale * 1e-10
+    ok &= sigma > 0
+
+    b_ref = b.copy()
+    w = np.full((M, T), np.nan)
+    for t in range(int(m.min()), T):
+        active = ok & valid[:, t] & (t >= m)
+        if not active.any():
+            continue
+        x = np.where(active[:, None], X[:, t], 0.0)
+        yt = np.where(active, y[:, t], 0.0)
+        Px = np.einsum("mij,mj->mi", P, x)
+        f = 1.0 + np.einsum("mi,mi->m", x, Px)
+        e = yt - np.einsum("mi,mi->m", x, b)
+        w[:, t] = np.where(active, e / np.sqrt(f), np.nan)
+        g = np.where(active, 1.0 / f, 0.0)
+        b = b + Px * (e * g)[:, None]
+        P = P - np.einsum("mi,mj->mij", Px, Px * g[:, None])
+    coef = np.where(ok[:, None], b_ref, np.nan)
+    return ReferenceFit(coef=coef, sigma=np.where(ok, sigma, np.nan), nobs_reference=n_ref.astype(np.int64),
+                        m=m, w=w, ok=ok)
+
+
+# ------------------------------------------------------------------------ how it is monitored (registry)
+@dataclass(frozen=True)
+class _Detector:
+    """A detector: turns the standardised partial sums into a path and a boundary."""
+
+    name: str
+    method: str
+    run: Callable[..., tuple[FloatArray, FloatArray, FloatArray, FloatArray, dict[float, Any], dict]]
+
+
+def _monitored_time(m: IntArray, T: int) -> tuple[FloatArray, np.ndarray]:
+    tt = np.arange(T)[None, :]
+    k = (tt - m[:, None] + 1).astype(float)  # monitored steps so far (1 at t = m)
+    return k, k >= 1
+
+
+def _horizon_array(horizon: float | None, m: IntArray, T: int) -> FloatArray:
+    if horizon is None:
+        return (T - m) / m
+    h = float(horizon)
+    if not np.isfinite(h) or h <= 0:
+        raise ValueError(f"horizon must be a positive ratio (T_max - m)/m, got {horizon!r}")
+    return np.full(m.shape, h)
+
+
+def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict) -> tuple:
+    M, T = S.shape
+    k, mon = _monitored_time(m, T)
+    n = k + m[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_ratio = np.where(mon, np.log(np.where(mon, n, 1.0) / m[:, None]), np.nan)
+        excess = np.where(mon, S * S / n - log_ratio, np.nan)  # a^2 at which the boundary is touched
+    A = _nanmax(excess)
+    if horizon is None or horizon > mon_table.HORIZONS[-1]:
+        # Infinite-horizon constant and closed-form p-value (conservative for any finite span).
+        cvs = {lvl: csw_table.lookup(lvl) for lvl in REPORTED_LEVELS}
+        a2 = np.full(M, csw_table.lookup(level))
+        with np.errstate(invalid="ignore"):
+            pval = np.where(np.isfinite(A), csw_table.crossing_probability(np.nan_to_num(A)), np.nan)
+        params["calibration"] = "infinite horizon (CSW 1996 eq. 3.5)"
+        end = np.full(M, T)
+    else:
+        hz = np.full(M, float(horizon))
+        a2 = mon_table.critical_value("csw", 0.0, hz, level)
+        cvs = {lvl: mon_table.critical_value("csw", 0.0, hz, lvl) for lvl in REPORTED_LEVELS}
+        pval = mon_table.pvalue("csw", 0.0, hz, A)
+        params["calibration"] = f"finite horizon {horizon} (simulated)"
+        end = m + np.ceil(hz * m).astype(np.int64)
+    with np.errstate(invalid="ignore"):
+        boundary = np.where(mon, np.sqrt(n * (a2[:, None] + log_ratio)), np.nan)
+    boundary = _truncate(boundary, end)
+    path = np.where(mon, S, np.nan)
+    return path, boundary, a2, pval, cvs, params
+
+
+def _mosum(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
+           window: float = 0.25) -> tuple:
+    M, T = S.shape
+    k, mon = _monitored_time(m, T)
+    hz = _horizon_array(horizon, m, T)
+    L = np.maximum(np.round(window * m).astype(np.int64), 1)
+    tt = np.arange(T)[None, :]
+    lag_idx = tt - L[:, None]
+    S0 = np.where(mon, S, 0.0)
+    lagged = np.take_along_axis(S0, np.clip(lag_idx, 0, T - 1), axis=1)
+    lagged = np.where(lag_idx >= m[:, None], lagged, 0.0)
+    path = np.where(mon, S0 - lagged, np.nan)
+    c = mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), level)
+    cvs = {lvl: mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), lvl)
+           for lvl in REPORTED_LEVELS}
+    boundary = np.where(mon, (c * np.sqrt(L))[:, None] * np.ones((1, T)), np.nan)
+    boundary = _truncate(boundary, m + np.ceil(hz * m).astype(np.int64))
+    ratio = _nanmax(np.abs(path) / boundary)
+    pval = mon_table.pvalue("mosum", window, np.maximum(hz, 1e-9), ratio * c)
+    params.update(window=window, window_length=L if L.size > 1 else int(L[0]))
+    return path, boundary, c, pval, cvs, params
+
+
+def _page(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
+          gamma: float = 0.0) -> tuple:
+    M, T = S.shape
+    k, mon = _monitored_time(m, T)
+    hz = _horizon_array(horizon, m, T)
+    S0 = np.where(mon, S, 0.0)  # S = 0 up to the start of monitoring, so j = m is included
+    path = np.where(mon, np.maximum(S0 - np.minimum.accumulate(S0, axis=1),
+                                    np.maximum.accumulate(S0, axis=1) - S0), np.nan)
+    tau = np.where(mon, k, 1.0) / m[:, None]
+    weight = np.sqrt(1.0 + tau) * (tau / (1.0 + tau)) ** gamma
+    c = mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), level)
+    cvs = {lvl: mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), lvl)
+           for lvl in REPORTED_LEVELS}
+    boundary = np.where(mon, c[:, None] * np.sqrt(m)[:, None] * weight, np.nan)
+    boundary = _truncate(boundary, m + np.ceil(hz * m).astype(np.int64))
+    ratio = _nanmax(np.abs(path) / boundary)
+    pval = mon_table.pvalue("page", gamma, np.maximum(hz, 1e-9), ratio * c)
+    params.update(gamma=gamma)
+    return path, boundary, c, pval, cvs, params
+
+
+def _truncate(boundary: FloatArray, end: IntArray) -> FloatArray:
+    """NaN the boundary from index ``end`` on (beyond the calibrated horizon)."""
+    tt = np.arange(boundary.shape[1])[None, :]
+    return np.where(tt < end[:, None], boundary, np.nan)
+
+
+def _nanmax(a: FloatArray) -> FloatArray:
+    finite = np.isfinite(a)
+    out = np.max(np.where(finite, a, -np.inf), axis=1)
+    return np.where(finite.any(axis=1), out, np.nan)
+
+
+#: Detector registry: the one place mapping config names to code.
+DETECTORS: dict[str, _Detector] = {
+    "csw": _Detector("csw", "CUSUM monitoring (Chu, Stinchcombe & White 1996)", _csw),
+    "mosum": _Detector("mosum", "MOSUM monitoring of recursive residuals", _mosum),
+    "page": _Detector("page", "Page-type CUSUM monitoring (after Fremdt 2015)", _page),
+}
+
+
+def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: str = "csw",
+            level: float = 0.05, window: float = 0.25, gamma: float = 0.0) -> MonitorResult:
+    """Monitor observations ``t >= m`` against the fit frozen on the reference rows ``t < m``.
+
+    Parameters
+    ----------
+    y : (T,) or (M, T) target (e.g. after the two-step trend/season filter).
+    X : (T, k) or (M, T, k) regressors; a 2-D X with 2-D y is shared by all models.
+    m : int or (M,) ints: size of the reference sample (rows ``0 .. m-1``); monitoring starts at row m.
+    horizon : monitoring horizon as the ratio ``(T_max - m) / m``. mosum/page: None means the span of the
+        data, ``(T - m)/m`` per model; values beyond the simulated table (6) raise ValueError, values
+        below its first entry (0.25) use that entry (conservative). csw: None means the infinite-horizon
+        constant of the paper (and its closed-form p-value); a finite value uses the simulated
+        finite-horizon a^2 (beyond the table: falls back to the infinite-horizon constant). The boundary
+        is NaN beyond a finite horizon: no alarm is raised there.
+    detector : one of ``DETECTORS``: "csw", "mosum", "page".
+    level : false-alarm probability, one of 0.5, 0.3, 0.2, 0.15, 0.1, 0.075, 0.05, 0.025, 0.01, 0.005
+        for mosum/page and finite-horizon csw; any value in (0, 1) for infinite-horizon csw.
+    window : mosum window as a fraction h of m (tabulated: 0.1, 0.25, 0.5, 1.0).
+    gamma : page weight exponent (tabulated: 0.0, 0.25, 0.45); larger reacts faster early on.
+
+    Returns
+    -------
+    MonitorResult
+        ``statistic`` (max |path|/boundary), ``pvalue``, ``path``, ``boundary``, ``alarm_index``,
+        ``critical_value``, ``critical_values`` (levels 0.10/0.05/0.01), ``nobs`` (monitored residuals),
+        ``method``, ``params``. Squeezed to scalars / 1-D paths for a single model.
+
+    Raises
+    ------
+    ValueError, TypeError : unknown detector, bad level, horizon, window, gamma or array shapes.
+    InsufficientDataError : nothing to monitor, or a single model whose reference fit is degenerate
+        (see :func:`reference_fit`). Degenerate models in a batch get NaN statistics and alarm -1.
+
+    Notes
+    -----
+    With :math:`S_n = \\sum_{t=m+1}^n w_t/\\hat\\sigma` (n = 1-based count; input row n-1):
+    csw path :math:`S_n`, boundary :math:`\\sqrt{n[a^2 + \\ln(n/m)]}`; mosum path
+    :math:`S_n - S_{n-L}`, boundary :math:`c\\sqrt{L}`; page path :math:`\\max_{m\\le j\\le n}|S_n - S_j|`,
+    boundary :math:`c\\sqrt{m}\\sqrt{1+\\tau}(\\tau/(1+\\tau))^\\gamma`. Errors are assumed serially
+    uncorrelated; with ARMA errors prewhiten first (:func:`drift.engine.arma.prewhiten`). The constants
+    ignore the estimation of sigma (asymptotic); with a small m - k the sizes run slightly above nominal,
+    offset by the conservative discretisation of the simulated tables.
+
+    References
+    ----------
+    See the module docstring.
+    """
+    if not isinstance(detector, str) or detector not in DETECTORS:
+        raise ValueError(f"detector must be one of {sorted(DETECTORS)}, got {detector!r}")
+    if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
+        raise ValueError(f"level must be in (0, 1), got {level!r}")
+    if detector != "csw" or horizon is not None:
+        if not any(abs(level - p) < 1e-12 for p in mon_table.TAIL_PROBS):
+            raise ValueError(f"level must be one of {mon_table.TAIL_PROBS} for this detector, got {level!r}")
+    if detector == "mosum" and not any(abs(window - h) < 1e-12 for h in mon_table.MOSUM):
+        raise ValueError(f"window must be one of {sorted(mon_table.MOSUM)}, got {window!r}")
+    if detector == "page" and not any(abs(gamma - g) < 1e-12 for g in mon_table.PAGE):
+        raise ValueError(f"gamma must be one of {sorted(mon_table.PAGE)}, got {gamma!r}")
+    if horizon is not None and (not np.isfinite(float(horizon)) or float(horizon) <= 0):
+        raise ValueError(f"horizon must be a positive ratio (T_max - m)/m, got {horizon!r}")
+
+    yb, Xb, squeeze = _as_batch(y, X)
+    M, T = yb.shape
+    mb = _as_m(m, M, T)
+    if detector != "csw" and horizon is None and np.any((T - mb) / mb > mon_table.HORIZONS[-1] + 1e-12):
+        raise ValueError(f"the data span a horizon beyond the simulated table ({mon_table.HORIZONS[-1]}); "
+                         "pass a smaller m or a shorter series")
+    fit = _reference_fit(yb, Xb, mb)
+    if squeeze and not bool(fit.ok[0]):
+        raise InsufficientDataError("monitoring reference fit", Xb.shape[2] + 1, int(fit.nobs_reference[0]),
+                                    hint="the reference rows are too few, collinear or fit exactly")
+    with np.errstate(invalid="ignore"):
+        z = fit.w / fit.sigma[:, None]
+    S = np.cumsum(np.where(np.isfinite(z), z, 0.0), axis=1)
+    det = DETECTORS[detector]
+    params: dict[str, Any] = {"detector": detector, "level": level, "horizon": horizon,
+                              "m": int(mb[0]) if np.all(mb == mb[0]) else mb}
+    extra = {"window": window} if detector == "mosum" else {"gamma": gamma} if detector == "page" else {}
+    path, boundary, cv, pval, cvs, params = det.run(S, mb, horizon, level, params, **extra)
+
+    bad = ~fit.ok
+    path = np.where(bad[:, None], np.nan, path)
+    boundary = np.where(bad[:, None], np.nan, boundary)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.abs(path) / boundary
+    statistic = _nanmax(ratio)
+    hit = np.where(np.isfinite(ratio), ratio >= 1.0, False)
+    alarm = np.where(hit.any(axis=1), hit.argmax(axis=1), -1).astype(np.int64)
+    pval = np.where(bad, np.nan, np.asarray(pval, dtype=float))
+    nobs = np.isfinite(fit.w).sum(axis=1)
+    params["degenerate_models"] = int(bad.sum())
+
+    def sq(a: Any) -> Any:
+        a = np.asarray(a)
+        if squeeze:
+            return a[0].item() if a.ndim == 1 else a[0]
+        return a
+
+    cv_arr = np.broadcast_to(np.asarray(cv, dtype=float), (M,))
+    cvs_out = {lvl: (sq(np.broadcast_to(np.asarray(v, dtype=float), (M,))) if squeeze or np.ndim(v) else v)
+               for lvl, v in cvs.items()}
+    return MonitorResult(
+        statistic=sq(statistic), pvalue=sq(pval), critical_values=cvs_out, nobs=sq(nobs),
+        null="the reference-period regression still holds over the monitored span",
+        alternative="the coefficients or the error variance changed after the reference period",
+        method=det.method, params=params,
+        path=sq(path), boundary=sq(boundary), alarm_index=sq(alarm), critical_value=sq(cv_arr),
+        reference=fit,
+    )
