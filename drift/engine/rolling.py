@@ -1,0 +1,219 @@
+"""Rolling-window OLS coefficients and standard errors, batched over models, without a per-window refit.
+
+Every window's normal equations come from differenced cumulative sums of cross-products, computed in a
+well-conditioned basis: the regressors are first whitened by each model's full-sample QR factor and the
+target is replaced by its full-sample OLS residual. Both are exact reparametrisations, so each window's
+fit is recovered exactly, while the cross-products stay of order one and the residual sum of squares
+suffers far less cancellation than raw ``y'y - b'X'y``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from drift.engine.recursive import as_batch
+from drift.exceptions import InsufficientDataError
+from drift.typing import FloatArray, IntArray
+
+__all__ = ["RollingFit", "rolling_coefficients"]
+
+# models processed together: bounds the (models x time x cross-product) work arrays
+_CHUNK = 1024
+# relative tolerances: full-sample |R_jj| against column norm; window Cholesky pivot against A_jj
+_FULL_RANK_TOL = 1e-10
+_WINDOW_PIVOT_TOL = 1e-10
+
+
+@dataclass(frozen=True)
+class RollingFit:
+    """Output of :func:`rolling_coefficients` (squeezed to one model for unbatched input).
+
+    Attributes
+    ----------
+    coef : ndarray (M, n, k)
+        OLS coefficients of the window ending at ``t`` (rows ``t - window + 1 .. t``); NaN for the first
+        ``window - 1`` positions, for windows containing a NaN row, and for rank-deficient windows.
+    se : ndarray (M, n, k)
+        Conventional OLS standard errors ``s * sqrt(diag((X'X)^{-1}))``, ``s^2 = RSS / (window - k)``;
+        NaN where ``coef`` is, and everywhere when ``window == k``.
+    nobs : ndarray (M, n) of int
+        Usable rows in the window ending at ``t`` (0 for the first ``window - 1`` positions).
+    window : int
+    """
+
+    coef: FloatArray
+    se: FloatArray
+    nobs: IntArray
+    window: int
+
+
+def _triu_inv(R: FloatArray) -> FloatArray:
+    """Inverse of (..., k, k) upper-triangular matrices by back substitution."""
+    k = R.shape[-1]
+    Ri = np.zeros_like(R)
+    for i in range(k - 1, -1, -1):
+        row = np.zeros(R.shape[:-2] + (k,))
+        row[..., i] = 1.0
+        if i + 1 < k:
+            row -= np.einsum("...j,...jl->...l", R[..., i, i + 1:], Ri[..., i + 1:, :])
+        Ri[..., i, :] = row / R[..., i, i, None]
+    return Ri
+
+
+def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: FloatArray) -> IntArray:
+    """Fit one chunk of models; writes into ``coef`` and ``se`` laid out (k, M_chunk, n), already NaN."""
+    M, n, k = X.shape
+    valid = np.isfinite(y) & np.isfinite(X).all(axis=2)
+    Xz = np.where(valid[:, :, None], X, 0.0)
+    yz = np.where(valid, y, 0.0)
+    cnt = np.concatenate([np.zeros((M, 1), dtype=np.int64), np.cumsum(valid, axis=1)], axis=1)
+    nobs = np.zeros((M, n), dtype=np.int64)
+    nobs[:, window - 1:] = cnt[:, window:] - cnt[:, : n - window + 1]
+
+    # full-sample whitening: X = Q R (usable rows), b0 the full-sample OLS fit
+    Q, Rf = np.linalg.qr(Xz)
+    dR = np.abs(np.diagonal(Rf, axis1=1, axis2=2))
+    cn = np.sqrt((Xz * Xz).sum(axis=1))
+    ok_model = (dR > _FULL_RANK_TOL * cn).all(axis=1)
+    if not ok_model.any():
+        return nobs
+    Rsafe = np.where(ok_model[:, None, None], Rf, np.eye(k))
+    Rinv = _triu_inv(Rsafe)
+    z = np.einsum("mtk,mt->mk", Q, yz)
+    b0 = np.einsum("mij,mj->mi", Rinv, z)
+    e = yz - np.einsum("mtk,mk->mt", Q, z)  # full-sample residual (zero on skipped rows)
+
+    iu, ju = np.triu_indices(k)
+    npair = iu.size
+    ends = n - window + 1
+    B = M * ends
+    # (cross-product, model, time) layout: every operation below runs on contiguous vectors
+    Qt = np.ascontiguousarray(Q.transpose(2, 0, 1))  # (k, M, n)
+    prod = np.empty((npair + k + 1, M, n + 1))
+    prod[:, :, 0] = 0.0
+    for p, (i, j) in enumerate(zip(iu, ju)):
+        np.multiply(Qt[i], Qt[j], out=prod[p, :, 1:])
+    for i in range(k):
+        np.multiply(Qt[i], e, out=prod[npair + i, :, 1:])
+    np.multiply(e, e, out=prod[-1, :, 1:])
+    np.cumsum(prod, axis=2, out=prod)
+    flat = (prod[:, :, window:] - prod[:, :, :ends]).reshape(-1, B)  # window sums, (P, M * ends)
+    del prod
+    pair = {(int(i), int(j)): flat[p] for p, (i, j) in enumerate(zip(iu, ju))}
+    A = [[pair[(min(i, j), max(i, j))] for j in range(k)] for i in range(k)]
+    c = [flat[npair + i] for i in range(k)]
+    q = flat[-1]
+    good = ((nobs[:, window - 1:] == window) & ok_model[:, None]).reshape(B)
+
+    # Cholesky A = L L', vectorised over (model, window); a pivot below tolerance marks rank deficiency
+    L: list[list[FloatArray]] = [[np.zeros(0)] * k for _ in range(k)]
+    for j in range(k):
+        dj = A[j][j] - sum((L[j][m] ** 2 for m in range(j)), np.zeros(B))
+        bad = ~(dj > _WINDOW_PIVOT_TOL * A[j][j])
+        good &= ~bad
+        L[j][j] = np.sqrt(np.where(bad, 1.0, dj))
+        for i in range(j + 1, k):
+            acc = A[i][j] - sum((L[i][m] * L[j][m] for m in range(j)), np.zeros(B))
+            L[i][j] = acc / L[j][j]
+    # Li = L^{-1} (lower triangular)
+    Li: list[list[FloatArray]] = [[np.zeros(0)] * k for _ in range(k)]
+    for i in range(k):
+        Li[i][i] = 1.0 / L[i][i]
+        for j in range(i):
+            acc = sum((L[i][m] * Li[m][j] for m in range(j, i)), np.zeros(B))
+            Li[i][j] = -acc * Li[i][i]
+    g = [sum((Li[i][j] * c[j] for j in range(i + 1)), np.zeros(B)) for i in range(k)]  # L^{-1} c
+    beta = [sum((Li[i][j] * g[i] for i in range(j, k)), np.zeros(B)) for j in range(k)]  # A^{-1} c
+    rss = np.maximum(q - sum((gi * gi for gi in g), np.zeros(B)), 0.0)
+    Rr = [[np.repeat(Rinv[:, i, j], ends) if j >= i else None for j in range(k)] for i in range(k)]
+    b0r = [np.repeat(b0[:, i], ends) for i in range(k)]
+    dof = window - k
+    s_w = np.sqrt(rss / dof) if dof > 0 else np.full(B, np.nan)
+    bout = np.empty((k, B))
+    seout = np.empty((k, B))
+    for i in range(k):
+        bout[i] = b0r[i] + sum((Rr[i][j] * beta[j] for j in range(i, k)), np.zeros(B))
+        # cov / s^2 = G G' with G = R^{-1} L^{-T}: G[i, l] = sum_{j >= i} Rinv[i, j] Li[l, j]
+        v = np.zeros(B)
+        for lcol in range(i, k):
+            gil = sum((Rr[i][j] * Li[lcol][j] for j in range(i, lcol + 1)), np.zeros(B))
+            v += gil * gil
+        seout[i] = s_w * np.sqrt(v)
+    np.copyto(bout, np.nan, where=~good)
+    np.copyto(seout, np.nan, where=~good)
+    coef[:, :, window - 1:] = bout.reshape(k, M, ends)
+    se[:, :, window - 1:] = seout.reshape(k, M, ends)
+    return nobs
+
+
+def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
+    r"""OLS coefficients and standard errors over a rolling window, batched over models.
+
+    Parameters
+    ----------
+    y : array_like, (n,) or (M, n)
+        Target; NaN marks a missing value.
+    X : array_like, (n, k) or (M, n, k)
+        Regressors; a window that contains a row with NaN in ``y`` or ``X`` gives NaN.
+    window : int
+        Window length, ``k <= window <= n``.
+
+    Returns
+    -------
+    RollingFit
+        ``coef``, ``se`` (M, n, k) and ``nobs`` (M, n), aligned so that position ``t`` holds the fit on
+        rows ``t - window + 1 .. t`` (statsmodels ``RollingOLS`` convention).
+
+    Raises
+    ------
+    TypeError
+        ``window`` not an int.
+    ValueError
+        ``window < k``, bad shapes or infinite values.
+    InsufficientDataError
+        ``window > n``.
+
+    Notes
+    -----
+    For each model, with usable rows :math:`X = QR` (thin QR) and :math:`b_0 = R^{-1}Q'y`,
+    :math:`e = y - Xb_0`, the window fit is
+
+    .. math:: A_t = \sum_{s \in W_t} q_s q_s', \quad c_t = \sum_{s \in W_t} q_s e_s, \quad
+              b_t = b_0 + R^{-1} A_t^{-1} c_t, \quad \mathrm{RSS}_t = \sum_{s\in W_t} e_s^2 - c_t'A_t^{-1}c_t,
+
+    :math:`\widehat{\mathrm{cov}}(b_t) = s_t^2 R^{-1}A_t^{-1}R^{-T}`, :math:`s_t^2 = \mathrm{RSS}_t/(w-k)`.
+    The window sums are differences of cumulative sums over time (no per-window refit); :math:`A_t` is
+    factorised by a Cholesky decomposition vectorised over all models and windows. A window is treated
+    as rank deficient when a Cholesky pivot falls below ``1e-10`` times the corresponding diagonal of
+    :math:`A_t` (the pivot ratio is :math:`1 - R^2` of that column on the previous ones); a model whose
+    full sample is rank deficient gives NaN throughout. When the window fit is far better than the
+    full-sample fit (e.g. noise-free segments), :math:`\mathrm{RSS}_t` loses relative accuracy
+    (it is a difference of two sums); coefficients are unaffected.
+
+    References
+    ----------
+    Golub, G. H. & Van Loan, C. F. (2013). Matrix Computations, 4th ed., sections 4.2 and 5.2.
+    """
+    if isinstance(window, bool) or not isinstance(window, (int, np.integer)):
+        raise TypeError(f"window must be an int; got {type(window).__name__}")
+    ya, Xa, batched = as_batch(y, X)
+    M, n, k = Xa.shape
+    w = int(window)
+    if w < k:
+        raise ValueError(f"window must be at least the number of regressors k={k}; got {w}")
+    if w > n:
+        raise InsufficientDataError("rolling coefficients", w, n, hint=f"window={w} exceeds the series length")
+    # regressor-major buffers, returned as (M, n, k) views (a transposed copy would cost more than the fit)
+    coef_k = np.full((k, M, n), np.nan)
+    se_k = np.full((k, M, n), np.nan)
+    nobs = np.empty((M, n), dtype=np.int64)
+    for lo in range(0, M, _CHUNK):
+        hi = min(M, lo + _CHUNK)
+        nobs[lo:hi] = _chunk(ya[lo:hi], Xa[lo:hi], w, coef_k[:, lo:hi], se_k[:, lo:hi])
+    coef = coef_k.transpose(1, 2, 0)
+    se = se_k.transpose(1, 2, 0)
+    if not batched:
+        return RollingFit(coef[0], se[0], nobs[0], w)
+    return RollingFit(coef, se, nobs, w)
