@@ -15,7 +15,8 @@ Search and cost
 ---------------
 ``cost="linear"``: segment cost is the RSS of the OLS fit of y on X within the segment (``X=None``
 means a constant only). ``cost="l2"``: segment cost is the sum of squared deviations from the segment
-mean of a 1-D series (e.g. recursive residuals). ``ruptures`` is always called with ``jump=1`` (its
+mean of a 1-D series (e.g. recursive residuals). The linear cost is computed from explicit residuals
+(ruptures' ``CostLinear`` reports 0 for rank-deficient segments). ``ruptures`` is always called with ``jump=1`` (its
 default ``jump=5`` only allows breaks at multiples of 5).
 
 Penalty ``"bic"`` (per change, on the RSS scale): ``(p + 1) * sigma2 * ln(n)`` with p the number of
@@ -115,6 +116,28 @@ def _robust_sigma2(e: FloatArray, p: int) -> float:
     return float(e @ e) / dof
 
 
+class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
+    """Regression RSS of a segment, computed from explicit residuals.
+
+    ruptures' own ``CostLinear`` takes the RSS from ``numpy.linalg.lstsq``, which returns an empty
+    residual (cost 0) whenever the segment's regressors are rank deficient; this cost does not.
+    """
+
+    model = "linear_rss"
+    min_size = 2
+
+    def fit(self, signal: FloatArray) -> "_LinearRSS":
+        self.signal = signal[:, 0]
+        self.covar = signal[:, 1:]
+        return self
+
+    def error(self, start: int, end: int) -> float:
+        if end - start < self.min_size:
+            raise rpt.costs.NotEnoughPoints
+        _, r = _ols(self.signal[start:end], self.covar[start:end])
+        return float(r @ r)
+
+
 def _ols(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
     coef, *_ = np.linalg.lstsq(X, y, rcond=None)
     return coef, y - X @ coef
@@ -206,7 +229,7 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
         if cost == "l2":
             raise ValueError("cost='l2' works on a 1-D series per model: pass X=None (or use cost='linear')")
         Xa = np.asarray(X, dtype=np.float64)
-        if Xa.ndim != ya.ndim + 1 or (not batched and Xa.ndim != 2):
+        if Xa.ndim != (3 if batched else 2):
             raise ValueError(f"X must be (n, k) for y (n,) or (M, n, k) for y (M, n); got {Xa.shape}")
         if not batched:
             Xa = Xa[None]
@@ -264,7 +287,10 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
             bk: list[int] = [m]
         else:
             signal = yi[:, None] if cost == "l2" else np.column_stack([yi, Xi])
-            algo = METHODS[method](model=cost, min_size=ms, jump=1).fit(signal)
+            if cost == "l2":
+                algo = METHODS[method](model="l2", min_size=ms, jump=1).fit(signal)
+            else:
+                algo = METHODS[method](custom_cost=_LinearRSS(), min_size=ms, jump=1).fit(signal)
             if method == "pelt":
                 bk = algo.predict(pen=pen)
             else:
