@@ -34,7 +34,7 @@ from drift.engine.tables import nyblom as nyblom_tables
 from drift.exceptions import InsufficientDataError
 from drift.typing import BoolArray, FloatArray, IntArray
 
-__all__ = ["BreakResult", "NyblomResult", "chow", "predictive_failure", "sup_f", "nyblom"]
+__all__ = ["BreakResult", "NyblomResult", "chow", "nyblom", "predictive_failure", "sup_f"]
 
 LEVELS = (0.10, 0.05, 0.01)
 # Numerical tolerances (not statistical constants):
@@ -382,7 +382,7 @@ def _candidates(mask: BoolArray, trim: float, k: int) -> tuple[BoolArray, IntArr
     """Candidate break rows: usable rows m with n1 = #usable rows before m in [lo, n - lo]."""
     nn = mask.sum(axis=1)
     lo = np.maximum(np.ceil(trim * nn - 1e-9).astype(np.int64), k + 1)
-    before = np.cumsum(mask, axis=1) - mask
+    before: IntArray = np.cumsum(mask, axis=1) - mask
     cand = mask & (before >= lo[:, None]) & (before <= (nn - lo)[:, None])
     return cand, nn, lo
 
@@ -474,7 +474,7 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
     Andrews, D. W. K. & Ploberger, W. (1994). Econometrica 62(6), 1383-1414.
     """
     ya, Xa, mask, batched = _prepare(y, X)
-    M, n, k = Xa.shape
+    M, _, k = Xa.shape
     tr = _check_trim(trim)
     cols = _check_columns(test_columns, k)
     q = len(cols)
@@ -560,7 +560,7 @@ def nyblom(y: object, X: object) -> NyblomResult:
     517-533.
     """
     ya, Xa, mask, batched = _prepare(y, X)
-    M, n, k = Xa.shape
+    k = Xa.shape[2]
     m = k + 1
     if m > nyblom_tables.nyblom_sim.MAX_M:
         raise ValueError(f"nyblom supports at most {nyblom_tables.nyblom_sim.MAX_M - 1} regressors, got {k}")

@@ -32,6 +32,7 @@ the batched tests.
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -45,7 +46,7 @@ from drift.engine.results import TestResult
 from drift.exceptions import InsufficientDataError
 from drift.typing import FloatArray, IntArray
 
-__all__ = ["ChangePointResult", "Segment", "change_points", "check_partition", "METHODS", "COSTS"]
+__all__ = ["COSTS", "METHODS", "ChangePointResult", "Segment", "change_points", "check_partition"]
 
 # registry: short name -> ruptures search class
 METHODS: dict[str, Callable[..., Any]] = {"pelt": rpt.Pelt, "binseg": rpt.Binseg, "dynp": rpt.Dynp}
@@ -97,9 +98,9 @@ def check_partition(breaks: Sequence[int], n: int, min_size: int = 1) -> tuple[i
     if any(int(x) != x for x in breaks):
         raise ValueError(f"change points must be integers, got {list(breaks)!r}")
     edges = (0, *b, n)
-    if any(lo >= hi for lo, hi in zip(edges[:-1], edges[1:])):
+    if any(lo >= hi for lo, hi in itertools.pairwise(edges)):
         raise ValueError(f"change points must be strictly increasing in 1..{n - 1}, got {list(b)!r}")
-    short = [hi - lo for lo, hi in zip(edges[:-1], edges[1:]) if hi - lo < min_size]
+    short = [hi - lo for lo, hi in itertools.pairwise(edges) if hi - lo < min_size]
     if short:
         raise ValueError(f"segments of {short} rows are shorter than min_size={min_size}: {list(b)!r}")
     return b
@@ -126,7 +127,7 @@ class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
     model = "linear_rss"
     min_size = 2
 
-    def fit(self, signal: FloatArray) -> "_LinearRSS":
+    def fit(self, signal: FloatArray) -> _LinearRSS:
         self.signal = signal[:, 0]
         self.covar = signal[:, 1:]
         return self
@@ -140,7 +141,7 @@ class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
 
 def _ols(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
     coef, *_ = np.linalg.lstsq(X, y, rcond=None)
-    return coef, y - X @ coef
+    return np.asarray(coef, dtype=np.float64), np.asarray(y - X @ coef, dtype=np.float64)
 
 
 def _penalised_fixed_k(algo: Any, pen: float, kmax: int) -> list[int]:
@@ -299,7 +300,7 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
         local = check_partition(bk[:-1], m, ms)
         edges = (0, *local, m)
         segs = []
-        for a, b in zip(edges[:-1], edges[1:]):
+        for a, b in itertools.pairwise(edges):
             coef, r = _ols(yi[a:b], Xi[a:b])
             segs.append(Segment(start=int(rows[a]), stop=int(rows[b]) if b < m else n, nobs=b - a,
                                 coef=coef, rss=float(r @ r)))
@@ -308,8 +309,8 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
 
     width = max((len(b) for b in all_breaks), default=0)
     arr: IntArray = np.full((M, width), -1, dtype=np.int64)
-    for i, b in enumerate(all_breaks):
-        arr[i, :len(b)] = b
+    for i, bks in enumerate(all_breaks):
+        arr[i, :len(bks)] = bks
     count = np.array([len(b) for b in all_breaks], dtype=np.int64)
     first = np.where(count > 0, arr[:, 0] if width else -1, -1)
     sq = (lambda a: a) if batched else (lambda a: a[0])

@@ -82,9 +82,9 @@ def critical_values(p: int, trim: float = 0.15, stat: str = "sup",
     otherwise (levels must be among ``supf_sim.PROBS``).
     """
     _check(stat, p, trim)
-    if stat == "sup" and abs(trim - PUBLISHED_TRIM) < 1e-9 and p in SUP_WALD_15[0.05]:
-        if all(lv in SUP_WALD_15 for lv in levels):
-            return {lv: SUP_WALD_15[lv][int(p)] for lv in levels}
+    if (stat == "sup" and abs(trim - PUBLISHED_TRIM) < 1e-9 and p in SUP_WALD_15[0.05]
+            and all(lv in SUP_WALD_15 for lv in levels)):
+        return {lv: SUP_WALD_15[lv][int(p)] for lv in levels}
     q = simulated_quantiles(stat, p, trim)
     out = {}
     for lv in levels:
