@@ -230,7 +230,7 @@ class CheckConfig(_Strict):
     max_lag: int | None = Field(None, ge=1)
     feed_limit: int = Field(4, ge=1)
     monitor_detector: Literal["csw", "mosum", "page"] = "page"
-    confirm: int = Field(1, ge=1)
+    horizon: float = Field(2.0, gt=0, le=6.0)
 
     @model_validator(mode="after")
     def _levels(self) -> CheckConfig:

@@ -1,0 +1,641 @@
+"""The check: store -> as-of designs -> batched engine -> evidence -> verdicts -> payloads.
+
+:func:`analyse` is the statistical core of one chunk of models (no I/O apart from what it is given);
+:func:`run_check` adds the store, the runs table, the alert state and delivery. The per-model payload is
+the JSON contract of ``drift check --json`` plus a ``charts`` block for the digest.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import date, datetime, time, timedelta, timezone
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from drift import engine
+from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig
+from drift.engine.split import split_coefficients
+from drift.exceptions import DriftError, InsufficientDataError
+from drift.panel import Design, build_design, next_due
+from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
+
+log = logging.getLogger(__name__)
+
+
+def as_of_moment(day: date) -> datetime:
+    """``--as-of DATE`` means the end of that day (UTC)."""
+    return datetime.combine(day + timedelta(days=1), time(0), tzinfo=timezone.utc)
+
+
+def _iso(ts: Any) -> str | None:
+    if ts is None or (isinstance(ts, float) and math.isnan(ts)) or ts is pd.NaT:
+        return None
+    return pd.Timestamp(ts).date().isoformat()
+
+
+def _num(x: Any) -> float | None:
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _list(a: np.ndarray) -> list[float | None]:
+    return [None if not np.isfinite(v) else round(float(v), 6) for v in np.asarray(a, float)]
+
+
+@dataclass
+class CheckOutcome:
+    """What one check run produced."""
+
+    run_id: int | None
+    as_of: date
+    models: list[dict[str, Any]] = field(default_factory=list)
+    errors: dict[str, str] = field(default_factory=dict)
+
+    def as_json(self) -> dict[str, Any]:
+        """The JSON contract: charts left out."""
+        return {"as_of": self.as_of.isoformat(),
+                "models": [{k: v for k, v in m.items() if k != "charts"} for m in self.models]}
+
+
+# ------------------------------------------------------------------------------------------------ helpers
+def _stack(designs: Sequence[Design]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Stack designs with equal k into (M, N) / (M, N, k), padding at the front with NaN rows."""
+    N = max(d.n for d in designs)
+    k = designs[0].k
+    Y = np.full((len(designs), N), np.nan)
+    X = np.full((len(designs), N, k), np.nan)
+    off = np.zeros(len(designs), int)
+    for i, d in enumerate(designs):
+        o = N - d.n
+        Y[i, o:] = d.y
+        X[i, o:] = d.X
+        off[i] = o
+    return Y, X, off
+
+
+def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None]:
+    """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``)."""
+    p, q = model.error_order
+    if p == 0 and q == 0:
+        return d.y, d.X, None
+    ref = slice(0, d.n_ref)
+    ok = np.isfinite(d.y[ref]) & np.isfinite(d.X[ref]).all(axis=1)
+    if ok.sum() <= d.k + p + q + 2:
+        raise InsufficientDataError(f"model '{model.name}': error model {model.errors}", d.k + p + q + 3,
+                                    int(ok.sum()))
+    b, *_ = np.linalg.lstsq(d.X[ref][ok], d.y[ref][ok], rcond=None)
+    resid = np.where(ok, d.y[ref] - np.where(ok[:, None], d.X[ref], 0.0) @ b, np.nan)
+    em = engine.fit_error_model(resid, model.errors)
+    yt, Xt = engine.prewhiten(d.y, d.X, em)
+    par = em.params()
+    desc = model.errors + " with " + ", ".join(
+        f"{n}{i + 1} = {v:.2f}" for n, arr in (("phi", par["ar"]), ("theta", par["ma"])) for i, v in
+        enumerate(np.atleast_1d(arr)))
+    return np.asarray(yt, float), np.asarray(Xt, float), desc
+
+
+def _seasonal_naive(y: np.ndarray, s: float | None) -> np.ndarray:
+    lag = int(round(s)) if s else 1
+    out = np.full_like(y, np.nan)
+    out[lag:] = y[:-lag]
+    return out
+
+
+def _accuracy(err: np.ndarray, scale: float | None) -> dict[str, Any]:
+    e = err[np.isfinite(err)]
+    if e.size == 0:
+        return {"mae": None, "rmse": None, "mase": None, "bias": None, "n": 0}
+    mae = float(np.mean(np.abs(e)))
+    return {"mae": round(mae, 4), "rmse": round(float(np.sqrt(np.mean(e ** 2))), 4),
+            "mase": round(mae / scale, 4) if scale else None, "bias": round(float(np.mean(e)), 4),
+            "n": int(e.size)}
+
+
+# ------------------------------------------------------------------------------------------------ analysis
+@dataclass
+class _Ctx:
+    cfg: Config
+    model: ModelConfig
+    design: Design
+    as_of: datetime
+    obs: pd.DataFrame
+    y: np.ndarray = None  # type: ignore[assignment]
+    X: np.ndarray = None  # type: ignore[assignment]
+    error_model: str | None = None
+    actions: list[Action] = field(default_factory=list)
+    alarms: list[dict[str, Any]] = field(default_factory=list)
+    tests: list[dict[str, Any]] = field(default_factory=list)
+    drivers: list[dict[str, Any]] = field(default_factory=list)
+    charts: dict[str, Any] = field(default_factory=dict)
+    accuracy: dict[str, Any] = field(default_factory=dict)
+    late: set[str] = field(default_factory=set)
+
+
+def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime
+            ) -> tuple[list[dict[str, Any]], dict[str, str]]:
+    """Payloads for a chunk of models, from the observations known at ``as_of``.
+
+    Returns (payloads, errors): a model whose data cannot support the check gets an error entry
+    (its reason) instead of a payload; the others are unaffected.
+    """
+    ctxs: list[_Ctx] = []
+    errors: dict[str, str] = {}
+    for m in models:
+        try:
+            d = build_design(cfg, m, obs[obs["series"].isin(m.series)], pd.Timestamp(as_of))
+            c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=obs)
+            c.y, c.X, c.error_model = _prewhiten(m, d)
+            need = d.k + 3
+            if np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)) < need:
+                raise InsufficientDataError(f"model '{m.name}': reference fit", need, int(
+                    np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1))),
+                    f"{d.k} regressors ({', '.join(d.columns)})")
+            ctxs.append(c)
+        except DriftError as exc:
+            errors[m.name] = str(exc)
+            log.warning("model %s skipped: %s", m.name, exc)
+    # batch by number of regressors
+    groups: dict[int, list[_Ctx]] = {}
+    for c in ctxs:
+        groups.setdefault(c.design.k, []).append(c)
+    for group in groups.values():
+        _screen(group)
+    out = []
+    for c in ctxs:
+        try:
+            _freshness(c)
+            _drivers_and_worth(c)
+            _lag_drift(c)
+            out.append(_payload(c))
+        except DriftError as exc:
+            errors[c.model.name] = str(exc)
+            log.warning("model %s skipped: %s", c.model.name, exc)
+    return out, errors
+
+
+def _screen(group: list[_Ctx]) -> None:
+    """Batched screening pass: recursive fit, monitoring, CUSUM family, rolling coefficients."""
+    cfg = group[0].cfg
+    chk = cfg.check
+    ds = [c.design for c in group]
+    Y = np.full((len(group), max(d.n for d in ds)), np.nan)
+    Xs = np.full((*Y.shape, ds[0].k), np.nan)
+    off = np.zeros(len(group), int)
+    for i, c in enumerate(group):
+        o = Y.shape[1] - c.design.n
+        Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
+    m = np.array([c.design.n_ref for c in group]) + off
+    rf = engine.recursive_fit(Y, Xs)
+    horizon = chk.horizon
+    detectors = ("csw", chk.monitor_detector) if chk.monitor_detector != "csw" else ("csw",)
+    lv = chk.level / len(detectors)
+    wl = chk.warn_level / len(detectors)
+    mons = {}
+    warns = {}
+    for det in detectors:
+        mons[det] = engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=_nearest_level(lv))
+        warns[det] = engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=_nearest_level(wl))
+    # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals
+    W = rf.resid.copy()
+    cols = np.arange(W.shape[1])[None, :]
+    W[cols < m[:, None]] = np.nan
+    enough = np.sum(np.isfinite(W), axis=1) >= 3
+    cus = cusq = None
+    if enough.any():
+        Wc = np.where(enough[:, None], W, 0.0)  # rows without residuals get a dummy, masked below
+        Wc[~enough, :3] = 1.0
+        cus = engine.cusum(Wc)
+        cusq = engine.cusum_squares(Wc)
+    window = chk.rolling_window or chk.recent_window
+    roll = None
+    if window >= ds[0].k + 2 and window <= Y.shape[1]:
+        roll = engine.rolling_coefficients(Y, Xs, window)
+    for i, c in enumerate(group):
+        o, d = off[i], c.design
+        sl = slice(o, None)
+        c.charts["periods"] = [p.date().isoformat() for p in d.periods]
+        c.charts["monitor_start_index"] = int(d.n_ref)
+        fe = rf.forecast_error[i, sl]
+        # as-deployed one-step forecasts of the original target (the prewhitened model forecasts y~)
+        fc = d.y - fe if c.error_model is None else d.y - _unfilter_error(c, fe)
+        base = _seasonal_naive(d.y, d.season_length)
+        mon_mask = np.arange(d.n) >= d.n_ref
+        actual = np.where(mon_mask, d.y, np.nan)
+        c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
+                                "baseline": _list(np.where(mon_mask, base, np.nan))}
+        ref_scale = np.nanmean(np.abs(d.y[: d.n_ref] - base[: d.n_ref])) if d.n_ref > 2 else None
+        ref_scale = float(ref_scale) if ref_scale is not None and np.isfinite(ref_scale) and ref_scale > 0 else None
+        c.accuracy = {"model": _accuracy(np.where(mon_mask, d.y - fc, np.nan)[-chk.recent_window:], ref_scale),
+                      "baseline": _accuracy((actual - base)[-chk.recent_window:], ref_scale),
+                      "window": int(min(chk.recent_window, int(mon_mask.sum())))}
+        # monitoring
+        alarm_idx = None
+        for det in detectors:
+            r = mons[det]
+            ai = int(np.atleast_1d(r.alarm_index)[i])
+            stat = float(np.atleast_1d(r.statistic)[i])
+            pv = _num(np.atleast_1d(r.pvalue)[i])
+            date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
+            name = {"csw": "monitor-cusum", "page": "monitor-page", "mosum": "monitor-mosum"}[det]
+            c.tests.append({"test": name, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
+                            "level": lv, "date": date_})
+            if ai >= 0:
+                c.alarms.append({"test": name, "date": date_, "statistic": _num(round(stat, 4)),
+                                 "threshold": 1.0, "level": lv})
+                alarm_idx = ai - o if alarm_idx is None else min(alarm_idx, ai - o)
+            wi = int(np.atleast_1d(warns[det].alarm_index)[i])
+            if ai < 0 and wi >= 0:
+                c.alarms.append({"test": name, "date": d.periods[wi - o].date().isoformat(),
+                                 "statistic": _num(round(float(np.atleast_1d(warns[det].statistic)[i]), 4)),
+                                 "threshold": 1.0, "level": wl, "warning": True})
+        # retrospective CUSUM family
+        retro_flag = []
+        if cus is not None and enough[i]:
+            for name, r in (("cusum", cus), ("cusum-squares", cusq)):
+                fc_idx = int(np.atleast_1d(r.first_crossing[0.05])[i])
+                stat = _num(np.atleast_1d(r.statistic)[i])
+                crit = r.critical_values.get(0.05)
+                crit = _num(np.atleast_1d(crit)[i] if np.ndim(crit) else crit)
+                date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
+                c.tests.append({"test": name, "statistic": stat, "pvalue": _num(np.atleast_1d(r.pvalue)[i]),
+                                "threshold": crit, "level": 0.05, "date": date_})
+                if fc_idx >= 0:
+                    c.alarms.append({"test": name, "date": date_, "statistic": stat, "threshold": crit,
+                                     "level": 0.05})
+                    retro_flag.append((name, date_))
+            c.charts["cusum"] = {
+                "path": _list(np.atleast_2d(cus.path)[i, sl]),
+                "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
+                "alarm_date": min([a["date"] for a in c.alarms if not a.get("warning") and a["date"]],
+                                  default=None)}
+        # rolling coefficients
+        if roll is not None:
+            coef_roll = np.atleast_3d(roll.coef)[i, sl]
+            se_roll = np.atleast_3d(roll.se)[i, sl]
+            c.charts["coefficients"] = {}
+            ref_coef = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+            for s, j in d.driver_columns.items():
+                c.charts["coefficients"][s] = {
+                    "coef": _list(coef_roll[:, j]), "lower": _list(coef_roll[:, j] - 1.96 * se_roll[:, j]),
+                    "upper": _list(coef_roll[:, j] + 1.96 * se_roll[:, j]),
+                    "reference": _num(ref_coef[j]), "window": int(window)}
+        c.charts["_ref_coef"] = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+        c.charts["_fe"] = fe
+        # verdict on the relationship
+        if alarm_idx is not None:
+            _refit_action(c, alarm_idx)
+        else:
+            warn = [a for a in c.alarms if a.get("warning")]
+            if warn or retro_flag:
+                what = (f"{warn[0]['test']} passed its {wl:.0%} warning boundary on {warn[0]['date']}" if warn
+                        else f"the {retro_flag[0][0]} test crossed its 5% bound on {retro_flag[0][1]}")
+                c.actions.append(Action("watch", severity="watch", reason=(
+                    f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
+                    f"{chk.level:.0%} level. Keep the model, look again next week.")))
+
+
+def _unfilter_error(c: _Ctx, fe: np.ndarray) -> np.ndarray:
+    """Forecast error on the original scale for a prewhitened model (AR part; MA approximated)."""
+    # y_t = x_t'b + u_t, u_t = phi u_{t-1} + e_t: the one-step forecast error of y equals that of y~.
+    return fe
+
+
+_LEVELS = (0.5, 0.3, 0.2, 0.15, 0.1, 0.075, 0.05, 0.025, 0.01, 0.005)
+
+
+def _nearest_level(x: float) -> float:
+    """The tabulated level at or below ``x`` (conservative)."""
+    cands = [lv for lv in _LEVELS if lv <= x + 1e-12]
+    return max(cands) if cands else min(_LEVELS)
+
+
+def _refit_action(c: _Ctx, alarm_idx: int) -> None:
+    """Date the break the monitors found and describe how the driver effects moved."""
+    d = c.design
+    since = _date_break(c, alarm_idx)
+    c.charts["break_index"] = since
+    parts = []
+    try:
+        cols = list(d.driver_columns.values())
+        if cols:
+            sp = split_coefficients(c.y, c.X, since, cols)
+            for (s, j), b, a in zip(d.driver_columns.items(), sp.before, sp.after):
+                unit = next((dr.unit for dr in c.model.drivers if dr.series == s and dr.unit), None)
+                per = f" {c.model.unit} per {unit}" if unit else ""
+                if abs(a - b) > 1.96 * max(sp.se_after[cols.index(j)], 1e-12) or len(parts) == 0:
+                    parts.append(f"{s} effect {fmt_num(b)} → {fmt_num(a)}{per} ({pct_change(b, a)})".replace(" ()", ""))
+            c.charts["_split"] = sp
+    except InsufficientDataError:
+        pass
+    alarm = min((a for a in c.alarms if not a.get("warning") and a["test"].startswith("monitor-")),
+                key=lambda a: a["date"] or "9999")
+    since_s = d.periods[since].date().isoformat()
+    reason = (f"The relationship changed around {since_s}: " + ("; ".join(parts) + ". " if parts else "")
+              + f"{_test_words(alarm['test']).capitalize()} crossed its boundary on {alarm['date']} "
+              f"(false-alarm rate held at {c.cfg.check.level:.0%} over the monitoring horizon). "
+              f"Refit on data since {since_s}.")
+    c.actions.append(Action("refit", reason=reason, extra={"since": since_s}))
+
+
+def _test_words(name: str) -> str:
+    return {"monitor-cusum": "the recursive-CUSUM monitor", "monitor-page": "the Page-CUSUM monitor",
+            "monitor-mosum": "the moving-sum monitor", "cusum": "the recursive CUSUM",
+            "cusum-squares": "the CUSUM of squares"}.get(name, name)
+
+
+def _date_break(c: _Ctx, alarm_idx: int) -> int:
+    """Row of the first observation of the new regime: change-point search on the monitored recursive
+    residuals up to the alarm (mean shift, l2 cost, BIC penalty); the alarm row if none is found."""
+    d = c.design
+    fe = c.charts["_fe"]
+    lo = d.n_ref
+    hi = min(d.n, alarm_idx + 1)
+    w = fe[lo:hi]
+    ok = np.isfinite(w)
+    if ok.sum() >= 8:
+        try:
+            ww = w[ok]
+            sig2 = float(np.var(np.diff(ww)) / 2) or None
+            cp = engine.change_points(ww, cost="l2", min_size=max(3, int(0.1 * ok.sum())), sigma2=sig2)
+            bks = np.atleast_1d(cp.break_indices[0] if isinstance(cp.break_indices, list) else cp.break_indices)
+            bks = [int(b) for b in np.ravel(bks) if int(b) > 0]
+            if bks:
+                rows = np.flatnonzero(ok) + lo
+                return int(rows[bks[-1]])
+        except (DriftError, ValueError) as exc:
+            log.debug("change-point dating failed for %s: %s", d.model, exc)
+    return int(max(lo, alarm_idx - 1))
+
+
+# ------------------------------------------------------------------------------------------------ freshness
+def _freshness(c: _Ctx) -> None:
+    m, d, obs = c.model, c.design, c.obs
+    known = obs[obs["series"].isin(m.series)]
+    last = known.groupby("series")["period"].max()
+    feeds: dict[str, Any] = {}
+    limit = c.cfg.check.feed_limit
+    for s in m.series:
+        dr = next((x for x in m.drivers if x.series == s), None)
+        if dr is not None and dr.form != "lagged":
+            continue  # planned / forecast series are not "due" on a schedule
+        delay = c.cfg.driver_delay(m, dr) if dr else timedelta(0)
+        lp = last.get(s)
+        if lp is None or pd.isna(lp):
+            continue
+        due = next_due(pd.Timestamp(lp), m.frequency, delay)
+        late = pd.Timestamp(c.as_of) > due
+        g = known[known["series"] == s].sort_values("period").drop_duplicates("period")
+        g = g[g["period"] >= d.periods[max(0, d.n - 26)]]
+        feeds[s] = {"periods": [p.date().isoformat() for p in g["period"]],
+                    "available_at": [pd.Timestamp(a).isoformat() for a in g["available_at"]],
+                    "next_due": due.isoformat(), "late": bool(late), "last_period": lp.date().isoformat()}
+        if late:
+            c.late.add(s)
+            missing = _periods_between(pd.Timestamp(lp), pd.Timestamp(c.as_of), m.frequency, delay)
+            role = "target" if s == m.target else "driver"
+            reason = (f"The {role} feed '{s}' is late: its last value is for the period starting "
+                      f"{lp.date().isoformat()}, and the next was due by {due.strftime('%Y-%m-%d %H:%M')} UTC "
+                      f"({missing} period{'s' if missing != 1 else ''} missing).")
+            if missing > limit and role == "driver":
+                reason += f" It has been missing for more than {limit} periods."
+            c.actions.append(Action("data-late", reason=reason,
+                                    extra={"driver": s, "last_period": lp.date().isoformat(),
+                                           "missing_periods": int(missing)}))
+    c.charts["feeds"] = feeds
+
+
+def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:
+    """How many periods after ``last`` should have arrived by ``as_of``."""
+    from drift.config import next_period
+
+    n = 0
+    p = last
+    while True:
+        p = next_period(p, freq)
+        due = (next_period(p, freq) + pd.Timedelta(delay)).tz_localize("UTC")
+        if due >= as_of or n > 10000:
+            return n
+        n += 1
+
+
+# ------------------------------------------------------------------------------------------------ drivers
+def _drivers_and_worth(c: _Ctx) -> None:
+    """Per driver: reference vs recent coefficient, Clark–West test of the model with vs without it."""
+    d, chk = c.design, c.cfg.check
+    ref_coef = c.charts.pop("_ref_coef")
+    fe_full = c.charts["_fe"]
+    n = d.n
+    recent = np.arange(n) >= max(d.n_ref, n - chk.recent_window)
+    # nested models without each driver, batched (all have k-1 columns)
+    names = list(d.driver_columns)
+    nested_fe = {}
+    if names:
+        Xn = np.stack([np.delete(c.X, d.driver_columns[s], axis=1) for s in names])
+        Yn = np.broadcast_to(c.y, (len(names), n))
+        rn = engine.recursive_fit(Yn, Xn)
+        for i, s in enumerate(names):
+            nested_fe[s] = np.atleast_2d(rn.forecast_error)[i]
+    last = {s: f.get("last_period") for s, f in c.charts.get("feeds", {}).items()}
+    for dr in c.model.drivers:
+        s = dr.series
+        if s not in d.driver_columns:
+            continue
+        j = d.driver_columns[s]
+        info: dict[str, Any] = {"series": s, "lag": d.lags.get(s, dr.lag), "form": dr.form,
+                                "coef_reference": _num(round(float(ref_coef[j]), 6))}
+        coefs = c.charts.get("coefficients", {}).get(s)
+        if coefs:
+            lastc = next((k for k in range(len(coefs["coef"]) - 1, -1, -1) if coefs["coef"][k] is not None), None)
+            if lastc is not None:
+                info["coef_recent"] = coefs["coef"][lastc]
+                info["ci_recent"] = [coefs["lower"][lastc], coefs["upper"][lastc]]
+        feed = c.charts.get("feeds", {}).get(s, {})
+        info["last_period"] = last.get(s)
+        info["next_due"] = feed.get("next_due")
+        info["late"] = bool(feed.get("late", False))
+        # worth keeping: forecasts y - e over the recent window
+        e1 = np.where(recent, nested_fe[s], np.nan)  # without the driver (restricted)
+        e2 = np.where(recent, fe_full, np.nan)  # with it
+        both = np.isfinite(e1) & np.isfinite(e2)
+        if both.sum() >= 10:
+            y = c.y
+            cw = engine.clark_west(y[both], (y - e1)[both], (y - e2)[both])
+            mae_with = float(np.mean(np.abs(e2[both])))
+            mae_without = float(np.mean(np.abs(e1[both])))
+            info["worth"] = {"test": "clark-west", "statistic": _num(cw.statistic), "pvalue": _num(cw.pvalue),
+                             "mae_with": round(mae_with, 4), "mae_without": round(mae_without, 4),
+                             "n": int(both.sum())}
+            ci = info.get("ci_recent")
+            covers_zero = ci is not None and ci[0] is not None and ci[0] <= 0 <= ci[1]
+            helps = _num(cw.pvalue) is not None and cw.pvalue < chk.level
+            gone = s in c.late and next((a.extra.get("missing_periods", 0) for a in c.actions
+                                         if a.action == "data-late" and a.extra.get("driver") == s), 0) > chk.feed_limit
+            if (not helps and covers_zero) or gone:
+                unit = c.model.unit
+                if gone:
+                    why = (f"its feed has been missing for more than {chk.feed_limit} periods; running without it, "
+                           f"MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} "
+                           f"(last {int(both.sum())} periods).")
+                else:
+                    why = (f"over the last {int(both.sum())} periods it no longer improves the forecasts "
+                           f"(Clark–West p = {cw.pvalue:.2f}) and its recent coefficient interval "
+                           f"[{fmt_num(ci[0])}, {fmt_num(ci[1])}] covers zero; MAE would go from "
+                           f"{fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} without it.")
+                c.actions.append(Action("drop-driver", reason=f"Driver '{s}' is not earning its place: {why}",
+                                        extra={"driver": s}))
+        c.drivers.append(info)
+
+
+# ------------------------------------------------------------------------------------------------ lag drift
+def _lag_drift(c: _Ctx) -> None:
+    """Cross-correlation profile, reference vs recent window, of target and driver after removing the
+    deterministic terms; ``relag`` when the peak moved, is significant and the new lag forecasts better."""
+    d, chk, m = c.design, c.cfg.check, c.model
+    max_lag = chk.max_lag or MAX_LAG_BY_FREQ[m.frequency]
+    ref = slice(0, d.n_ref)
+    det = d.X[:, d.deterministic]
+    ok = np.isfinite(d.y[ref])
+    if ok.sum() <= det.shape[1] + max_lag + 5:
+        return
+    # deterministic part estimated on the reference period only (no look-ahead into the monitoring span)
+    def _resid(v: np.ndarray) -> np.ndarray:
+        good = np.isfinite(v[ref])
+        b, *_ = np.linalg.lstsq(det[ref][good], v[ref][good], rcond=None)
+        return v - det @ b
+
+    ry = _resid(d.y)
+    recent_n = min(chk.recent_window, d.n - d.n_ref)
+    if recent_n < max(20, max_lag + 10):
+        return
+    profiles: dict[str, Any] = {}
+    obs = c.obs
+    from drift.panel import latest_values, period_index
+
+    for dr in m.drivers:
+        s = dr.series
+        if dr.form != "lagged" or s not in d.driver_columns or s in c.late:
+            continue
+        vint = obs[obs["series"] == s]
+        # the driver's own values by period (latest vintage), on the target's period grid
+        xv = latest_values(vint, d.periods)
+        if np.isfinite(xv[ref]).sum() <= det.shape[1] + 5:
+            continue
+        rx = _resid(xv)
+        ys = np.stack([ry[: d.n_ref], ry[d.n - recent_n:]], axis=0) if False else None
+        lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
+        lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
+        cur = d.lags.get(s, dr.lag)
+        profiles[s] = {"lags": list(range(max_lag + 1)), "reference": _list(lp_ref.ccf),
+                       "recent": _list(lp_rec.ccf), "band_reference": _num(lp_ref.band),
+                       "band_recent": _num(lp_rec.band), "current_lag": cur}
+        new = int(lp_rec.peak_lag)
+        if new == cur or not bool(lp_rec.peak_significant) or new < _min_lag(c, dr):
+            continue
+        # does the model at the new lag beat the current one out of sample (recent window)?
+        try:
+            alt = build_design(c.cfg, m, obs[obs["series"].isin(m.series)], pd.Timestamp(c.as_of),
+                               lags={s: new})
+        except DriftError:
+            continue
+        rf_alt = engine.recursive_fit(alt.y, alt.X)
+        e_new = np.asarray(rf_alt.forecast_error)[d.n - recent_n:]
+        e_cur = c.charts["_fe"][d.n - recent_n:]
+        both = np.isfinite(e_new) & np.isfinite(e_cur)
+        if both.sum() < 10:
+            continue
+        mae_new = float(np.mean(np.abs(e_new[both])))
+        mae_cur = float(np.mean(np.abs(e_cur[both])))
+        dm = engine.diebold_mariano(e_cur[both], e_new[both])
+        if mae_new < mae_cur and _num(dm.pvalue) is not None and dm.pvalue < chk.level * 2:
+            c.actions.append(Action("relag", extra={"driver": s, "lag": new}, reason=(
+                f"Driver '{s}' now leads the target by {new} period{'s' if new != 1 else ''} instead of {cur}: "
+                f"its cross-correlation peaks at lag {new} over the last {recent_n} periods "
+                f"(r = {float(np.asarray(lp_rec.ccf)[new]):.2f}, band ±{float(lp_rec.band):.2f}), and "
+                f"at lag {new} the one-step MAE would be {fmt_num(mae_new)} instead of {fmt_num(mae_cur)} "
+                f"{m.unit}.")))
+    if profiles:
+        c.charts["lag_profile"] = profiles
+
+
+def _min_lag(c: _Ctx, dr: Any) -> int:
+    from drift.config import period_length
+
+    delay = c.cfg.driver_delay(c.model, dr)
+    step = period_length(c.model.frequency)
+    q, r = divmod(delay, step)
+    return 1 + int(q) + (1 if r else 0)
+
+
+# ------------------------------------------------------------------------------------------------ payload
+def _payload(c: _Ctx) -> dict[str, Any]:
+    d, m = c.design, c.model
+    charts = {k: v for k, v in c.charts.items() if not k.startswith("_")}
+    if "break_index" in charts:
+        charts["break_date"] = d.periods[charts.pop("break_index")].date().isoformat()
+    actions = sort_actions(c.actions)
+    # a feed that is late makes its relationship evidence stale: say so, but keep it
+    return {
+        "name": m.name, "verdict": overall(actions),
+        "as_of": (c.as_of - timedelta(seconds=1)).date().isoformat(),
+        "target": m.target, "unit": m.unit, "frequency": m.frequency,
+        "reference": {"start": m.reference.start.isoformat(), "end": m.reference.end.isoformat()},
+        "monitor_start": d.periods[d.n_ref].date().isoformat() if d.n > d.n_ref else None,
+        "last_period": d.periods[-1].date().isoformat(),
+        "error_model": c.error_model,
+        "actions": [a.as_dict() for a in actions],
+        "alarms": c.alarms,
+        "tests": c.tests,
+        "drivers": c.drivers,
+        "accuracy": c.accuracy,
+        "charts": charts,
+    }
+
+
+# ------------------------------------------------------------------------------------------------ run
+def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: list[str] | None = None,
+              deliver: bool = True) -> CheckOutcome:
+    """Check the models as of a date (default: today, UTC), save verdicts, process alerts and deliver.
+
+    Raises
+    ------
+    ConfigError : an unknown model name.
+    """
+    day = as_of or datetime.now(timezone.utc).date()
+    moment = as_of_moment(day)
+    chosen = [cfg.model(n) for n in models] if models else list(cfg.models)
+    run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in chosen]})
+    try:
+        series = sorted({s for m in chosen for s in m.series})
+        obs = store.load_observations(series, moment)
+        payloads, errors = analyse(cfg, chosen, obs, moment)
+        outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors)
+        store.save_verdicts(run_id, day, payloads)
+        if deliver:
+            _alerts_and_delivery(cfg, store, outcome)
+        store.finish_run(run_id, "ok", detail={
+            "models": len(payloads), "errors": errors,
+            "verdicts": {p["name"]: p["verdict"] for p in payloads}})
+        return outcome
+    except BaseException as exc:
+        store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
+        raise
+
+
+def _alerts_and_delivery(cfg: Config, store: Any, outcome: CheckOutcome) -> None:
+    try:
+        from drift.delivery.alerts import process_alerts
+    except ImportError:  # delivery not installed in this build
+        return
+    process_alerts(cfg, store, outcome)
+    if cfg.alerts.channels:
+        from drift.delivery.outbox import deliver_pending
+
+        deliver_pending(cfg, store)

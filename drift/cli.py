@@ -1,0 +1,272 @@
+"""Command line: parse, load config, call the library, map errors to exit codes and one-line messages.
+
+Exit codes: 0 the command ran (whatever the verdicts); 1 runtime failure; 2 usage or config error;
+3 another daemon holds the store.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import sys
+from datetime import date, datetime, timezone
+from pathlib import Path
+from typing import Any, NoReturn
+
+import click
+
+from drift import __version__
+from drift.exceptions import ConfigError, DriftError, LockError
+
+log = logging.getLogger("drift")
+
+EXIT_RUNTIME, EXIT_CONFIG, EXIT_LOCKED = 1, 2, 3
+
+
+def _fail(code: int, msg: str) -> NoReturn:
+    click.echo(f"drift: {msg}", err=True)
+    sys.exit(code)
+
+
+def _setup_logging(level: str) -> None:
+    logging.basicConfig(level=getattr(logging, level.upper(), logging.WARNING), stream=sys.stderr,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+
+
+def _load(config: str) -> Any:
+    from drift.config import load_config
+
+    return load_config(config)
+
+
+def _store(cfg: Any) -> Any:
+    from drift.store import open_store
+
+    return open_store(cfg.store_url())
+
+
+def _day(value: str | None, flag: str) -> date | None:
+    if value is None:
+        return None
+    try:
+        return date.fromisoformat(value)
+    except ValueError:
+        _fail(EXIT_CONFIG, f"{flag} expects a date as YYYY-MM-DD, got '{value}'")
+
+
+def _run(fn: Any) -> Any:
+    """Call ``fn`` and map drift's errors to exit codes."""
+    try:
+        return fn()
+    except ConfigError as exc:
+        _fail(EXIT_CONFIG, str(exc))
+    except LockError as exc:
+        _fail(EXIT_LOCKED, str(exc))
+    except DriftError as exc:
+        _fail(EXIT_RUNTIME, str(exc))
+    except KeyboardInterrupt:
+        _fail(130, "interrupted")
+
+
+config_opt = click.option("--config", "config", required=True, type=click.Path(dir_okay=False),
+                          help="drift YAML configuration file.")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="drift")
+@click.option("--log-level", default="warning", show_default=True,
+              type=click.Choice(["debug", "info", "warning", "error"], case_sensitive=False))
+def cli(log_level: str) -> None:
+    """drift: watch deployed driver-based forecasts and say, with evidence, when the relationship moved."""
+    _setup_logging(log_level)
+
+
+@cli.command()
+@config_opt
+@click.option("--source", "sources", multiple=True, help="Only this source (repeatable).")
+def ingest(config: str, sources: tuple[str, ...]) -> None:
+    """Read the configured sources into the store (new values, revisions as vintages, quarantine)."""
+    def go() -> None:
+        from drift.pipeline import run_ingest
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            summaries = run_ingest(cfg, store, sources=list(sources) or None)
+        finally:
+            store.dispose()
+        failed = False
+        for s in summaries:
+            click.echo(s.describe())
+            for f, msg in s.failed_files:
+                failed = True
+                click.echo(f"  not read: {f}: {msg}", err=True)
+        if failed:
+            sys.exit(EXIT_RUNTIME)
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--model", "models", multiple=True, help="Only this model (repeatable).")
+@click.option("--as-of", "as_of", default=None, help="Check as the data stood at the end of this day (YYYY-MM-DD).")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout and nothing else.")
+@click.option("--no-deliver", is_flag=True, help="Record verdicts and alerts but do not send anything now.")
+def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool, no_deliver: bool) -> None:
+    """Check each model for changes in its driver relationship, and record verdicts."""
+    day = _day(as_of, "--as-of")
+
+    def go() -> None:
+        from drift.pipeline import run_check
+        from drift.report import format_table
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver)
+        finally:
+            store.dispose()
+        if as_json:
+            click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
+        else:
+            click.echo(format_table(outcome))
+        for name, err in outcome.errors.items():
+            log.warning("model %s not checked: %s", name, err)
+
+    _run(go)
+
+
+def _strict(obj: Any) -> Any:
+    from drift.store import _jsonable
+
+    return _jsonable(obj)
+
+
+@cli.command()
+@config_opt
+def deliver(config: str) -> None:
+    """Send whatever is pending in the outbox now (failed sends stay pending and are retried later)."""
+    def go() -> None:
+        from drift.pipeline import run_deliver
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            report = run_deliver(cfg, store)
+        finally:
+            store.dispose()
+        click.echo(report.describe() if hasattr(report, "describe") else str(report))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--since", default=None, help="Report changes since this day instead of since the last digest.")
+@click.option("--send", is_flag=True, help="Queue the digest for the email channels and deliver it.")
+def digest(config: str, since: str | None, send: bool) -> None:
+    """Write the weekly digest (HTML with charts); with --send, email it."""
+    day = _day(since, "--since")
+
+    def go() -> None:
+        from drift.pipeline import run_deliver, run_digest
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            moment = datetime.combine(day, datetime.min.time(), tzinfo=timezone.utc) if day else None
+            dg = run_digest(cfg, store, since=moment, send=send)
+            if send:
+                run_deliver(cfg, store)
+        finally:
+            store.dispose()
+        click.echo(f"digest written to {dg.path}")
+
+    _run(go)
+
+
+@cli.command()
+@click.option("--out", default="drift-demo", show_default=True, type=click.Path(file_okay=False),
+              help="Folder for the demo's data, store and report.")
+def demo(out: str) -> None:
+    """Run the bundled invented scenario end to end and write a report."""
+    def go() -> None:
+        from drift.demo import run_demo
+
+        res = run_demo(out)
+        click.echo(f"demo store and config: {res.config}")
+        click.echo(f"report: {res.report}")
+        if res.report_html:
+            click.echo(f"report (HTML): {res.report_html}")
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--log-file", default=None, type=click.Path(dir_okay=False), help="Also log to this rotating file.")
+def daemon(config: str, log_file: str | None) -> None:
+    """Run ingest, check, digest and outbox retry on the config's schedule until stopped."""
+    def go() -> None:
+        from drift.scheduler import run_daemon
+
+        cfg = _load(config)
+        sys.exit(run_daemon(cfg, log_file=log_file))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def status(config: str, as_json: bool) -> None:
+    """Jobs, pending deliveries, stale feeds and open alerts."""
+    def go() -> None:
+        from drift.status import collect_status, format_status
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            st = collect_status(cfg, store)
+        finally:
+            store.dispose()
+        click.echo(json.dumps(_strict(st), default=str) if as_json else format_status(st))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--date", "when", required=True, help="Date of the known shock (YYYY-MM-DD).")
+@click.option("--model", "models", multiple=True, help="Only this model (repeatable).")
+@click.option("--as-of", "as_of", default=None, help="Use the data as they stood at the end of this day.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+@click.option("--out", default=None, type=click.Path(file_okay=False), help="Folder for the charts.")
+def shock(config: str, when: str, models: tuple[str, ...], as_of: str | None, as_json: bool,
+          out: str | None) -> None:
+    """After a known market shock: did each model's relationship change at that date?"""
+    day = _day(when, "--date")
+    aday = _day(as_of, "--as-of")
+
+    def go() -> None:
+        from drift.shock import format_shock, run_shock
+
+        cfg = _load(config)
+        store = _store(cfg)
+        try:
+            res = run_shock(cfg, store, day, models=list(models) or None, as_of=aday,
+                            out=Path(out) if out else None)
+        finally:
+            store.dispose()
+        click.echo(json.dumps(_strict(res), allow_nan=False) if as_json else format_shock(res))
+
+    _run(go)
+
+
+def main() -> None:
+    cli(prog_name="drift")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

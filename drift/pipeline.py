@@ -1,0 +1,44 @@
+"""The library's entry points for each step, as the CLI and the daemon call them.
+
+They orchestrate; the statistics live in :mod:`drift.engine` and :mod:`drift.check`, the SQL in
+:mod:`drift.store`.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from drift.check import CheckOutcome, run_check
+from drift.config import Config
+
+__all__ = ["CheckOutcome", "run_check", "run_ingest", "run_deliver", "run_digest"]
+
+
+def run_ingest(cfg: Config, store: Any, *, sources: list[str] | None = None,
+               progress: bool | None = None) -> list[Any]:
+    """Ingest every configured source (or the named ones) and record the run."""
+    from drift.ingest import ingest_all
+
+    run_id = store.start_run("ingest", detail={"sources": sources or [s.name for s in cfg.sources]})
+    try:
+        summaries = ingest_all(cfg, store, sources=sources, progress=progress)
+    except BaseException as exc:
+        store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
+        raise
+    failed = [f for s in summaries for f in s.failed_files]
+    store.finish_run(run_id, "ok" if not failed else "partial",
+                     detail={"summaries": [s.as_dict() for s in summaries]})
+    return summaries
+
+
+def run_deliver(cfg: Config, store: Any) -> Any:
+    """Send whatever is pending in the outbox now."""
+    from drift.delivery.outbox import deliver_pending
+
+    return deliver_pending(cfg, store)
+
+
+def run_digest(cfg: Config, store: Any, *, since: Any = None, send: bool = False) -> Any:
+    from drift.delivery.digest import run_digest as _run
+
+    return _run(cfg, store, since=since, send=send)

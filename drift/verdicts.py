@@ -1,0 +1,67 @@
+"""Turn test results into a small set of actions with plain-language reasons and the numbers behind them.
+
+Actions, most pressing first: ``data-late`` > ``refit`` > ``relag`` > ``drop-driver`` > ``watch``.
+The model's verdict is ``keep`` or the most pressing action. Deterministic: same evidence, same verdict.
+
+False-alarm control (per model, over the monitoring horizon)
+-----------------------------------------------------------
+``refit`` needs a *sequential* monitoring detector to cross its boundary. Two detectors watch every model —
+the Chu–Stinchcombe–White recursive CUSUM (quick on early changes) and a detector quick on late changes
+(Page-type CUSUM by default) — each at ``level / 2`` (Bonferroni), so the chance that a stable model is ever
+told to refit within the horizon is at most ``level``. Retrospective tests (CUSUM and CUSUM of squares on
+the monitored residuals, the tracking signal) and monitoring at ``warn_level`` only give ``watch``. Change
+points and the sup-F search only *date* a break that the monitors found; they never raise one alone.
+``drop-driver`` and ``relag`` have their own out-of-sample tests (Clark–West); ``data-late`` is a fact
+about the feed, not a test.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+PRIORITY = ("data-late", "refit", "relag", "drop-driver", "watch")
+
+
+@dataclass
+class Action:
+    action: str
+    reason: str
+    severity: str = "act"  # act | watch
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"action": self.action, "severity": self.severity, **self.extra, "reason": self.reason}
+
+
+def overall(actions: list[Action]) -> str:
+    """``keep`` or the name of the most pressing action."""
+    if not actions:
+        return "keep"
+    return min(actions, key=lambda a: PRIORITY.index(a.action)).action
+
+
+def sort_actions(actions: list[Action]) -> list[Action]:
+    return sorted(actions, key=lambda a: (PRIORITY.index(a.action), str(a.extra.get("driver", ""))))
+
+
+def fmt_num(x: float | None, digits: int = 3) -> str:
+    """A number for a sentence: 3 significant digits, thousands separators for large values."""
+    if x is None:
+        return "n/a"
+    ax = abs(x)
+    if ax >= 1000:
+        return f"{x:,.0f}"
+    if ax >= 100:
+        return f"{x:.0f}"
+    if ax == 0:
+        return "0"
+    return f"{x:.{digits}g}"
+
+
+def pct_change(before: float, after: float) -> str:
+    if before == 0:
+        return ""
+    ch = (after - before) / abs(before) * 100
+    word = "rose" if ch > 0 else "fell"
+    return f"{word} by about {abs(ch):.0f}%"
