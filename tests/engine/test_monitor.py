@@ -1,0 +1,257 @@
+"""Tests of drift.engine.monitor and the CSW / simulated monitoring tables."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from drift.engine.arma import ErrorModel, fit_error_model, prewhiten
+from drift.engine.monitor import DETECTORS, monitor, reference_fit
+from drift.engine.tables import csw as csw_table
+from drift.engine.tables import monitoring as mon_table
+from drift.exceptions import InsufficientDataError
+
+
+def _design(rng: np.random.Generator, M: int, T: int, k: int = 3) -> np.ndarray:
+    return np.concatenate([np.ones((M, T, 1)), rng.standard_normal((M, T, k - 1))], axis=2)
+
+
+# ------------------------------------------------------------------------------------------- tables
+@pytest.mark.parametrize("level, a2", [(0.10, 6.2514), (0.05, 7.8147), (0.01, 11.345)])
+def test_csw_a_squared_from_defining_equation(level: float, a2: float) -> None:
+    # Chu, Stinchcombe & White (1996) eq. 3.5; values [C] in REFERENCES.md.
+    assert csw_table.a_squared(level) == pytest.approx(a2, abs=6e-4)
+    assert csw_table.A_SQUARED[level] == pytest.approx(a2, abs=1e-9)
+    a = np.sqrt(a2)
+    assert 2 * (1 - stats.norm.cdf(a) + a * stats.norm.pdf(a)) == pytest.approx(level, rel=2e-4)
+
+
+def test_finite_horizon_csw_is_below_infinite_horizon() -> None:
+    # Conservativeness over finite horizons (CSW 1996): simulated finite-horizon a^2 < infinite one.
+    for h in mon_table.HORIZONS:
+        assert mon_table.critical_value("csw", 0.0, h, 0.05)[0] < csw_table.A_SQUARED[0.05]
+
+
+def test_table_lookup_edges() -> None:
+    # common practice, no source: below the first horizon -> first row; beyond the last -> error.
+    c0 = mon_table.critical_value("mosum", 0.25, mon_table.HORIZONS[0], 0.05)
+    assert mon_table.critical_value("mosum", 0.25, 0.01, 0.05) == pytest.approx(c0)
+    with pytest.raises(ValueError, match="beyond"):
+        mon_table.critical_value("mosum", 0.25, 100.0, 0.05)
+    with pytest.raises(ValueError, match="level"):
+        mon_table.critical_value("mosum", 0.25, 1.0, 0.04)
+    # interpolation lies between its neighbours; critical values grow with the horizon
+    lo, hi = (mon_table.critical_value("page", 0.0, h, 0.05)[0] for h in (1.0, 1.5))
+    mid = mon_table.critical_value("page", 0.0, 1.25, 0.05)[0]
+    assert lo < mid < hi
+    c5 = mon_table.critical_value("mosum", 0.25, 1.0, 0.05)[0]
+    p = mon_table.pvalue("mosum", 0.25, 1.0, [0.0, c5, 99.0])
+    assert p[0] == pytest.approx(0.5) and p[1] == pytest.approx(0.05, rel=1e-6) and p[2] == pytest.approx(0.005)
+
+
+def test_trigg_table_matches_references() -> None:
+    # Trigg (1964) |T| quantiles, iid normal, alpha = 0.1: 0.463 / 0.538 / 0.668 [REFERENCES.md, C].
+    assert mon_table.trigg_limit(0.1, 0.10) == pytest.approx(0.463, abs=0.003)
+    assert mon_table.trigg_limit(0.1, 0.05) == pytest.approx(0.538, abs=0.003)
+    assert mon_table.trigg_limit(0.1, 0.01) == pytest.approx(0.668, abs=0.004)
+
+
+# ---------------------------------------------------------------------------------- known answers
+def test_recursive_residuals_match_statsmodels() -> None:
+    # statsmodels 0.15.0 recursive_olsresiduals: continued recursion equals the full-sample recursion.
+    import statsmodels.api as sm
+    from statsmodels.stats.diagnostic import recursive_olsresiduals
+
+    rng = np.random.default_rng(1)
+    X = _design(rng, 1, 120)[0]
+    y = X @ np.array([1.0, 0.5, -0.3]) + rng.standard_normal(120)
+    rr = recursive_olsresiduals(sm.OLS(y, X).fit())[4]
+    fit = reference_fit(y, X, 60)
+    np.testing.assert_allclose(fit.w[0, 60:], rr[60:], rtol=1e-10, atol=1e-12)
+    ols = sm.OLS(y[:60], X[:60]).fit()
+    np.testing.assert_allclose(fit.coef[0], ols.params, rtol=1e-10)
+    assert fit.sigma[0] == pytest.approx(np.sqrt(ols.scale), rel=1e-10)
+
+
+def test_csw_path_boundary_and_pvalue_by_hand() -> None:
+    # CSW (1996): path = cumulative w / sigma-hat, boundary sqrt(n (a^2 + ln(n/m))); p from eq. 3.5.
+    rng = np.random.default_rng(2)
+    X = _design(rng, 1, 90)[0]
+    y = X @ np.array([0.0, 1.0, 1.0]) + rng.standard_normal(90)
+    m = 50
+    r = monitor(y, X, m, detector="csw")
+    fit = reference_fit(y, X, m)
+    S = np.cumsum(fit.w[0, m:] / fit.sigma[0])
+    n = np.arange(m + 1, 91)
+    b = np.sqrt(n * (7.8147 + np.log(n / m)))
+    np.testing.assert_allclose(r.path[m:], S)
+    np.testing.assert_allclose(r.boundary[m:], b)
+    assert np.all(np.isnan(r.path[:m])) and np.all(np.isnan(r.boundary[:m]))
+    assert r.statistic == pytest.approx(np.max(np.abs(S) / b))
+    A = np.max(S**2 / n - np.log(n / m))
+    assert r.pvalue == pytest.approx(float(csw_table.crossing_probability(A)))
+    assert r.critical_value == pytest.approx(7.8147)
+
+
+def test_batch_matches_per_model_loop() -> None:
+    # Oracle: batched call vs a plain loop over models (common practice, no source).
+    rng = np.random.default_rng(3)
+    X = _design(rng, 5, 80)
+    y = np.einsum("mtk,k->mt", X, np.array([1.0, 2.0, -1.0])) + rng.standard_normal((5, 80))
+    y[:, 60:] += 1.5 * np.arange(5)[:, None]  # varying shifts
+    ms = np.array([40, 45, 50, 40, 55])
+    for det in DETECTORS:
+        rb = monitor(y, X, ms, detector=det, horizon=1.0)
+        for i in range(5):
+            ri = monitor(y[i], X[i], int(ms[i]), detector=det, horizon=1.0)
+            assert rb.statistic[i] == pytest.approx(ri.statistic)
+            assert rb.alarm_index[i] == ri.alarm_index
+            np.testing.assert_allclose(rb.path[i], ri.path, equal_nan=True)
+            np.testing.assert_allclose(rb.boundary[i], ri.boundary, equal_nan=True)
+
+
+def test_alarm_index_is_first_crossing_and_scale_invariant() -> None:
+    # Invariance: rescaling y leaves every statistic unchanged (common practice, no source).
+    rng = np.random.default_rng(4)
+    X = _design(rng, 1, 200)[0]
+    y = X @ np.array([1.0, 1.0, 1.0]) + rng.standard_normal(200)
+    y[150:] += 2.0
+    for det in DETECTORS:
+        r = monitor(y, X, 100, detector=det)
+        assert r.alarm_index >= 150
+        cross = np.where(np.abs(r.path) >= r.boundary)[0]
+        assert r.alarm_index == cross[0] and r.statistic >= 1
+        r2 = monitor(1e3 * y, X, 100, detector=det)
+        assert r2.statistic == pytest.approx(r.statistic) and r2.alarm_index == r.alarm_index
+
+
+# ------------------------------------------------------------------------------------- monte carlo
+def _size(detector: str, *, ar: float = 0.0, prewhitened: str = "", M: int = 2000, m: int = 100,
+          horizon: float = 2.0, seed: int = 11) -> float:
+    rng = np.random.default_rng(seed)
+    T = m + int(horizon * m)
+    X = _design(rng, M, T)
+    u = rng.standard_normal((M, T))
+    if ar:
+        for t in range(1, T):  # AR(1) errors
+            u[:, t] += ar * u[:, t - 1]
+    y = np.einsum("mtk,k->mt", X, np.array([1.0, 0.5, -0.5])) + u
+    if prewhitened:
+        coef = np.linalg.solve(np.einsum("mti,mtj->mij", X[:, :m], X[:, :m]),
+                               np.einsum("mti,mt->mi", X[:, :m], y[:, :m])[:, :, None])[:, :, 0]
+        resid = y[:, :m] - np.einsum("mtk,mk->mt", X[:, :m], coef)
+        em = fit_error_model(resid, ("ar", 1))
+        if prewhitened == "oracle":  # the true filter: isolates the filter from phi-hat's sampling error
+            em = ErrorModel(np.full((M, 1), ar), np.zeros((M, 0)), np.ones(M), em.nobs, "true")
+        y, X = prewhiten(y, X, em)
+    r = monitor(y, X, m, detector=detector, horizon=horizon, level=0.05)
+    return float(np.mean(r.alarm_index >= 0))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("detector", ["csw", "mosum", "page"])
+def test_false_alarm_rate_iid(detector: str) -> None:
+    # Size over the configured horizon <= nominal 5% + 2.5 MC s.e. (seeded simulation, invented data).
+    M = 2000
+    size = _size(detector, M=M)
+    assert size <= 0.05 + 2.5 * np.sqrt(0.05 * 0.95 / M)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("detector", ["csw", "mosum", "page"])
+def test_false_alarm_rate_ar1_with_prewhitening(detector: str) -> None:
+    # AR(1) errors phi = 0.5 (seeded simulation, invented data). Raw monitoring over-rejects badly; after
+    # prewhitening by the true filter the size is nominal (<= 5% + 2.5 MC s.e.). With phi estimated on the
+    # m = 100 reference residuals the size is much improved but above nominal (measured 9.0% csw, 12.8%
+    # mosum, 9.9% page; 7.3 / 8.6 / 7.7% at m = 300): phi-hat's downward bias and sampling error leave
+    # residual autocorrelation that accumulates over a long horizon. Documented, asserted loosely here.
+    M = 2000
+    raw = _size(detector, ar=0.5, M=M)
+    oracle = _size(detector, ar=0.5, prewhitened="oracle", M=M)
+    est = _size(detector, ar=0.5, prewhitened="estimated", M=M)
+    assert raw > 0.2
+    assert oracle <= 0.05 + 2.5 * np.sqrt(0.05 * 0.95 / M)
+    assert est < 0.15 and est < raw / 2
+
+
+@pytest.mark.slow
+def test_power_and_late_change_detection_speed() -> None:
+    # A late coefficient shift (at 75% of a horizon-2 span) is detected; mosum and page react faster
+    # than csw (seeded simulation, invented data).
+    rng = np.random.default_rng(12)
+    M, m, T = 500, 100, 300
+    X = _design(rng, M, T)
+    beta = np.array([1.0, 0.5, -0.5])
+    y = np.einsum("mtk,k->mt", X, beta) + rng.standard_normal((M, T))
+    tb = 250
+    y[:, tb:] += X[:, tb:, 1] * 1.0 + 1.0  # slope and level shift
+    delays = {}
+    for det in DETECTORS:
+        r = monitor(y, X, m, detector=det, horizon=2.0)
+        hit = r.alarm_index >= tb
+        # csw is known to be slow on late changes (CSW 1996; REFERENCES.md): a lower bar for it.
+        assert hit.mean() > (0.6 if det == "csw" else 0.9), det
+        delays[det] = np.median(np.where(hit, r.alarm_index - tb, T - tb))
+    assert delays["mosum"] < delays["csw"]
+    assert delays["page"] < delays["csw"]
+
+
+# ------------------------------------------------------------------------------------- robustness
+def test_bad_arguments() -> None:
+    rng = np.random.default_rng(5)
+    X = _design(rng, 1, 50)[0]
+    y = rng.standard_normal(50)
+    with pytest.raises(ValueError, match="detector"):
+        monitor(y, X, 20, detector="nope")
+    with pytest.raises(ValueError, match="level"):
+        monitor(y, X, 20, detector="mosum", level=0.04)
+    with pytest.raises(ValueError, match="window"):
+        monitor(y, X, 20, detector="mosum", window=0.3)
+    with pytest.raises(ValueError, match="gamma"):
+        monitor(y, X, 20, detector="page", gamma=0.3)
+    with pytest.raises(ValueError, match="horizon"):
+        monitor(y, X, 20, horizon=-1.0)
+    with pytest.raises(ValueError, match="beyond"):
+        monitor(y, X, 5, detector="mosum")  # (50 - 5)/5 = 9 > table
+    with pytest.raises(TypeError, match="m must"):
+        monitor(y, X, 20.5)
+    with pytest.raises(ValueError, match="shape"):
+        monitor(y, X[:10], 5)
+
+
+@pytest.mark.parametrize("case", ["tiny", "constant", "collinear", "nan_ref", "all_nan", "m_too_big"])
+def test_degenerate_inputs_raise_own_error(case: str) -> None:
+    rng = np.random.default_rng(6)
+    T = 40
+    X = _design(rng, 1, T)[0]
+    y = rng.standard_normal(T)
+    m = 20
+    if case == "tiny":
+        m = 3
+    elif case == "constant":
+        y = np.full(T, 2.0)
+    elif case == "collinear":
+        X[:, 2] = 2 * X[:, 1]
+    elif case == "nan_ref":
+        y[:18] = np.nan
+    elif case == "all_nan":
+        y[:] = np.nan
+    elif case == "m_too_big":
+        m = T
+    with pytest.raises(InsufficientDataError):
+        monitor(y, X, m)
+
+
+def test_batch_with_degenerate_model_and_nan_rows() -> None:
+    # One bad model in a batch gives NaN, not an exception; NaN rows in the monitored span are skipped.
+    rng = np.random.default_rng(7)
+    X = _design(rng, 3, 60)
+    y = rng.standard_normal((3, 60))
+    y[1] = 1.0  # constant: zero residual variance
+    y[2, 45:48] = np.nan
+    for det in DETECTORS:
+        r = monitor(y, X, 30, detector=det, horizon=1.0)
+        assert np.isnan(r.statistic[1]) and r.alarm_index[1] == -1 and np.isnan(r.pvalue[1])
+        assert np.isfinite(r.statistic[[0, 2]]).all()
+        assert r.nobs[2] == 27 and r.params["degenerate_models"] == 1
