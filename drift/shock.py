@@ -1,0 +1,179 @@
+"""``drift shock``: the manual run after a known market shock.
+
+For each model, at the shock date: the Chow break test when enough observations follow it (more than the
+number of regressors), the predictive-failure test when few do; coefficients before versus after with
+intervals per driver; how the as-deployed one-step errors changed; a chart; and a verdict in plain words.
+It changes no deployed model and is recorded in the runs table (kind ``shock``).
+"""
+
+from __future__ import annotations
+
+import logging
+from datetime import date
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from drift import engine
+from drift.check import _num, _prewhiten, as_of_moment
+from drift.config import Config
+from drift.engine.split import split_coefficients
+from drift.exceptions import DriftError, InsufficientDataError
+from drift.panel import build_design
+from drift.verdicts import fmt_num, pct_change
+
+log = logging.getLogger(__name__)
+
+
+def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: Any) -> dict[str, Any]:
+    """Shock analysis of one model (see module docstring); raises InsufficientDataError."""
+    level = cfg.check.level
+    d = build_design(cfg, model, obs[obs["series"].isin(model.series)], pd.Timestamp(moment))
+    y, X, _ = _prewhiten(model, d)
+    at = int(np.searchsorted(d.periods.values, np.datetime64(pd.Timestamp(when))))
+    if at <= 0 or at >= d.n:
+        raise InsufficientDataError(f"shock analysis of '{model.name}' at {when}", 1, 0,
+                                    f"the date must fall inside the data ({d.periods[0].date()} to "
+                                    f"{d.periods[-1].date()})")
+    ok = np.isfinite(y) & np.isfinite(X).all(axis=1)
+    n1, n2 = int(ok[:at].sum()), int(ok[at:].sum())
+    k = d.k
+    tests: list[dict[str, Any]] = []
+    if n2 > k and n1 > k:
+        r = engine.chow(y, X, at)
+        tests.append({"test": "chow", "statistic": _num(r.statistic), "pvalue": _num(r.pvalue),
+                      "df": list(r.params["df"])})
+    if n2 >= 1 and n1 > k:
+        r = engine.predictive_failure(y, X, at)
+        tests.append({"test": "predictive-failure", "statistic": _num(r.statistic), "pvalue": _num(r.pvalue),
+                      "df": list(r.params["df"])})
+    if not tests:
+        raise InsufficientDataError(f"shock analysis of '{model.name}' at {when}", k + 1, n1,
+                                    "too few observations before the date")
+    main = tests[0]
+    drivers: list[dict[str, Any]] = []
+    cols = list(d.driver_columns.values())
+    sp = None
+    if cols and n2 >= 2:
+        try:
+            sp = split_coefficients(y, X, at, cols)
+        except InsufficientDataError as exc:
+            log.info("before/after coefficients of %s not available: %s", model.name, exc)
+    for i, (s, j) in enumerate(d.driver_columns.items()):
+        entry: dict[str, Any] = {"series": s, "lag": d.lags.get(s)}
+        if sp is not None:
+            entry.update(coef_before=_num(sp.before[i]), coef_after=_num(sp.after[i]),
+                         ci_before=[_num(v) for v in sp.ci_before[i]], ci_after=[_num(v) for v in sp.ci_after[i]])
+        else:
+            entry.update(coef_before=None, coef_after=None, ci_before=None, ci_after=None)
+        drivers.append(entry)
+    # as-deployed one-step errors before vs after (same number of periods on each side)
+    rf = engine.recursive_fit(y, X)
+    fe = np.asarray(rf.forecast_error)
+    w = max(1, min(n2, at - d.n_ref if at > d.n_ref else n2, 52))
+    before = fe[max(0, at - w):at]
+    after = fe[at:at + w]
+    acc = {"window": int(w),
+           "mae_before": _num(np.nanmean(np.abs(before))) if np.isfinite(before).any() else None,
+           "mae_after": _num(np.nanmean(np.abs(after))) if np.isfinite(after).any() else None,
+           "bias_before": _num(np.nanmean(before)) if np.isfinite(before).any() else None,
+           "bias_after": _num(np.nanmean(after)) if np.isfinite(after).any() else None}
+    p = main["pvalue"]
+    label = "Chow break test" if main["test"] == "chow" else "predictive-failure test"
+    if p is not None and p < level:
+        verdict = "refit"
+        moved = []
+        if sp is not None:
+            for i, s in enumerate(d.driver_columns):
+                lo, hi = sp.ci_after[i]
+                b, a = sp.before[i], sp.after[i]
+                if not (sp.ci_before[i][0] <= a <= sp.ci_before[i][1]):
+                    moved.append(f"the {s} effect {pct_change(b, a)} ({fmt_num(b)} → {fmt_num(a)})")
+        what = "; ".join(moved) if moved else "the relationship shifted (level or several coefficients together)"
+        reason = (f"{what[0].upper() + what[1:]} after the shock; {label} p = {p:.2g} "
+                  f"(F = {fmt_num(main['statistic'])}, df {main['df'][0]}, {main['df'][1]}). "
+                  f"Refit on data since {when.isoformat()}")
+        if n2 < 2 * k:
+            reason += f" once more data have come in (only {n2} periods so far)"
+        reason += "."
+    else:
+        verdict = "keep"
+        reason = (f"No evidence that the relationship changed at {when.isoformat()} "
+                  f"({label} p = {fmt_num(p) if p is not None else 'n/a'}, {n2} periods after the date). Keep the model.")
+    return {"name": model.name, "tests": tests, "drivers": drivers, "accuracy": acc, "verdict": verdict,
+            "reason": reason, "nobs_before": n1, "nobs_after": n2,
+            "_chart": {"periods": [p.date().isoformat() for p in d.periods], "actual": d.y,
+                       "forecast": np.where(np.arange(d.n) >= d.n_ref, d.y - fe, np.nan)}}
+
+
+def run_shock(cfg: Config, store: Any, when: date, *, models: list[str] | None = None,
+              as_of: date | None = None, out: Path | None = None) -> dict[str, Any]:
+    """Shock analysis for the chosen models; recorded as a run; JSON-ready dict."""
+    from datetime import datetime, timezone
+
+    day = as_of or datetime.now(timezone.utc).date()
+    moment = as_of_moment(day)
+    chosen = [cfg.model(n) for n in models] if models else list(cfg.models)
+    run_id = store.start_run("shock", as_of=day, detail={"date": when.isoformat(),
+                                                          "models": [m.name for m in chosen]})
+    try:
+        obs = store.load_observations(sorted({s for m in chosen for s in m.series}), moment)
+        results, errors = [], {}
+        for m in chosen:
+            try:
+                results.append(shock_model(cfg, m, obs, when, moment))
+            except DriftError as exc:
+                errors[m.name] = str(exc)
+        if out is not None:
+            _charts(results, when, out)
+        for r in results:
+            r.pop("_chart", None)
+        res = {"date": when.isoformat(), "as_of": day.isoformat(), "models": results, "errors": errors}
+        store.finish_run(run_id, "ok", detail={"date": when.isoformat(),
+                                               "verdicts": {r["name"]: r["verdict"] for r in results}})
+        return res
+    except BaseException as exc:
+        store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
+        raise
+
+
+def _charts(results: list[dict[str, Any]], when: date, out: Path) -> None:
+    from drift.delivery.charts import forecast_chart
+
+    out.mkdir(parents=True, exist_ok=True)
+    for r in results:
+        ch = r["_chart"]
+        try:
+            png = forecast_chart(ch["periods"], ch["actual"], ch["forecast"], monitor_start=when.isoformat(),
+                                 title=f"{r['name']}: actual vs as-deployed forecast around the shock")
+        except TypeError:
+            png = forecast_chart(ch["periods"], ch["actual"], ch["forecast"])
+        path = out / f"shock-{r['name']}.png"
+        path.write_bytes(png)
+        r["chart"] = str(path)
+
+
+def format_shock(res: dict[str, Any]) -> str:
+    lines = [f"drift shock analysis at {res['date']} (data as of {res['as_of']})"]
+    for r in res["models"]:
+        lines.append("")
+        lines.append(f"{r['name']}  →  {r['verdict'].upper()}: {r['reason']}")
+        for t in r["tests"]:
+            lines.append(f"    {t['test']:<20} F = {fmt_num(t['statistic'])}  df {t['df']}  p = {t['pvalue']:.3g}")
+        for dv in r["drivers"]:
+            if dv["coef_before"] is not None:
+                lines.append(f"    {dv['series']:<24} before {fmt_num(dv['coef_before'])} "
+                             f"[{fmt_num(dv['ci_before'][0])}, {fmt_num(dv['ci_before'][1])}]  after "
+                             f"{fmt_num(dv['coef_after'])} [{fmt_num(dv['ci_after'][0])}, {fmt_num(dv['ci_after'][1])}]")
+        a = r["accuracy"]
+        if a["mae_before"] is not None and a["mae_after"] is not None:
+            lines.append(f"    one-step MAE {fmt_num(a['mae_before'])} before → {fmt_num(a['mae_after'])} after "
+                         f"({a['window']} periods each side)")
+        if r.get("chart"):
+            lines.append(f"    chart: {r['chart']}")
+    for name, err in res["errors"].items():
+        lines.append(f"\n{name}  →  NOT ANALYSED: {err}")
+    lines.append("\nStatistical evidence, not certainty: the decision stays with the model's owner.")
+    return "\n".join(lines)
