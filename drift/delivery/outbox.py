@@ -1,0 +1,450 @@
+"""The outbox: every notice is written to the store first, then delivered, retried, and never sent twice.
+
+Life of an outbox row::
+
+    pending --claim--> sending --sent ok--> sent
+       ^                  |  \\--DeliveryError (known not delivered)--> pending, attempts+1, backoff
+       |                  |   \\--DeliveryUncertain / unexpected error--> uncertain (or left sending)
+       |                  \\--found on a later run, claim expired--> idempotent channel: pending again
+       |                                                             other channels:     uncertain
+       \\---------------- resolve_uncertain(resend=True) by an operator ------------------/
+
+Rows
+    :func:`enqueue` writes one row per channel inside the caller's transaction (the one that writes the
+    alert row), so an alert and its notices exist together or not at all. The idempotency key is
+    ``sha256(alert id | condition | severity | as_of | notice number | channel name)``, unique in the table.
+
+Delivery (:func:`deliver_pending`)
+    Due ``pending`` rows are taken in id order. Each row is *claimed* first — ``status = sending``,
+    ``attempts + 1``, ``next_attempt_at = now + lease`` — in its own committed transaction (a conditional
+    update, so two processes can never both claim it). Then the channel sends; then the row is marked
+    ``sent`` with ``sent_at``. A failure the channel knows left nothing delivered (connection refused, SMTP
+    reply 4xx/5xx, HTTP non-2xx) puts the row back to ``pending`` with ``last_error`` and
+    ``next_attempt_at = now + min(retry_backoff * 2**(attempts-1), retry_max_backoff)``.
+
+The rule that guarantees "never twice"
+    A row that may have reached the recipient is never re-sent automatically:
+
+    - a channel error that leaves it unknown whether the message got through (the SMTP connection dropped
+      after the message data was sent, an HTTP timeout after the request went out) marks the row
+      ``uncertain`` at once;
+    - a row found ``sending`` on a later run (the process died between send and mark-sent, or the store
+      failed while marking) is, once its claim lease has expired: for an *idempotent* channel (the folder
+      sink, which checks the key in its file under a lock before appending) put back to ``pending`` and
+      sent again — the channel itself drops the duplicate; for every other channel (e-mail, webhook)
+      marked ``uncertain``. While the lease runs it is left alone: another process may be sending it.
+    - ``uncertain`` rows are reported by :func:`outbox_summary` (for ``drift status``) and stay so until
+      an operator calls :func:`resolve_uncertain` (re-send, or accept as delivered).
+
+    The e-mail ``Message-ID`` and the webhook ``Idempotency-Key`` header carry the key as well, so a
+    receiver that deduplicates can drop a manual re-send; the rule above does not rely on that.
+
+Channels
+    A registry keyed by ``kind`` (``email``, ``folder``, ``webhook``); :func:`register_channel` adds one.
+    A channel's ``send`` raises :class:`DeliveryError` when the message was certainly not delivered,
+    :class:`ChannelUnavailable` (a DeliveryError) when no message can go through it now (the remaining
+    rows of that channel wait for the next call), and :class:`DeliveryUncertain` when delivery is unknown.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import json
+import logging
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from typing import Any, ClassVar
+
+import sqlalchemy as sa
+
+from drift.config import Config
+from drift.exceptions import DeliveryError
+from drift.store import Store, outbox, utcnow
+
+log = logging.getLogger(__name__)
+
+#: how long a claimed ("sending") row belongs to the process that claimed it, unless the config sets
+#: ``alerts.sending_timeout``; well above any channel's own timeout (20 s for SMTP by default)
+DEFAULT_SENDING_LEASE = timedelta(minutes=15)
+#: cap on the backoff exponent (the delay is capped by retry_max_backoff anyway; this avoids overflow)
+_MAX_DOUBLINGS = 30
+#: built-in channel kinds and the modules that register them (imported on first use)
+_BUILTIN = {"email": "drift.delivery.email", "folder": "drift.delivery.folder", "webhook": "drift.delivery.webhook"}
+#: statuses of an outbox row
+STATUSES = ("pending", "sending", "sent", "uncertain", "dead")
+
+
+class ChannelUnavailable(DeliveryError):
+    """Nothing can be delivered through this channel right now (server down, missing credentials)."""
+
+
+class DeliveryUncertain(DeliveryError):
+    """The message may or may not have been delivered; the row is not re-sent automatically."""
+
+
+@dataclass(frozen=True)
+class OutboxMessage:
+    """One outbox row as a channel sees it."""
+
+    id: int
+    key: str
+    channel: str
+    subject: str
+    notice: dict[str, Any]
+    attempts: int
+    alert_id: int | None
+
+
+class Channel:
+    """Base class of a delivery channel. Subclasses set ``kind`` and implement :meth:`send`.
+
+    Parameters
+    ----------
+    cfg : the whole configuration (for paths relative to the config file).
+    spec : the channel's own config entry.
+    name : the channel's name (``spec.name`` or a default, see :func:`configured_channels`).
+    """
+
+    kind: ClassVar[str] = ""
+    #: True when ``send`` itself skips a message whose key was already delivered, so a row found
+    #: ``sending`` after a crash can safely be sent again
+    idempotent: ClassVar[bool] = False
+
+    def __init__(self, cfg: Config, spec: Any, name: str) -> None:
+        self.cfg = cfg
+        self.spec = spec
+        self.name = name
+
+    def send(self, msg: OutboxMessage) -> None:  # pragma: no cover - interface
+        """Deliver one message or raise DeliveryError / ChannelUnavailable / DeliveryUncertain."""
+        raise NotImplementedError
+
+    def flush(self, delivered: Sequence[OutboxMessage]) -> None:
+        """Called once after a delivery round with the messages this channel delivered in it."""
+
+    def close(self) -> None:
+        """Release connections; called once after the round."""
+
+
+_REGISTRY: dict[str, type[Channel]] = {}
+
+
+def register_channel(cls: type[Channel]) -> type[Channel]:
+    """Class decorator: register a channel class under its ``kind``."""
+    if not cls.kind:
+        raise ValueError("a channel class needs a non-empty 'kind'")
+    _REGISTRY[cls.kind] = cls
+    return cls
+
+
+def channel_class(kind: str) -> type[Channel]:
+    """The channel class registered for ``kind`` (importing the built-in module on first use)."""
+    if kind not in _REGISTRY and kind in _BUILTIN:
+        importlib.import_module(_BUILTIN[kind])
+    try:
+        return _REGISTRY[kind]
+    except KeyError:
+        raise ValueError(f"unknown channel kind {kind!r}; known: {sorted(set(_REGISTRY) | set(_BUILTIN))}") from None
+
+
+def channel_kinds() -> list[str]:
+    """Every known channel kind (built-in ones included)."""
+    return sorted(set(_REGISTRY) | set(_BUILTIN))
+
+
+def configured_channels(cfg: Config) -> list[tuple[str, Any]]:
+    """``(name, spec)`` of every configured channel.
+
+    A channel without ``name`` is called by its kind (``email``), or ``email-2``, ``email-3`` ... for the
+    second and later unnamed channels of one kind, in config order. Names must be unique.
+    """
+    out: list[tuple[str, Any]] = []
+    seen: dict[str, int] = {}
+    for spec in cfg.alerts.channels:
+        if spec.name:
+            name = spec.name
+        else:
+            seen[spec.kind] = seen.get(spec.kind, 0) + 1
+            name = spec.kind if seen[spec.kind] == 1 else f"{spec.kind}-{seen[spec.kind]}"
+        if any(n == name for n, _ in out):
+            raise ValueError(f"alerts.channels: two channels are named {name!r}; give each a unique 'name'")
+        out.append((name, spec))
+    return out
+
+
+def make_channels(cfg: Config) -> dict[str, Channel]:
+    """One channel object per configured channel, by name."""
+    return {name: channel_class(spec.kind)(cfg, spec, name) for name, spec in configured_channels(cfg)}
+
+
+def idempotency_key(alert_id: int, condition: str, severity: str, as_of: Any, seq: int, channel: str) -> str:
+    """sha256 hex of the alert id, condition, severity, as-of date, notice number and channel name."""
+    raw = "|".join([str(alert_id), condition, severity, str(as_of), str(seq), channel])
+    return hashlib.sha256(raw.encode("utf-8")).hexdigest()
+
+
+def enqueue(conn: Any, channels: Sequence[tuple[str, Any]], notice: Mapping[str, Any], *, alert_id: int,
+            condition: str, severity: str, as_of: Any, seq: int, now: datetime) -> tuple[str, ...]:
+    """Write one pending row per channel in the caller's transaction; return their keys.
+
+    ``seq`` numbers the notices of one alert (1 for the first, 2 for the first "worse" ...), so every
+    notice gets its own keys. Chart data is kept only on e-mail rows (the only channel that shows charts).
+    """
+    from drift.delivery.messages import subject_for
+
+    keys: list[str] = []
+    rows = []
+    for name, spec in channels:
+        key = idempotency_key(alert_id, condition, severity, as_of, seq, name)
+        doc = dict(notice)
+        doc.update(channel=name, key=key)
+        if getattr(spec, "kind", None) != "email":
+            doc["charts"] = None
+        doc["subject"] = subject_for(doc)
+        rows.append({"alert": alert_id, "channel": name, "idempotency_key": key, "subject": doc["subject"],
+                     "payload": json.dumps(doc, default=str), "status": "pending", "attempts": 0,
+                     "next_attempt_at": now, "created_at": now})
+        keys.append(key)
+    if rows:
+        conn.execute(outbox.insert(), rows)
+    return tuple(keys)
+
+
+def backoff(cfg: Config, attempts: int) -> timedelta:
+    """Delay before the next try after ``attempts`` failed ones: doubling from retry_backoff, capped."""
+    base, cap = cfg.alerts.retry_backoff, cfg.alerts.retry_max_backoff
+    if attempts < 1:
+        return timedelta(0)
+    factor = 2 ** min(attempts - 1, _MAX_DOUBLINGS)
+    return min(base * factor, cap)
+
+
+def sending_lease(cfg: Config) -> timedelta:
+    lease = getattr(cfg.alerts, "sending_timeout", None)
+    return lease if isinstance(lease, timedelta) and lease > timedelta(0) else DEFAULT_SENDING_LEASE
+
+
+@dataclass(frozen=True)
+class DeliveryFailure:
+    """One failed try: which channel, which row, what went wrong (no secrets in it)."""
+
+    channel: str
+    key: str
+    error: str
+
+
+@dataclass(frozen=True)
+class DeliveryReport:
+    """What one :func:`deliver_pending` call did.
+
+    Attributes
+    ----------
+    sent : rows delivered and marked sent.
+    failed : rows tried and put back to pending (with backoff).
+    uncertain : rows newly marked uncertain (not re-sent automatically).
+    recovered : stale ``sending`` rows of idempotent channels put back to pending in this call.
+    deferred : due rows not tried (their channel was unavailable or is no longer configured).
+    pending : pending rows left after the call (due later or deferred).
+    errors : one entry per failed or uncertain try.
+    """
+
+    sent: int = 0
+    failed: int = 0
+    uncertain: int = 0
+    recovered: int = 0
+    deferred: int = 0
+    pending: int = 0
+    errors: tuple[DeliveryFailure, ...] = field(default_factory=tuple)
+
+    @property
+    def ok(self) -> bool:
+        return self.failed == 0 and self.uncertain == 0 and self.deferred == 0
+
+
+def _message(row: Any) -> OutboxMessage:
+    try:
+        notice = json.loads(row.payload)
+    except ValueError:
+        notice = {}
+    return OutboxMessage(id=int(row.id), key=str(row.idempotency_key), channel=str(row.channel),
+                         subject=str(row.subject), notice=notice if isinstance(notice, dict) else {},
+                         attempts=int(row.attempts or 0), alert_id=row.alert)
+
+
+def _claim(store: Store, row_id: int, now: datetime, lease: timedelta) -> bool:
+    with store.begin() as conn:
+        res = conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "pending").values(
+            status="sending", attempts=outbox.c.attempts + 1, next_attempt_at=now + lease))
+        return res.rowcount == 1
+
+
+def _mark_sent(store: Store, row_id: int, now: datetime) -> None:
+    with store.begin() as conn:
+        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "sending").values(
+            status="sent", sent_at=now, last_error=None))
+
+
+def _mark_failed(store: Store, row_id: int, error: str, next_at: datetime) -> None:
+    with store.begin() as conn:
+        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "sending").values(
+            status="pending", last_error=error, next_attempt_at=next_at))
+
+
+def _mark_uncertain(store: Store, row_id: int, error: str, *, from_status: str = "sending") -> bool:
+    with store.begin() as conn:
+        res = conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == from_status).values(
+            status="uncertain", last_error=error))
+        return res.rowcount == 1
+
+
+def _recover_stale(store: Store, channels: Mapping[str, Channel], now: datetime,
+                   errors: list[DeliveryFailure]) -> tuple[int, int]:
+    """Resolve ``sending`` rows whose claim lease expired; return (recovered, uncertain)."""
+    recovered = uncertain = 0
+    with store.connect() as conn:
+        stale = conn.execute(sa.select(outbox).where(outbox.c.status == "sending", outbox.c.next_attempt_at <= now)
+                             .order_by(outbox.c.id)).fetchall()
+    for row in stale:
+        ch = channels.get(row.channel)
+        if ch is not None and ch.idempotent:
+            with store.begin() as conn:
+                res = conn.execute(outbox.update().where(outbox.c.id == row.id, outbox.c.status == "sending")
+                                   .values(status="pending", next_attempt_at=now))
+            recovered += res.rowcount
+            continue
+        msg = ("claimed for sending at an earlier run but never marked sent (the process stopped or the store "
+               "failed): it may or may not have been delivered, so it is not re-sent automatically")
+        if _mark_uncertain(store, int(row.id), msg):
+            uncertain += 1
+            errors.append(DeliveryFailure(str(row.channel), str(row.idempotency_key), msg))
+            log.warning("outbox row %s (%s) is uncertain: %s", row.id, row.channel, msg)
+    return recovered, uncertain
+
+
+def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
+                    channels: Mapping[str, Channel] | None = None) -> DeliveryReport:
+    """Send every due pending outbox row through its channel (see the module docstring for the rules).
+
+    Parameters
+    ----------
+    cfg : the configuration (channels, retry_backoff, retry_max_backoff).
+    store : the store.
+    now : the current time (tz-aware); defaults to UTC now. Tests pass a controlled clock.
+    channels : channel objects by name, replacing those built from ``cfg`` (tests, custom channels).
+
+    Returns
+    -------
+    DeliveryReport
+    """
+    now = now or utcnow()
+    if now.tzinfo is None:
+        raise ValueError("now must be a tz-aware datetime")
+    chans = dict(channels) if channels is not None else make_channels(cfg)
+    lease = sending_lease(cfg)
+    errors: list[DeliveryFailure] = []
+    sent = failed = uncertain = deferred = 0
+    delivered: dict[str, list[OutboxMessage]] = {}
+    down: set[str] = set()
+    try:
+        recovered, uncertain = _recover_stale(store, chans, now, errors)
+        with store.connect() as conn:
+            due = conn.execute(sa.select(outbox).where(outbox.c.status == "pending", outbox.c.next_attempt_at <= now)
+                               .order_by(outbox.c.id)).fetchall()
+        for row in due:
+            ch = chans.get(row.channel)
+            if ch is None or row.channel in down:
+                if ch is None:
+                    log.warning("outbox row %s: no channel named %r in the config; left pending", row.id,
+                                row.channel)
+                deferred += 1
+                continue
+            if not _claim(store, int(row.id), now, lease):
+                continue  # claimed by someone else meanwhile
+            msg = _message(row)
+            msg = OutboxMessage(msg.id, msg.key, msg.channel, msg.subject, msg.notice, msg.attempts + 1, msg.alert_id)
+            try:
+                ch.send(msg)
+            except DeliveryUncertain as exc:
+                _mark_uncertain(store, msg.id, str(exc))
+                uncertain += 1
+                errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
+                log.warning("outbox row %s (%s): delivery uncertain, not re-sent: %s", msg.id, msg.channel, exc)
+                continue
+            except DeliveryError as exc:
+                _mark_failed(store, msg.id, str(exc), now + backoff(cfg, msg.attempts))
+                failed += 1
+                errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
+                log.warning("outbox row %s (%s) not delivered (try %d): %s", msg.id, msg.channel, msg.attempts, exc)
+                if isinstance(exc, ChannelUnavailable):
+                    down.add(msg.channel)
+                continue
+            except Exception as exc:  # noqa: BLE001 - a channel bug must not stop other rows
+                # unknown whether anything went out: leave it "sending"; the stale-claim rule resolves it
+                log.exception("outbox row %s (%s): unexpected error while sending", msg.id, msg.channel)
+                errors.append(DeliveryFailure(msg.channel, msg.key, f"{exc.__class__.__name__}: {exc}"))
+                uncertain += 1
+                continue
+            _mark_sent(store, msg.id, now)
+            sent += 1
+            delivered.setdefault(msg.channel, []).append(msg)
+    finally:
+        for name, ch in chans.items():
+            try:
+                if delivered.get(name):
+                    ch.flush(delivered[name])
+            except Exception:  # noqa: BLE001 - pages are a convenience; rows are already sent
+                log.exception("channel %s: writing its summary failed", name)
+            try:
+                ch.close()
+            except Exception:  # noqa: BLE001
+                log.exception("channel %s: close failed", name)
+    with store.connect() as conn:
+        pending = int(conn.execute(sa.select(sa.func.count()).select_from(outbox)
+                                   .where(outbox.c.status == "pending")).scalar_one())
+    return DeliveryReport(sent=sent, failed=failed, uncertain=uncertain, recovered=recovered, deferred=deferred,
+                          pending=pending, errors=tuple(errors))
+
+
+# --------------------------------------------------------------------------------------------- status
+
+
+@dataclass(frozen=True)
+class OutboxSummary:
+    """Counts per status, the uncertain rows (for an operator) and the next retry time."""
+
+    counts: dict[str, int]
+    uncertain: tuple[dict[str, Any], ...]
+    next_attempt_at: datetime | None
+
+
+def outbox_summary(store: Store) -> OutboxSummary:
+    """For ``drift status``: how many rows per status, which are uncertain, when the next retry is due."""
+    with store.connect() as conn:
+        counts = {s: 0 for s in STATUSES}
+        for status, n in conn.execute(sa.select(outbox.c.status, sa.func.count()).group_by(outbox.c.status)):
+            counts[str(status)] = int(n)
+        unc = conn.execute(sa.select(outbox.c.id, outbox.c.channel, outbox.c.idempotency_key, outbox.c.subject,
+                                     outbox.c.last_error, outbox.c.created_at, outbox.c.attempts)
+                           .where(outbox.c.status == "uncertain").order_by(outbox.c.id)).fetchall()
+        nxt = conn.execute(sa.select(sa.func.min(outbox.c.next_attempt_at))
+                           .where(outbox.c.status == "pending")).scalar_one()
+    if isinstance(nxt, str):  # aggregate results bypass the column type on some backends
+        nxt = datetime.fromisoformat(nxt)
+    if isinstance(nxt, datetime) and nxt.tzinfo is None:
+        from datetime import timezone
+        nxt = nxt.replace(tzinfo=timezone.utc)
+    return OutboxSummary(counts=counts, uncertain=tuple(dict(r._mapping) for r in unc), next_attempt_at=nxt)
+
+
+def resolve_uncertain(store: Store, ids: Sequence[int], *, resend: bool, now: datetime | None = None) -> int:
+    """An operator's decision on uncertain rows: ``resend=True`` queues them again now, ``False`` accepts
+    them as delivered (status sent). Returns the number of rows changed."""
+    now = now or utcnow()
+    values: dict[str, Any] = ({"status": "pending", "next_attempt_at": now} if resend
+                              else {"status": "sent", "sent_at": now})
+    with store.begin() as conn:
+        res = conn.execute(outbox.update().where(outbox.c.id.in_(list(ids)), outbox.c.status == "uncertain")
+                           .values(**values))
+        return int(res.rowcount)

@@ -1,0 +1,89 @@
+"""Webhook channel: one JSON POST per notice with ``urllib.request`` and a timeout.
+
+Body: the notice without chart data, plus ``text`` (the plain-text message). Headers: ``Content-Type:
+application/json``, ``Idempotency-Key: <key>`` (a receiver may deduplicate on it), and one header per
+``headers_env`` entry whose value is read from the named environment variable (e.g. a token; never logged;
+a missing variable is a ChannelUnavailable naming the variable).
+
+Outcomes: 2xx -> sent. Non-2xx -> DeliveryError with the status code (the receiver answered, so it did
+not take the notice). Connection refused / name not resolved -> ChannelUnavailable. A timeout or a reset
+after the request may have gone out -> DeliveryUncertain (not re-sent automatically).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import urllib.error
+import urllib.request
+from typing import Any
+
+from drift.config import Config, WebhookChannel
+from drift.delivery.messages import render
+from drift.delivery.outbox import (
+    Channel,
+    ChannelUnavailable,
+    DeliveryError,
+    DeliveryUncertain,
+    OutboxMessage,
+    register_channel,
+)
+
+#: bytes of a non-2xx response body quoted in the error
+_ERROR_BODY = 200
+
+
+@register_channel
+class WebhookSender(Channel):
+    """POST notices as JSON (see the module docstring)."""
+
+    kind = "webhook"
+    idempotent = False
+
+    def __init__(self, cfg: Config, spec: WebhookChannel, name: str) -> None:
+        super().__init__(cfg, spec, name)
+        self.spec: WebhookChannel = spec
+        if not spec.url.lower().startswith(("http://", "https://")):
+            raise ValueError(f"webhook channel {name!r}: url must start with http:// or https://")
+
+    def body(self, msg: OutboxMessage) -> dict[str, Any]:
+        doc = {k: v for k, v in msg.notice.items() if k != "charts"}
+        doc["key"] = msg.key
+        doc["subject"] = msg.subject
+        doc["text"] = render(msg.notice).text
+        return doc
+
+    def _headers(self) -> dict[str, str]:
+        headers = {"Content-Type": "application/json; charset=utf-8", "User-Agent": "drift"}
+        for header, var in sorted(self.spec.headers_env.items()):
+            value = os.environ.get(var)
+            if not value:
+                raise ChannelUnavailable(f"the environment variable {var} (webhook header {header}) is not set")
+            headers[header] = value
+        return headers
+
+    def send(self, msg: OutboxMessage) -> None:
+        headers = self._headers()
+        headers["Idempotency-Key"] = msg.key
+        data = json.dumps(self.body(msg), default=str).encode("utf-8")
+        req = urllib.request.Request(self.spec.url, data=data, headers=headers, method="POST")
+        try:
+            with urllib.request.urlopen(req, timeout=self.spec.timeout) as resp:  # noqa: S310 - URL from config
+                status = resp.status
+        except urllib.error.HTTPError as exc:
+            snippet = exc.read(_ERROR_BODY).decode("utf-8", "replace") if exc.fp else ""
+            raise DeliveryError(f"webhook {self.name} answered HTTP {exc.code}: {snippet.strip()}") from None
+        except urllib.error.URLError as exc:
+            reason = exc.reason
+            if isinstance(reason, (ConnectionRefusedError, socket.gaierror)):
+                raise ChannelUnavailable(f"cannot reach webhook {self.name}: {reason}") from None
+            if isinstance(reason, (TimeoutError, socket.timeout, ConnectionResetError)):
+                raise DeliveryUncertain(f"webhook {self.name}: {reason.__class__.__name__} after the request "
+                                        "was sent; it may have been received") from None
+            raise ChannelUnavailable(f"cannot reach webhook {self.name}: {reason}") from None
+        except (TimeoutError, ConnectionResetError, socket.timeout, OSError) as exc:
+            raise DeliveryUncertain(f"webhook {self.name}: {exc.__class__.__name__} while waiting for the "
+                                    "answer; it may have been received") from None
+        if not 200 <= status < 300:
+            raise DeliveryError(f"webhook {self.name} answered HTTP {status}")
