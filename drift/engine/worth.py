@@ -69,6 +69,8 @@ def _autocov(x: FloatArray, ok: np.ndarray, lags: int) -> tuple[FloatArray, Floa
 
 def _squeeze(v: Any, squeeze: bool) -> Any:
     a = np.asarray(v)
+    if a.ndim == 0:
+        return a.item()
     return a[0].item() if squeeze else a
 
 
