@@ -1,0 +1,183 @@
+"""``drift status``: what the daemon did, what it will do next, and what is waiting on an operator.
+
+:func:`collect_status` gathers a plain dict (JSON-able apart from datetimes); :func:`format_status` renders
+it for a terminal. Both only read the store.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime
+from typing import Any
+
+import sqlalchemy as sa
+
+from drift.config import Config
+from drift.lock import STALE_AFTER_SECONDS, is_stale, read_lock
+from drift.store import Store, alerts, outbox, utcnow
+
+#: outbox statuses that need an operator's look (a send that may or may not have arrived; given up)
+_OPERATOR_STATUSES = ("uncertain", "dead")
+
+
+def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) -> dict[str, Any]:
+    """The state of the store's daemon, jobs, outbox, feeds and alerts.
+
+    Parameters
+    ----------
+    cfg : the configuration (schedule and its time zone).
+    store : the store to read.
+    now : aware time the next runs are computed from; default now.
+
+    Returns
+    -------
+    dict with keys
+
+    - ``now``, ``timezone`` (the schedule's zone name)
+    - ``jobs``: name -> {``schedule`` (text or None), ``last_run`` (started_at), ``finished_at``,
+      ``outcome`` (runs.status), ``duration`` (seconds), ``error``, ``next_run`` (aware, in the schedule zone)}
+      for ingest, check, digest, retry
+    - ``outbox``: {``pending`` (count), ``oldest_pending`` (created_at), ``last_error`` (newest error of a
+      pending row), ``counts`` (per status), ``uncertain`` and ``dead`` (rows: id, channel, subject,
+      attempts, last_error, created_at)}
+    - ``stale_feeds``: [{``model``, ``driver``, plus the driver's own fields}] from the latest verdicts'
+      drivers marked ``late: true``
+    - ``open_alerts``: model -> [{``condition``, ``action``, ``severity``, ``first_seen``, ``last_seen``}]
+    - ``lock``: None, or the daemon lock row with ``stale`` (a reason or None)
+    """
+    from drift.scheduler import JOB_NAMES, build_trigger, job_id, schedule_timezone
+
+    now = now or utcnow()
+    tz = schedule_timezone(cfg)
+    jobs: dict[str, Any] = {}
+    for name in JOB_NAMES:
+        text = getattr(cfg.schedule, name)
+        runs = store.recent_runs(kind=name, limit=200)
+        last = runs[0] if runs else None
+        daemon_last = max((r["scheduled_for"] for r in runs
+                           if r["job_id"] == job_id(name) and r["scheduled_for"] is not None), default=None)
+        nxt = None
+        if text is not None:
+            trigger = build_trigger(text, tz, start=daemon_last or now)
+            nxt = trigger.get_next_fire_time(None, now)
+            nxt = nxt.astimezone(tz) if nxt is not None else None
+        duration = None
+        if last is not None and last["finished_at"] is not None:
+            duration = (last["finished_at"] - last["started_at"]).total_seconds()
+        jobs[name] = {
+            "schedule": text,
+            "last_run": last["started_at"] if last else None,
+            "finished_at": last["finished_at"] if last else None,
+            "outcome": last["status"] if last else None,
+            "duration": duration,
+            "error": last["error"] if last else None,
+            "next_run": nxt,
+        }
+    lock = read_lock(store, "daemon")
+    if lock is not None:
+        lock["stale"] = is_stale(lock, now=now, stale_after=STALE_AFTER_SECONDS)
+    return {
+        "now": now,
+        "timezone": str(tz),
+        "jobs": jobs,
+        "outbox": _outbox(store),
+        "stale_feeds": _stale_feeds(store),
+        "open_alerts": _open_alerts(store),
+        "lock": lock,
+    }
+
+
+def _outbox(store: Store) -> dict[str, Any]:
+    o = outbox
+    with store.connect() as conn:
+        counts = {str(s): int(n) for s, n in
+                  conn.execute(sa.select(o.c.status, sa.func.count()).group_by(o.c.status))}
+        oldest = conn.execute(sa.select(o.c.created_at).where(o.c.status == "pending")
+                              .order_by(o.c.created_at, o.c.id).limit(1)).scalar()
+        last_error = conn.execute(sa.select(o.c.last_error).where(o.c.status == "pending",
+                                                                  o.c.last_error.is_not(None))
+                                  .order_by(o.c.id.desc()).limit(1)).scalar()
+        rows = conn.execute(sa.select(o.c.id, o.c.channel, o.c.subject, o.c.status, o.c.attempts,
+                                      o.c.last_error, o.c.created_at)
+                            .where(o.c.status.in_(_OPERATOR_STATUSES)).order_by(o.c.id)).fetchall()
+    out: dict[str, Any] = {"pending": counts.get("pending", 0), "oldest_pending": oldest,
+                           "last_error": last_error, "counts": counts}
+    for st in _OPERATOR_STATUSES:
+        out[st] = [dict(r._mapping) for r in rows if r.status == st]
+    return out
+
+
+def _stale_feeds(store: Store) -> list[dict[str, Any]]:
+    out = []
+    for v in store.latest_verdicts():
+        drivers = v["payload"].get("drivers") or []
+        items = ([{"driver": k, **d} for k, d in drivers.items() if isinstance(d, dict)]
+                 if isinstance(drivers, dict) else [d for d in drivers if isinstance(d, dict)])
+        for d in items:
+            if d.get("late") is True:
+                name = d.get("driver") or d.get("series") or d.get("name")
+                out.append({**d, "model": v["model"], "driver": name})
+    return out
+
+
+def _open_alerts(store: Store) -> dict[str, list[dict[str, Any]]]:
+    a = alerts
+    with store.connect() as conn:
+        rows = conn.execute(sa.select(a.c.model, a.c.condition, a.c.action, a.c.severity, a.c.first_seen,
+                                      a.c.last_seen).where(a.c.status == "open")
+                            .order_by(a.c.model, a.c.severity.desc(), a.c.id)).fetchall()
+    out: dict[str, list[dict[str, Any]]] = {}
+    for r in rows:
+        d = dict(r._mapping)
+        out.setdefault(d.pop("model"), []).append(d)
+    return out
+
+
+# ------------------------------------------------------------------------------------------ rendering
+def _t(x: datetime | None) -> str:
+    return "-" if x is None else x.strftime("%Y-%m-%d %H:%M %Z").strip()
+
+
+def format_status(status: dict[str, Any]) -> str:
+    """Plain-text rendering of :func:`collect_status` for a terminal."""
+    lines = []
+    lock = status.get("lock")
+    if lock is None:
+        lines.append("daemon: not running (no lock held on this store)")
+    else:
+        state = f"STALE ({lock['stale']})" if lock.get("stale") else "running"
+        lines.append(f"daemon: {state}, pid {lock['pid']} on {lock['host']} since {_t(lock['acquired_at'])}, "
+                     f"last heartbeat {_t(lock['heartbeat_at'])}")
+    lines.append("")
+    lines.append(f"jobs (schedule time zone {status.get('timezone')}):")
+    header = f"  {'job':<8} {'schedule':<16} {'last run':<22} {'outcome':<10} {'took':>8}  next run"
+    lines.append(header)
+    for name, j in status["jobs"].items():
+        took = "-" if j["duration"] is None else f"{j['duration']:.1f}s"
+        lines.append(f"  {name:<8} {(j['schedule'] or 'off'):<16} {_t(j['last_run']):<22} "
+                     f"{(j['outcome'] or '-'):<10} {took:>8}  {_t(j['next_run'])}")
+        if j["outcome"] not in (None, "ok", "running") and j["error"]:
+            lines.append(f"           {j['error'][:200]}")
+    ob = status["outbox"]
+    lines.append("")
+    lines.append(f"outbox: {ob['pending']} pending" + (f", oldest {_t(ob['oldest_pending'])}"
+                                                       if ob["oldest_pending"] else ""))
+    if ob["last_error"]:
+        lines.append(f"  last error: {ob['last_error'][:200]}")
+    for st in _OPERATOR_STATUSES:
+        for r in ob[st]:
+            lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"
+                         + (f": {r['last_error'][:120]}" if r["last_error"] else ""))
+    feeds = status["stale_feeds"]
+    lines.append("")
+    lines.append(f"late feeds: {len(feeds)}" if feeds else "late feeds: none")
+    for f in feeds:
+        extra = {k: v for k, v in f.items() if k not in ("model", "driver", "late", "series", "name")}
+        lines.append(f"  {f['model']}: {f['driver']}" + (f" {json.dumps(extra, default=str)}" if extra else ""))
+    al = status["open_alerts"]
+    lines.append("")
+    lines.append(f"open alerts: {sum(len(v) for v in al.values())}" if al else "open alerts: none")
+    for model, items in al.items():
+        for a in items:
+            lines.append(f"  {model}: {a['action']} ({a['condition']}), since {_t(a['first_seen'])}")
+    return "\n".join(lines)
