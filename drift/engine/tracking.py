@@ -55,12 +55,12 @@ class TrackingResult:
 
 def _as_errors(errors: Any) -> tuple[FloatArray, bool]:
     e = np.asarray(errors, dtype=float)
-    if e.ndim == 1:
-        return e[None, :], True
-    if e.ndim != 2:
+    if e.ndim not in (1, 2):
         raise ValueError(f"errors must be 1-D (T,) or 2-D (M, T), got shape {e.shape}")
     if np.any(np.isinf(e)):
         raise ValueError("errors must not contain infinities (use NaN for missing values)")
+    if e.ndim == 1:
+        return e[None, :], True
     return e, False
 
 
