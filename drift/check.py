@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from drift import engine
 from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig
@@ -274,7 +275,8 @@ def _screen(group: list[_Ctx]) -> None:
             c.charts["cusum"] = {
                 "path": _list(np.atleast_2d(cus.path)[i, sl]),
                 "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
-                "alarm_date": min([a["date"] for a in c.alarms if not a.get("warning") and a["date"]],
+                "alarm_date": min([a["date"] for a in c.alarms
+                                   if not a.get("warning") and a["date"] and a["test"].startswith("monitor-")],
                                   default=None)}
         # rolling coefficients
         if roll is not None:
@@ -481,16 +483,16 @@ def _drivers_and_worth(c: _Ctx) -> None:
             if (not helps and covers_zero) or gone:
                 unit = c.model.unit
                 if gone:
-                    why = (f"its feed has been missing for more than {chk.feed_limit} periods; running without it, "
-                           f"MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} "
-                           f"(last {int(both.sum())} periods).")
+                    reason = (f"Driver '{s}' has been missing for more than {chk.feed_limit} periods: run without "
+                              f"it until the feed returns, or restore the feed. Without it the one-step MAE would "
+                              f"go from {fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} (last "
+                              f"{int(both.sum())} periods).")
                 else:
-                    why = (f"over the last {int(both.sum())} periods it no longer improves the forecasts "
+                    reason = f"Driver '{s}' is not earning its place: " + (f"over the last {int(both.sum())} periods it no longer improves the forecasts "
                            f"(Clark–West p = {cw.pvalue:.2f}) and its recent coefficient interval "
                            f"[{fmt_num(ci[0])}, {fmt_num(ci[1])}] covers zero; MAE would go from "
                            f"{fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} without it.")
-                c.actions.append(Action("drop-driver", reason=f"Driver '{s}' is not earning its place: {why}",
-                                        extra={"driver": s}))
+                c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
 
 
@@ -511,7 +513,10 @@ def _lag_drift(c: _Ctx) -> None:
         b, *_ = np.linalg.lstsq(det[ref][good], v[ref][good], rcond=None)
         return v - det @ b
 
-    ry = _resid(d.y)
+    # partial residual of the target: remove deterministic terms and the *other* drivers' reference effects
+    okx = np.isfinite(d.y[ref]) & np.isfinite(d.X[ref]).all(axis=1)
+    b_ref, *_ = np.linalg.lstsq(d.X[ref][okx], d.y[ref][okx], rcond=None)
+    fitted = d.X @ b_ref
     recent_n = min(chk.recent_window, d.n - d.n_ref)
     if recent_n < max(20, max_lag + 10):
         return
@@ -529,7 +534,8 @@ def _lag_drift(c: _Ctx) -> None:
         if np.isfinite(xv[ref]).sum() <= det.shape[1] + 5:
             continue
         rx = _resid(xv)
-        ys = np.stack([ry[: d.n_ref], ry[d.n - recent_n:]], axis=0) if False else None
+        j = d.driver_columns[s]
+        ry = d.y - fitted + d.X[:, j] * b_ref[j]
         lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
         lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
         cur = d.lags.get(s, dr.lag)
@@ -537,7 +543,10 @@ def _lag_drift(c: _Ctx) -> None:
                        "recent": _list(lp_rec.ccf), "band_reference": _num(lp_ref.band),
                        "band_recent": _num(lp_rec.band), "current_lag": cur}
         new = int(lp_rec.peak_lag)
-        if new == cur or not bool(lp_rec.peak_significant) or new < _min_lag(c, dr):
+        # the peak must clear a band corrected for scanning max_lag + 1 lags (Bonferroni)
+        z = stats.norm.ppf(1 - chk.level / (2 * (max_lag + 1))) / np.sqrt(float(lp_rec.nobs))
+        r_new = float(np.asarray(lp_rec.ccf)[new])
+        if new == cur or abs(r_new) <= z or new < _min_lag(c, dr):
             continue
         # does the model at the new lag beat the current one out of sample (recent window)?
         try:

@@ -129,9 +129,13 @@ def values_as_of(vintages: pd.DataFrame, periods: pd.DatetimeIndex, origins: pd.
         issued = v["issued_at"].fillna(v["available_at"])
         usable_from = pd.concat([issued, v["available_at"]], axis=1).max(axis=1)
         # a forecast is at most as fresh as its issue; a plain value without issue time counts as planned
-    right = pd.DataFrame({"period": v["period"].values, "t": usable_from.values,
-                          "value": v["value"].values}).sort_values("t")
-    left = pd.DataFrame({"period": periods.values, "t": origins.values, "i": np.arange(n)}).sort_values("t")
+    # one time resolution on both sides (pandas refuses to merge datetime64[s] with [us])
+    right = pd.DataFrame({"period": pd.DatetimeIndex(v["period"]).as_unit("ns"),
+                          "t": pd.DatetimeIndex(usable_from).tz_convert("UTC").as_unit("ns"),
+                          "value": v["value"].to_numpy(dtype=float)}).sort_values("t")
+    left = pd.DataFrame({"period": pd.DatetimeIndex(periods).as_unit("ns"),
+                         "t": pd.DatetimeIndex(origins).tz_convert("UTC").as_unit("ns"),
+                         "i": np.arange(n)}).sort_values("t")
     m = pd.merge_asof(left, right, on="t", by="period", direction="backward")
     out[m["i"].to_numpy()] = m["value"].to_numpy(dtype=float)
     if form in ("known", "forecast"):
@@ -142,7 +146,8 @@ def values_as_of(vintages: pd.DataFrame, periods: pd.DatetimeIndex, origins: pd.
                 # only values without an issue time count as planned in advance
                 plain = v[v["issued_at"].isna()]
                 first = plain.sort_values("available_at").drop_duplicates("period").set_index("period")["value"]
-            fill = pd.Series(periods[missing]).map(first).to_numpy(dtype=float)
+            first.index = pd.DatetimeIndex(first.index).as_unit("ns")
+            fill = pd.Series(pd.DatetimeIndex(periods[missing]).as_unit("ns")).map(first).to_numpy(dtype=float)
             out[np.flatnonzero(missing)] = fill
     return out
 
@@ -152,7 +157,8 @@ def latest_values(vintages: pd.DataFrame, periods: pd.DatetimeIndex) -> np.ndarr
     if vintages.empty:
         return np.full(len(periods), np.nan)
     last = vintages.sort_values("available_at").drop_duplicates("period", keep="last").set_index("period")["value"]
-    return pd.Series(periods).map(last).to_numpy(dtype=float)
+    last.index = pd.DatetimeIndex(last.index).as_unit("ns")
+    return pd.Series(pd.DatetimeIndex(periods).as_unit("ns")).map(last).to_numpy(dtype=float)
 
 
 def deterministic_columns(model: ModelConfig, periods: pd.DatetimeIndex,
