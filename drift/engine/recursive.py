@@ -270,9 +270,9 @@ def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10) -> Recursive
             se_t[t] = np.where(full, se, np.nan)
             rss_t[t] = np.where(full, rss_acc, np.nan)
 
-    # Returned as (M, n[, k]) views of the time-major buffers: transposed copies would cost more than
-    # the whole recursion for large batches.
-    resid, ferr, scale, rss, nobs = resid_t.T, ferr_t.T, scale_t.T, rss_t.T, nobs_t.T
+    # 2-D outputs are made contiguous (cheap); the (M, n, k) ones are views of the time-major buffers,
+    # since a transposed copy of those would cost more than the whole recursion for large batches.
+    resid, ferr, scale, rss, nobs = (np.ascontiguousarray(a.T) for a in (resid_t, ferr_t, scale_t, rss_t, nobs_t))
     coef = coef_t.transpose(2, 0, 1)
     coef_se = se_t.transpose(2, 0, 1)
     has = np.isfinite(resid)

@@ -19,8 +19,8 @@ from drift.typing import FloatArray, IntArray
 
 __all__ = ["RollingFit", "rolling_coefficients"]
 
-# models processed together: bounds the (models x time x cross-product) work arrays
-_CHUNK = 1024
+# models processed together: keeps the (cross-product x model*window) work vectors cache-sized
+_CHUNK = 128
 # relative tolerances: full-sample |R_jj| against column norm; window Cholesky pivot against A_jj
 _FULL_RANK_TOL = 1e-10
 _WINDOW_PIVOT_TOL = 1e-10
