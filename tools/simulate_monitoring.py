@@ -168,15 +168,15 @@ def trigg_limit(alpha: float, level: float) -> float:
 
     Only tabulated ``alpha`` and ``level`` are available (ValueError otherwise).
     """
-    row = None
+    row: dict[float, float] | None = None
     for a, v in TRIGG.items():
         if abs(a - alpha) < 1e-12:
             row = v
     if row is None:
         raise ValueError(f"alpha must be one of {sorted(TRIGG)} for a tabulated Trigg limit, got {alpha!r}")
-    for lvl, v in row.items():
+    for lvl, val in row.items():
         if abs(lvl - level) < 1e-12:
-            return float(v)
+            return float(val)
     raise ValueError(f"level must be one of {sorted(row)}, got {level!r}")
 '''
 

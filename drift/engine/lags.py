@@ -51,12 +51,12 @@ class LagProfile:
     squeeze : single-model input.
     """
 
-    ccf: FloatArray
-    band: FloatArray
-    nobs: IntArray
-    peak_lag: IntArray
-    peak_significant: np.ndarray
-    ar_order: IntArray
+    ccf: Any
+    band: Any
+    nobs: Any
+    peak_lag: Any
+    peak_significant: Any
+    ar_order: Any
     level: float
     squeeze: bool = False
 
@@ -78,12 +78,12 @@ class ProfileShift:
     reference_significant, recent_significant : (M,) peak significance in each window.
     """
 
-    reference_lag: IntArray
-    recent_lag: IntArray
-    moved: np.ndarray
-    lost: np.ndarray
-    reference_significant: np.ndarray
-    recent_significant: np.ndarray
+    reference_lag: Any
+    recent_lag: Any
+    moved: Any
+    lost: Any
+    reference_significant: Any
+    recent_significant: Any
 
 
 def _lagged(v: FloatArray, j: int) -> FloatArray:

@@ -268,7 +268,7 @@ def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params
     A = _nanmax(excess)
     if horizon is None or horizon > mon_table.HORIZONS[-1]:
         # Infinite-horizon constant and closed-form p-value (conservative for any finite span).
-        cvs = {lvl: csw_table.lookup(lvl) for lvl in REPORTED_LEVELS}
+        cvs: dict[float, Any] = {lvl: csw_table.lookup(lvl) for lvl in REPORTED_LEVELS}
         a2 = np.full(M, csw_table.lookup(level))
         with np.errstate(invalid="ignore"):
             pval = np.where(np.isfinite(A), csw_table.crossing_probability(np.nan_to_num(A)), np.nan)
@@ -290,8 +290,8 @@ def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params
 
 def _mosum(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
            window: float = 0.25) -> tuple:
-    M, T = S.shape
-    k, mon = _monitored_time(m, T)
+    T = S.shape[1]
+    _, mon = _monitored_time(m, T)
     hz = _horizon_array(horizon, m, T)
     L = np.maximum(np.round(window * m).astype(np.int64), 1)
     tt = np.arange(T)[None, :]
@@ -313,7 +313,7 @@ def _mosum(S: FloatArray, m: IntArray, horizon: float | None, level: float, para
 
 def _page(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
           gamma: float = 0.0) -> tuple:
-    M, T = S.shape
+    T = S.shape[1]
     k, mon = _monitored_time(m, T)
     hz = _horizon_array(horizon, m, T)
     S0 = np.where(mon, S, 0.0)  # S = 0 up to the start of monitoring, so j = m is included
