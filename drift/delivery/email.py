@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import logging
 import os
+import email.policy
 import smtplib
 import ssl
 from collections.abc import Callable, Mapping, Sequence
@@ -205,7 +206,8 @@ class EmailSender(Channel):
         except smtplib.SMTPException as exc:
             raise DeliveryError(f"SMTP server {host}: {exc.__class__.__name__}: {exc}") from None
         try:
-            code, resp = smtp.data(em.as_bytes())
+            # bytes go to the wire as they are: CRLF line ends (smtplib fixes them for str only)
+            code, resp = smtp.data(em.as_bytes(policy=email.policy.SMTP))
         except smtplib.SMTPDataError as exc:
             raise DeliveryError(f"SMTP server {host} refused the message: {exc.smtp_code} "
                                 f"{_text(exc.smtp_error)}") from None

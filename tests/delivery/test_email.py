@@ -1,0 +1,219 @@
+"""E-mail over a real SMTP server on 127.0.0.1 (aiosmtpd): structure, login, outages, never twice."""
+
+from __future__ import annotations
+
+import datetime as dt
+import email
+import email.policy
+import re
+from pathlib import Path
+from typing import Any
+
+import pytest
+import sqlalchemy as sa
+
+from drift.delivery.alerts import process_alerts
+from drift.delivery.email import EmailSender
+from drift.delivery.outbox import configured_channels, deliver_pending, outbox_summary
+from drift.store import outbox as outbox_t
+from tests.delivery.conftest import PASSWORD, T0, USER, SmtpServer, action, fake_renderer, make_cfg, outcome, payload
+
+pytestmark = pytest.mark.network
+
+
+def email_cfg(tmp_path: Path, port: int, **extra: Any) -> Any:
+    ch = {"kind": "email", "name": "mail", "host": "127.0.0.1", "port": port, "sender": "drift@example.test",
+          "to": ["owner@example.test", "team@example.test"], "timeout": 5, **extra}
+    return make_cfg(tmp_path, [ch])
+
+
+def senders(cfg: Any) -> dict[str, EmailSender]:
+    return {n: EmailSender(cfg, s, n, chart_renderer=fake_renderer) for n, s in configured_channels(cfg)}
+
+
+def rows(store: Any) -> list[Any]:
+    with store.connect() as conn:
+        return conn.execute(sa.select(outbox_t).order_by(outbox_t.c.id)).fetchall()
+
+
+def parse(raw: bytes) -> email.message.EmailMessage:
+    return email.message_from_bytes(raw, policy=email.policy.default)  # type: ignore[return-value]
+
+
+def test_message_structure(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit", since="2024-11-04")])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert (rep.sent, rep.failed, rep.pending) == (1, 0, 0)
+    [m] = smtp_server.messages
+    assert m.mail_from == "drift@example.test"
+    assert m.rcpt_tos == ["owner@example.test", "team@example.test"]
+    msg = parse(m.content)
+    assert msg["Subject"] == "drift: k000 — refit suggested"
+    [row] = rows(store)
+    assert row.status == "sent" and row.sent_at == T0
+    assert row.idempotency_key in msg["Message-ID"]
+    assert msg.get_content_type() == "multipart/alternative"
+    text = msg.get_body(preferencelist=("plain",)).get_content()
+    html = msg.get_body(preferencelist=("html",)).get_content()
+    for body in (text, html):
+        assert "refit" in body and "2025-12-29" in body and "2024-11-04" in body
+        assert "statistical evidence, not certainty" in body
+        assert "CUSUM of recursive residuals" in body
+    # inline charts: every cid reference in the HTML resolves to an attached image part
+    cids = re.findall(r'src="cid:([^"]+)"', html)
+    assert sorted(c.split(".")[0] for c in cids) == ["cusum", "forecast"]
+    parts = {p["Content-ID"].strip("<>"): p for p in msg.walk() if p["Content-ID"]}
+    for cid in cids:
+        assert parts[cid].get_content_type() == "image/png"
+        assert parts[cid].get_content().startswith(b"\x89PNG")
+    related = [p for p in msg.walk() if p.get_content_type() == "multipart/related"]
+    assert len(related) == 1
+
+
+def test_no_charts_when_renderer_missing(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")], charts=False)), now=T0)
+    deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    msg = parse(smtp_server.messages[0].content)
+    assert "cid:" not in msg.get_body(preferencelist=("html",)).get_content()
+
+
+@pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS:UserWarning")
+def test_plain_auth_with_env_credentials(tmp_path: Path, store: Any, smtp_auth_server: SmtpServer,
+                                         monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture) -> None:
+    cfg = email_cfg(tmp_path, smtp_auth_server.port, username_env="DRIFT_T_USER", password_env="DRIFT_T_PW")
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    # missing variable: a DeliveryError naming the variable, the row stays pending
+    monkeypatch.setenv("DRIFT_T_USER", USER)
+    monkeypatch.delenv("DRIFT_T_PW", raising=False)
+    caplog.set_level("DEBUG")
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.failed == 1 and "DRIFT_T_PW" in rep.errors[0].error
+    assert rows(store)[0].status == "pending" and "DRIFT_T_PW" in rows(store)[0].last_error
+    # wrong password: refused, pending, and the secret never shows up in errors or logs
+    monkeypatch.setenv("DRIFT_T_PW", "wrong-" + PASSWORD)
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=1), channels=senders(cfg))
+    assert rep.failed == 1 and smtp_auth_server.messages == []
+    monkeypatch.setenv("DRIFT_T_PW", PASSWORD)
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=2), channels=senders(cfg))
+    assert rep.sent == 1 and len(smtp_auth_server.messages) == 1
+    everything = caplog.text + " ".join(str(r.last_error) for r in rows(store)) + repr(rep)
+    assert PASSWORD not in everything and USER not in everything
+
+
+def test_starttls_login(tmp_path: Path, store: Any, smtp_tls_server: SmtpServer,
+                        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("DRIFT_T_USER", USER)
+    monkeypatch.setenv("DRIFT_T_PW", PASSWORD)
+    cfg = email_cfg(tmp_path, smtp_tls_server.port, security="starttls", username_env="DRIFT_T_USER",
+                    password_env="DRIFT_T_PW")
+    process_alerts(cfg, store, outcome(payload("k000", [action("relag", driver="k000_promo", lag=3)])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.sent == 1, rep.errors
+    assert "k000_promo fits better at lag 3" in parse(smtp_tls_server.messages[0].content)["Subject"]
+
+
+def test_starttls_required_but_not_configured_fails(tmp_path: Path, store: Any,
+                                                    smtp_tls_server: SmtpServer) -> None:
+    cfg = email_cfg(tmp_path, smtp_tls_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.failed == 1 and smtp_tls_server.messages == []
+
+
+def test_refused_connection_then_recovery_sends_once(tmp_path: Path, store: Any) -> None:
+    srv = SmtpServer()  # port chosen, server not started: connection refused
+    cfg = email_cfg(tmp_path, srv.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")]), payload("k001", [action("refit")])),
+                   now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    # the first row fails, the channel's second row waits for the next round
+    assert (rep.sent, rep.failed, rep.deferred, rep.pending) == (0, 1, 1, 2)
+    r0 = rows(store)[0]
+    assert r0.status == "pending" and r0.attempts == 1 and "cannot reach" in r0.last_error
+    assert r0.next_attempt_at == T0 + cfg.alerts.retry_backoff
+    srv.start()
+    try:
+        # before the backoff has passed only the never-tried row goes
+        rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=1), channels=senders(cfg))
+        assert rep.sent == 1 and len(srv.messages) == 1
+        rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=6), channels=senders(cfg))
+        assert rep.sent == 1 and len(srv.messages) == 2
+        rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(days=1), channels=senders(cfg))
+        assert rep.sent == 0 and len(srv.messages) == 2
+    finally:
+        srv.stop()
+    assert [r.status for r in rows(store)] == ["sent", "sent"]
+
+
+@pytest.mark.parametrize("mode", ["reject", "drop-rcpt"])
+def test_server_refuses_mid_session_then_recovers(tmp_path: Path, store: Any, smtp_server: SmtpServer,
+                                                  mode: str) -> None:
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    smtp_server.handler.mode = mode
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.failed == 1 and smtp_server.messages == []
+    [r] = rows(store)
+    assert r.status == "pending" and r.last_error
+    smtp_server.handler.mode = "ok"
+    later = T0 + dt.timedelta(hours=1)
+    assert deliver_pending(cfg, store, now=later, channels=senders(cfg)).sent == 1
+    assert deliver_pending(cfg, store, now=later + dt.timedelta(hours=1), channels=senders(cfg)).sent == 0
+    assert len(smtp_server.messages) == 1
+
+
+def test_drop_after_data_is_uncertain_and_not_resent(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    smtp_server.handler.mode = "drop-after-data"
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.uncertain == 1 and smtp_server.handler.dropped_after_data == 1
+    smtp_server.handler.mode = "ok"
+    for h in (1, 24, 24 * 30):
+        deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=h), channels=senders(cfg))
+    assert smtp_server.messages == []
+    summary = outbox_summary(store)
+    assert summary.counts["uncertain"] == 1 and "may have been delivered" in summary.uncertain[0]["last_error"]
+
+
+def test_crash_between_send_and_mark_sent_never_sends_twice(tmp_path: Path, store: Any, smtp_server: SmtpServer,
+                                                            monkeypatch: pytest.MonkeyPatch) -> None:
+    import drift.delivery.outbox as ob
+
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    real = ob._mark_sent
+
+    def crash(*a: Any, **k: Any) -> None:
+        raise RuntimeError("killed between send and mark-sent")
+
+    monkeypatch.setattr(ob, "_mark_sent", crash)
+    with pytest.raises(RuntimeError):
+        deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert len(smtp_server.messages) == 1 and rows(store)[0].status == "sending"
+    monkeypatch.setattr(ob, "_mark_sent", real)
+    # within the claim lease: left alone; after it: uncertain, reported, never re-sent
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=1), channels=senders(cfg))
+    assert (rep.sent, rep.uncertain) == (0, 0) and rows(store)[0].status == "sending"
+    rep = deliver_pending(cfg, store, now=T0 + ob.DEFAULT_SENDING_LEASE, channels=senders(cfg))
+    assert (rep.sent, rep.uncertain) == (0, 1)
+    deliver_pending(cfg, store, now=T0 + dt.timedelta(days=3), channels=senders(cfg))
+    assert len(smtp_server.messages) == 1
+    assert rows(store)[0].status == "uncertain"
+    assert outbox_summary(store).counts["uncertain"] == 1
+
+
+def test_operator_resend_of_uncertain(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    from drift.delivery.outbox import resolve_uncertain
+
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    smtp_server.handler.mode = "drop-after-data"
+    deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    smtp_server.handler.mode = "ok"
+    [r] = rows(store)
+    assert resolve_uncertain(store, [r.id], resend=True, now=T0) == 1
+    assert deliver_pending(cfg, store, now=T0, channels=senders(cfg)).sent == 1
+    assert len(smtp_server.messages) == 1
