@@ -15,7 +15,7 @@ import numpy as np
 
 from drift.typing import FloatArray, IntArray
 
-__all__ = ["RecursiveFit", "recursive_fit", "recursive_residuals", "as_batch"]
+__all__ = ["RecursiveFit", "as_batch", "recursive_fit", "recursive_residuals"]
 
 
 @dataclass(frozen=True)

@@ -93,15 +93,15 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
     Qt = np.ascontiguousarray(Q.transpose(2, 0, 1))  # (k, M, n)
     prod = np.empty((npair + k + 1, M, n + 1))
     prod[:, :, 0] = 0.0
-    for p, (i, j) in enumerate(zip(iu, ju)):
-        np.multiply(Qt[i], Qt[j], out=prod[p, :, 1:])
+    for p, (ia, ja) in enumerate(zip(iu.tolist(), ju.tolist())):
+        np.multiply(Qt[ia], Qt[ja], out=prod[p, :, 1:])
     for i in range(k):
         np.multiply(Qt[i], e, out=prod[npair + i, :, 1:])
     np.multiply(e, e, out=prod[-1, :, 1:])
     np.cumsum(prod, axis=2, out=prod)
     flat = (prod[:, :, window:] - prod[:, :, :ends]).reshape(-1, B)  # window sums, (P, M * ends)
     del prod
-    pair = {(int(i), int(j)): flat[p] for p, (i, j) in enumerate(zip(iu, ju))}
+    pair = {(ia, ja): flat[p] for p, (ia, ja) in enumerate(zip(iu.tolist(), ju.tolist()))}
     A = [[pair[(min(i, j), max(i, j))] for j in range(k)] for i in range(k)]
     c = [flat[npair + i] for i in range(k)]
     q = flat[-1]
@@ -127,7 +127,7 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
     g = [sum((Li[i][j] * c[j] for j in range(i + 1)), np.zeros(B)) for i in range(k)]  # L^{-1} c
     beta = [sum((Li[i][j] * g[i] for i in range(j, k)), np.zeros(B)) for j in range(k)]  # A^{-1} c
     rss = np.maximum(q - sum((gi * gi for gi in g), np.zeros(B)), 0.0)
-    Rr = [[np.repeat(Rinv[:, i, j], ends) if j >= i else None for j in range(k)] for i in range(k)]
+    Rr = [[np.repeat(Rinv[:, i, j], ends) if j >= i else np.zeros(0) for j in range(k)] for i in range(k)]
     b0r = [np.repeat(b0[:, i], ends) for i in range(k)]
     dof = window - k
     s_w = np.sqrt(rss / dof) if dof > 0 else np.full(B, np.nan)

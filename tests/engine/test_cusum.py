@@ -192,7 +192,7 @@ def test_bad_arguments() -> None:
 @pytest.mark.slow
 def test_monte_carlo_size_and_power() -> None:
     rng = np.random.default_rng(209)
-    M, n, k = 2000, 100, 2
+    M, n = 2000, 100
     X = np.concatenate([np.ones((M, n, 1)), rng.normal(size=(M, n, 1))], axis=2)
     y0 = X @ np.array([1.0, 0.5]) + rng.normal(size=(M, n))
     w0 = recursive_fit(y0, X).resid

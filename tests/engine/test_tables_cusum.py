@@ -6,7 +6,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from drift.engine.tables import bde, edgerton_wells as ew, ploberger_kramer as pk
+from drift.engine.tables import bde
+from drift.engine.tables import edgerton_wells as ew
+from drift.engine.tables import ploberger_kramer as pk
 
 
 # source: Brown, Durbin & Evans (1975), JRSS B 37(2), section 2.3; recomputed from the defining equation

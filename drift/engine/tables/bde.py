@@ -22,7 +22,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import optimize, stats
 
-__all__ = ["CUSUM_A", "crossing_probability", "solve_a", "cusum_a"]
+__all__ = ["CUSUM_A", "crossing_probability", "cusum_a", "solve_a"]
 
 #: Tabulated CUSUM boundary constant ``a`` keyed by two-sided significance level (BDE 1975).
 CUSUM_A: dict[float, float] = {0.10: 0.850, 0.05: 0.948, 0.01: 1.143}

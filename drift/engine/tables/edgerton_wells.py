@@ -23,7 +23,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-__all__ = ["EW_COEFFICIENTS", "MIN_N", "ew_n", "c0", "pvalue"]
+__all__ = ["EW_COEFFICIENTS", "MIN_N", "c0", "ew_n", "pvalue"]
 
 #: (c1, c2, c3) keyed by one-sided significance level (Edgerton & Wells 1994).
 EW_COEFFICIENTS: dict[float, tuple[float, float, float]] = {
