@@ -27,7 +27,7 @@ _EXPORTS: dict[str, str] = {
     "render": "messages",
 }
 
-__all__ = sorted(_EXPORTS)
+__all__ = list(_EXPORTS)
 
 
 def __getattr__(name: str) -> Any:

@@ -177,6 +177,10 @@ def _jsonable(obj: Any) -> Any:
     return json.loads(json.dumps(obj, default=str))
 
 
+def _dict(value: Any) -> dict[str, Any]:
+    return dict(value) if isinstance(value, Mapping) else {}
+
+
 def _state(row: Any) -> dict[str, Any]:
     try:
         st = json.loads(row.payload) if row.payload else {}
@@ -286,7 +290,7 @@ def _apply(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload:
         return AlertEvent(alert_id, name, cond, act_name, sev, "opened", as_of, bool(keys), keys)
 
     state = _state(row)
-    previous = state.get("notified") if isinstance(state.get("notified"), dict) else {}
+    previous = _dict(state.get("notified"))
     alert_id = int(row.id)
     if is_worse(previous, int(row.severity), action, rank):
         keys = ()
@@ -316,7 +320,7 @@ def _clear(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload:
     sev = _RANK_NAME.get(int(row.severity), "act")
     keys: tuple[str, ...] = ()
     if notify and state.get("sent") and channels:
-        latest = state.get("latest") if isinstance(state.get("latest"), dict) else {"action": row.action}
+        latest = _dict(state.get("latest")) or {"action": row.action}
         notice = _notice(payload, event="cleared", alert_id=int(row.id), condition=row.condition, action=latest,
                          severity=sev, as_of=as_of, run_id=run_id, previous=None)
         # a cleared notice is about the past state: drop this run's charts and numbers of other conditions
@@ -336,7 +340,7 @@ def _clear(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload:
 
 def _record(row: Any) -> AlertRecord:
     state = _state(row)
-    latest = state.get("latest") if isinstance(state.get("latest"), dict) else {}
+    latest = _dict(state.get("latest"))
     return AlertRecord(
         id=int(row.id), model=str(row.model), condition=str(row.condition), action=str(row.action),
         severity=_RANK_NAME.get(int(row.severity), "act"), status=str(row.status), first_seen=row.first_seen,

@@ -2,7 +2,9 @@
 
 The message is ``multipart/alternative`` with a plain-text part and a ``multipart/related`` HTML part that
 holds the charts as inline PNG images (``cid:`` references). Its ``Message-ID`` is
-``<KEY@drift>`` with the outbox idempotency key.
+``<KEY@drift>`` with the outbox idempotency key (characters not allowed there become dots; the raw key is
+also in ``X-Drift-Key``). A row whose notice already carries ``text`` and ``html`` strings (the digest)
+is sent with those bodies as they are.
 
 Which failures mean "not delivered" and which mean "unknown" (see :mod:`drift.delivery.outbox`):
 
@@ -19,9 +21,10 @@ from the YAML, and never appear in a log line or an error message (errors name t
 
 from __future__ import annotations
 
+import email.policy
 import logging
 import os
-import email.policy
+import re
 import smtplib
 import ssl
 from collections.abc import Callable, Mapping, Sequence
@@ -30,7 +33,7 @@ from email.utils import formatdate
 from typing import Any
 
 from drift.config import Config, EmailChannel
-from drift.delivery.messages import CHART_KINDS, render
+from drift.delivery.messages import CHART_KINDS, RenderedMessage, render
 from drift.delivery.outbox import (
     Channel,
     ChannelUnavailable,
@@ -46,6 +49,7 @@ ChartRenderer = Callable[..., Mapping[str, bytes]]
 
 #: domain part of the Message-ID and of the image Content-IDs
 MSGID_DOMAIN = "drift"
+_NOT_ATOM = re.compile(r"[^A-Za-z0-9!#$%&'*+/=?^_`{|}~.-]+")
 
 
 def tls_context() -> ssl.SSLContext:
@@ -100,7 +104,7 @@ class EmailSender(Channel):
                          "as_of": notice.get("as_of"), "actions": [notice.get("detail") or {}]}
         try:
             images = dict(self._renderer(model_payload, list(kinds)))
-        except Exception:  # noqa: BLE001 - a chart never stops an alert
+        except Exception:
             log.exception("charts for %s could not be drawn; sending without them", notice.get("model"))
             return {}, ["The charts could not be drawn for this message."]
         notes = [f"No {k.replace('_', ' ')} chart: no data for it." for k in kinds if k not in images]
@@ -109,21 +113,30 @@ class EmailSender(Channel):
     def build(self, msg: OutboxMessage) -> EmailMessage:
         """The complete e-mail for one outbox message."""
         notice = msg.notice
-        short = msg.key[:16]
-        pngs, notes = self._charts(notice)
-        cids = {kind: f"{kind}.{short}@{MSGID_DOMAIN}" for kind in pngs}
-        body = render(notice, images={k: f"cid:{c}" for k, c in cids.items()}, notes=notes)
+        ident = _msgid_safe(msg.key)
+        pre_text, pre_html = notice.get("text"), notice.get("html")
+        if isinstance(pre_text, str) and isinstance(pre_html, str):
+            # a message rendered by its producer (the digest): sent as it is
+            pngs: dict[str, bytes] = {}
+            cids: dict[str, str] = {}
+            body = RenderedMessage(subject=msg.subject, text=pre_text, html=pre_html)
+        else:
+            pngs, notes = self._charts(notice)
+            cids = {kind: f"{kind}.{ident[:16]}@{MSGID_DOMAIN}" for kind in pngs}
+            body = render(notice, images={k: f"cid:{c}" for k, c in cids.items()}, notes=notes)
         em = EmailMessage()
         em["Subject"] = msg.subject or body.subject
         em["From"] = self.spec.sender
         em["To"] = ", ".join(self.spec.to)
         em["Date"] = formatdate(localtime=False, usegmt=True)
-        em["Message-ID"] = f"<{msg.key}@{MSGID_DOMAIN}>"
+        em["Message-ID"] = f"<{ident}@{MSGID_DOMAIN}>"
         em["X-Drift-Key"] = msg.key
         em.set_content(body.text)
         em.add_alternative(body.html, subtype="html")
         if pngs:
-            html_part = em.get_payload()[1]  # type: ignore[index]
+            html_part = em.get_body(preferencelist=("html",))
+            if not isinstance(html_part, EmailMessage):  # pragma: no cover - we just added it
+                raise DeliveryError("internal: the HTML part of the message is missing")
             for kind, data in pngs.items():
                 html_part.add_related(bytes(data), maintype="image", subtype="png", cid=f"<{cids[kind]}>",
                                       filename=f"{kind}.png", disposition="inline")
@@ -218,6 +231,11 @@ class EmailSender(Channel):
             raise DeliveryError(f"SMTP server {host}: {exc.__class__.__name__}: {exc}") from None
         if code != 250:
             raise DeliveryError(f"SMTP server {host} refused the message: {code} {_text(resp)}")
+
+
+def _msgid_safe(key: str) -> str:
+    """The key as the left part of a Message-ID (dot-atom characters only; hex keys pass unchanged)."""
+    return _NOT_ATOM.sub(".", key).strip(".") or "drift"
 
 
 def _text(resp: Any) -> str:

@@ -244,7 +244,7 @@ class HttpSink:
         sink = self
 
         class Handler(http.server.BaseHTTPRequestHandler):
-            def do_POST(self) -> None:  # noqa: N802 - http.server API
+            def do_POST(self) -> None:
                 n = int(self.headers.get("Content-Length") or 0)
                 body = self.rfile.read(n)
                 status = sink.status

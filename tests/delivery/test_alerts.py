@@ -11,7 +11,7 @@ from typing import Any
 import pytest
 import sqlalchemy as sa
 
-from drift.delivery.alerts import condition_key, is_worse, open_alerts, cleared_alerts, process_alerts
+from drift.delivery.alerts import cleared_alerts, condition_key, is_worse, open_alerts, process_alerts
 from drift.store import alerts as alerts_t
 from drift.store import outbox as outbox_t
 from tests.delivery.conftest import T0, action, make_cfg, outcome, payload

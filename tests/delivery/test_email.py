@@ -16,7 +16,17 @@ from drift.delivery.alerts import process_alerts
 from drift.delivery.email import EmailSender
 from drift.delivery.outbox import configured_channels, deliver_pending, outbox_summary
 from drift.store import outbox as outbox_t
-from tests.delivery.conftest import PASSWORD, T0, USER, SmtpServer, action, fake_renderer, make_cfg, outcome, payload
+from tests.delivery.conftest import (
+    PASSWORD,
+    T0,
+    USER,
+    SmtpServer,
+    action,
+    fake_renderer,
+    make_cfg,
+    outcome,
+    payload,
+)
 
 pytestmark = pytest.mark.network
 
@@ -217,3 +227,22 @@ def test_operator_resend_of_uncertain(tmp_path: Path, store: Any, smtp_server: S
     assert resolve_uncertain(store, [r.id], resend=True, now=T0) == 1
     assert deliver_pending(cfg, store, now=T0, channels=senders(cfg)).sent == 1
     assert len(smtp_server.messages) == 1
+
+
+def test_prerendered_row_is_sent_as_is(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    """The digest queues rows whose notice carries its own text and HTML (key ``digest:<date>:<channel>``)."""
+    import json
+
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    key = "digest:2025-12-29:mail"
+    with store.begin() as conn:
+        conn.execute(outbox_t.insert().values(
+            alert=None, channel="mail", idempotency_key=key, subject="drift digest — week to 2025-12-29",
+            payload=json.dumps({"event": "digest", "key": key, "text": "plain digest", "html": "<p>html digest</p>"}),
+            status="pending", attempts=0, next_attempt_at=T0, created_at=T0))
+    assert deliver_pending(cfg, store, now=T0, channels=senders(cfg)).sent == 1
+    msg = parse(smtp_server.messages[0].content)
+    assert msg["Subject"] == "drift digest — week to 2025-12-29" and msg["X-Drift-Key"] == key
+    assert msg["Message-ID"] == "<digest.2025-12-29.mail@drift>"
+    assert msg.get_body(preferencelist=("plain",)).get_content().strip() == "plain digest"
+    assert "<p>html digest</p>" in msg.get_body(preferencelist=("html",)).get_content()

@@ -1,0 +1,136 @@
+"""Outbox mechanics without a network: backoff, registry, unrouted rows, summary, claims."""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+from typing import Any, ClassVar
+
+import pytest
+import sqlalchemy as sa
+
+import drift.delivery.outbox as ob
+from drift.delivery.alerts import process_alerts
+from drift.delivery.outbox import (
+    Channel,
+    DeliveryError,
+    OutboxMessage,
+    backoff,
+    configured_channels,
+    deliver_pending,
+    idempotency_key,
+    outbox_summary,
+    register_channel,
+)
+from drift.store import outbox as outbox_t
+from tests.delivery.conftest import T0, action, make_cfg, outcome, payload
+
+
+def test_backoff_doubles_and_caps(tmp_path: Path) -> None:
+    cfg = make_cfg(tmp_path, [], retry_backoff="5m", retry_max_backoff="1h")
+    got = [backoff(cfg, n) for n in range(1, 8)]
+    assert got == [dt.timedelta(minutes=m) for m in (5, 10, 20, 40, 60, 60, 60)]
+    assert backoff(cfg, 10_000) == dt.timedelta(hours=1)
+
+
+def test_idempotency_key_is_stable_and_distinct() -> None:
+    k = idempotency_key(1, "refit", "act", "2025-12-29", 1, "mail")
+    assert k == idempotency_key(1, "refit", "act", "2025-12-29", 1, "mail") and len(k) == 64
+    assert k != idempotency_key(1, "refit", "act", "2025-12-29", 1, "mail2")
+    assert k != idempotency_key(1, "refit", "act", "2025-12-29", 2, "mail")
+
+
+def test_key_is_unique_in_the_table(tmp_path: Path, store: Any) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "o"}])
+    [ev] = process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    with pytest.raises(sa.exc.IntegrityError), store.begin() as conn:
+        ob.enqueue(conn, configured_channels(cfg), {"model": "k000"}, alert_id=ev.alert_id, condition="refit",
+                   severity="act", as_of="2025-12-29", seq=1, now=T0)
+
+
+def test_default_channel_names(tmp_path: Path) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "a"}, {"kind": "folder", "path": "b"},
+                              {"kind": "folder", "path": "c", "name": "named"}])
+    assert [n for n, _ in configured_channels(cfg)] == ["folder", "folder-2", "named"]
+    clash = make_cfg(tmp_path, [{"kind": "folder", "path": "a"}, {"kind": "folder", "path": "b", "name": "folder"}])
+    with pytest.raises(ValueError, match="unique"):
+        configured_channels(clash)
+
+
+class Flaky(Channel):
+    kind = "test-flaky"
+    sent: ClassVar[list[str]] = []
+
+    def __init__(self, cfg: Any, spec: Any, name: str, fail: int = 0, explode: bool = False) -> None:
+        super().__init__(cfg, spec, name)
+        self.fail, self.explode = fail, explode
+
+    def send(self, msg: OutboxMessage) -> None:
+        if self.explode:
+            raise KeyError("a bug in a channel")
+        if self.fail > 0:
+            self.fail -= 1
+            raise DeliveryError("temporarily broken")
+        Flaky.sent.append(msg.key)
+
+
+def test_register_custom_kind() -> None:
+    register_channel(Flaky)
+    assert ob.channel_class("test-flaky") is Flaky
+    with pytest.raises(ValueError, match="unknown channel kind"):
+        ob.channel_class("pigeon")
+
+
+def test_attempts_and_backoff_recorded(tmp_path: Path, store: Any) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "o", "name": "x"}])
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    Flaky.sent = []
+    ch = Flaky(cfg, None, "x", fail=2)
+    t = T0
+    deliver_pending(cfg, store, now=t, channels={"x": ch})
+    deliver_pending(cfg, store, now=t + dt.timedelta(minutes=4), channels={"x": ch})  # not due yet
+    with store.connect() as conn:
+        r = conn.execute(sa.select(outbox_t)).one()
+    assert (r.attempts, r.next_attempt_at) == (1, T0 + dt.timedelta(minutes=5))
+    deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=5), channels={"x": ch})
+    with store.connect() as conn:
+        r = conn.execute(sa.select(outbox_t)).one()
+    assert (r.attempts, r.next_attempt_at, r.status) == (2, T0 + dt.timedelta(minutes=15), "pending")
+    assert outbox_summary(store).next_attempt_at == T0 + dt.timedelta(minutes=15)
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=15), channels={"x": ch})
+    assert rep.sent == 1 and len(Flaky.sent) == 1
+    with store.connect() as conn:
+        r = conn.execute(sa.select(outbox_t)).one()
+    assert (r.attempts, r.status, r.sent_at) == (3, "sent", T0 + dt.timedelta(minutes=15))
+
+
+def test_unexpected_channel_error_is_never_resent(tmp_path: Path, store: Any) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "o", "name": "x"}])
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    Flaky.sent = []
+    rep = deliver_pending(cfg, store, now=T0, channels={"x": Flaky(cfg, None, "x", explode=True)})
+    assert rep.uncertain == 1 and "KeyError" in rep.errors[0].error
+    ok = Flaky(cfg, None, "x")
+    deliver_pending(cfg, store, now=T0 + dt.timedelta(days=1), channels={"x": ok})
+    assert Flaky.sent == [] and outbox_summary(store).counts["uncertain"] == 1
+
+
+def test_unconfigured_channel_rows_wait(tmp_path: Path, store: Any) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "o", "name": "gone"}])
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    rep = deliver_pending(make_cfg(tmp_path, []), store, now=T0)
+    assert (rep.sent, rep.deferred, rep.pending) == (0, 1, 1) and not rep.ok
+
+
+def test_claim_is_exclusive(tmp_path: Path, store: Any) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "o"}])
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    with store.connect() as conn:
+        rid = conn.execute(sa.select(outbox_t.c.id)).scalar_one()
+    assert ob._claim(store, rid, T0, dt.timedelta(minutes=1)) is True
+    assert ob._claim(store, rid, T0, dt.timedelta(minutes=1)) is False
+
+
+def test_naive_now_rejected(tmp_path: Path, store: Any) -> None:
+    with pytest.raises(ValueError, match="now"):
+        deliver_pending(make_cfg(tmp_path, []), store, now=dt.datetime(2025, 1, 1))
