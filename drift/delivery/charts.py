@@ -210,8 +210,8 @@ def _mark_reference(ax: Axes, periods: np.ndarray, start: np.datetime64 | None) 
     first = periods[0]
     if start <= first:
         return []
-    ax.axvspan(first, start, color=SHADE, zorder=0, linewidth=0)
-    ax.axvline(start, color=GREY, linewidth=0.9, linestyle="-", zorder=1)
+    ax.axvspan(first, start, color=SHADE, zorder=0, linewidth=0)  # type: ignore[arg-type]  # stubs say float; datetime64 is converted by the date units
+    ax.axvline(start, color=GREY, linewidth=0.9, linestyle="-", zorder=1)  # type: ignore[arg-type]  # stubs say float; datetime64 is converted by the date units
     return [Patch(facecolor=SHADE, edgecolor="none", label="reference period")]
 
 
@@ -277,7 +277,7 @@ def cusum_chart(
         handles.append(bl)
     if alarm_date is not None:
         a = _to_datetime64(alarm_date)
-        ax.axvline(a, color=VERMILION, linewidth=1.2, zorder=3)
+        ax.axvline(a, color=VERMILION, linewidth=1.2, zorder=3)  # type: ignore[arg-type]  # stubs say float; datetime64 is converted by the date units
         idx = int(np.argmin(np.abs((t - a).astype(np.int64)))) if t.size else 0
         if t.size and np.isfinite(y[idx]):
             ax.plot([t[idx]], [y[idx]], marker="o", markersize=7, color=VERMILION, zorder=4)
@@ -568,7 +568,7 @@ def feeds_chart(
                             textcoords="offset points", ha="left", va="center", **_text_kw(FONT - 0.5),
                             fontweight="bold")
     if not np.isnat(end):
-        ax.axvline(end, color=INK, linewidth=0.8, linestyle=":")
+        ax.axvline(end, color=INK, linewidth=0.8, linestyle=":")  # type: ignore[arg-type]  # stubs say float; datetime64 is converted by the date units
     ax.set_yticks(range(len(names)))
     ax.set_yticklabels([str(n) for n in reversed(names)], fontsize=FONT, color=INK)
     ax.set_ylim(-0.6, len(names) - 0.4)

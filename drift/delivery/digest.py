@@ -37,7 +37,7 @@ import os
 import tempfile
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import date, datetime, time, timezone
+from datetime import date, datetime, time
 from pathlib import Path
 from typing import Any, Literal
 from zoneinfo import ZoneInfo
@@ -200,7 +200,7 @@ def _rank(verdict: str | None) -> int:
 
 
 def _num(x: Any, digits: int = DIGITS) -> str:
-    if isinstance(x, jinja2.Undefined) or isinstance(x, bool):
+    if isinstance(x, (jinja2.Undefined, bool)):
         return "–"
     try:
         v = float(x)
@@ -279,8 +279,9 @@ def _accuracy(payload: Mapping[str, Any]) -> str:
     acc = payload.get("accuracy") or {}
     if not isinstance(acc, Mapping):
         return ""
-    m = acc.get("model") if isinstance(acc.get("model"), Mapping) else {}
-    b = acc.get("baseline") if isinstance(acc.get("baseline"), Mapping) else {}
+    got_m, got_b = acc.get("model"), acc.get("baseline")
+    m: Mapping[str, Any] = got_m if isinstance(got_m, Mapping) else {}
+    b: Mapping[str, Any] = got_b if isinstance(got_b, Mapping) else {}
     if m.get("mase") is not None:
         out = f"MASE {_num(m.get('mase'))}"
         if b.get("mase") is not None:
@@ -300,14 +301,15 @@ def _late(payload: Mapping[str, Any]) -> tuple[str, ...]:
     out = [str(d.get("series")) for d in payload.get("drivers") or []
            if isinstance(d, Mapping) and d.get("late") and d.get("series")]
     for a in payload.get("actions") or []:
-        if isinstance(a, Mapping) and a.get("action") == "data-late" and a.get("driver"):
-            if str(a["driver"]) not in out:
-                out.append(str(a["driver"]))
+        if (isinstance(a, Mapping) and a.get("action") == "data-late" and a.get("driver")
+                and str(a["driver"]) not in out):
+            out.append(str(a["driver"]))
     return tuple(out)
 
 
 def _line(row: Mapping[str, Any], previous: Mapping[str, str]) -> ModelLine:
-    payload = row.get("payload") if isinstance(row.get("payload"), Mapping) else {}
+    raw = row.get("payload")
+    payload: Mapping[str, Any] = raw if isinstance(raw, Mapping) else {}
     name = str(row.get("model") or payload.get("name") or "?")
     verdict = str(row.get("verdict") or payload.get("verdict") or "keep")
     as_of = row.get("as_of") or payload.get("as_of")
@@ -376,7 +378,8 @@ def _open_alerts(store: Store) -> list[OpenAlert]:
                 st = {}
             reason = ""
             if isinstance(st, dict):
-                latest = st.get("latest") if isinstance(st.get("latest"), dict) else st
+                got = st.get("latest")
+                latest: Mapping[str, Any] = got if isinstance(got, dict) else st
                 reason = str(latest.get("reason") or "")
             sev = {2: "act", 1: "watch"}.get(int(r.severity), "act" if int(r.severity) > 2 else "watch")
             out.append(OpenAlert(id=int(r.id), model=str(r.model), condition=str(r.condition), action=str(r.action),
@@ -448,7 +451,7 @@ def _sections(lines: Sequence[ModelLine], changed: Sequence[Change]) -> tuple[li
         chosen = list(lines)
     else:
         chosen = [m for m in lines if m.state == "act" or m.name in changed_names]
-    out = []
+    out: list[dict[str, Any]] = []
     for i, m in enumerate(chosen):
         images: list[dict[str, str]] = []
         notes: list[str] = []
