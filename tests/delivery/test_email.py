@@ -246,3 +246,16 @@ def test_prerendered_row_is_sent_as_is(tmp_path: Path, store: Any, smtp_server: 
     assert msg["Message-ID"] == "<digest.2025-12-29.mail@drift>"
     assert msg.get_body(preferencelist=("plain",)).get_content().strip() == "plain digest"
     assert "<p>html digest</p>" in msg.get_body(preferencelist=("html",)).get_content()
+
+
+def test_real_chart_renderer_inline_images(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    pytest.importorskip("drift.delivery.charts")
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit", since="2024-11-04")])), now=T0)
+    assert deliver_pending(cfg, store, now=T0).sent == 1  # default renderer: drift.delivery.charts
+    msg = parse(smtp_server.messages[0].content)
+    html = msg.get_body(preferencelist=("html",)).get_content()
+    cids = re.findall(r'src="cid:([^"]+)"', html)
+    assert cids
+    parts = {p["Content-ID"].strip("<>"): p for p in msg.walk() if p["Content-ID"]}
+    assert all(parts[c].get_content().startswith(b"\x89PNG") for c in cids)
