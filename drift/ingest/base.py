@@ -1,0 +1,403 @@
+"""Ingest orchestration: sources -> readers -> validation -> vintaged writes, one transaction per batch.
+
+A *batch* is one file (CSV, Parquet) or one query result (SQL). For each batch:
+
+1. the reader registered for the source kind (:data:`READERS`) returns a raw table, or raises
+   :class:`~drift.exceptions.InputError` when the batch cannot be read as a whole - then nothing of it is
+   written, it is listed in :attr:`IngestSummary.failed_files` and the other batches still ingest;
+2. a file whose exact content this source already ingested successfully is skipped (its values are
+   counted as known);
+3. :func:`drift.ingest.validate.validate` splits the cells into good observations and quarantine records;
+4. the good cells are merged with the latest stored vintage of each (series, period, issued_at): equal
+   values are *known* (nothing written), different values are *revised* (a new vintage) and the rest are
+   *stored* (first vintages);
+5. observations, new quarantine records and the batch row are written in one transaction.
+
+available_at
+------------
+From the source's ``available_column`` when it has a value (naive times are UTC). Otherwise a first
+vintage counts as available at the end of its period (the next period's start, midnight UTC) plus the
+series delay; a forecast vintage (``issued_column`` set) at its issue time; a revision, and a value of a
+series whose frequency is unknown, at ingest time ``now``.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+import time
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import asdict, dataclass, field, replace
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import sqlalchemy as sa
+
+from drift.config import Config, SourceConfig
+from drift.exceptions import ConfigError, InputError
+from drift.ingest.csv import read_csv
+from drift.ingest.parquet import read_parquet
+from drift.ingest.sql import EPOCH, read_sql, sql_label
+from drift.ingest.validate import RawTable, SeriesRules, Validated, validate
+from drift.store import Store, batches, observations, quarantine
+
+log = logging.getLogger(__name__)
+
+#: file readers by source kind (the SQL reader takes a ``since`` instead of a path)
+READERS: dict[str, Callable[[Path, SourceConfig], RawTable]] = {"csv": read_csv, "parquet": read_parquet}
+#: rows per executemany call
+INSERT_CHUNK = 20_000
+#: auto progress shows a bar from this many files, or for a batch of this many cells
+PROGRESS_FILES = 5
+PROGRESS_CELLS = 200_000
+
+
+@dataclass(frozen=True)
+class IngestSummary:
+    """What one ingest of a source did.
+
+    Attributes
+    ----------
+    source : the source name.
+    files : batches read (files, or 1 for a query), including skipped and failed ones.
+    stored : new values (first vintages) written.
+    known : values already stored with the same value (nothing written).
+    revised : new vintages of known values (the value differs from the latest stored vintage).
+    quarantined : quarantine records written by this ingest (already quarantined ones are not repeated).
+    failed_files : (file, message) of every batch that could not be read; nothing of it was written.
+    skipped : files whose exact content this source had already ingested (counted as known).
+    """
+
+    source: str
+    files: int = 0
+    stored: int = 0
+    known: int = 0
+    revised: int = 0
+    quarantined: int = 0
+    failed_files: list[tuple[str, str]] = field(default_factory=list)
+    skipped: int = 0
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain dict (JSON-ready) of the fields."""
+        d = asdict(self)
+        d["failed_files"] = [list(x) for x in self.failed_files]
+        return d
+
+    def describe(self) -> str:
+        """One sentence for the CLI."""
+        s = (f"{self.source}: {self.files} file{'s' if self.files != 1 else ''}, {self.stored} new, "
+             f"{self.revised} revised, {self.known} already known, {self.quarantined} quarantined")
+        if self.skipped:
+            s += f", {self.skipped} unchanged file{'s' if self.skipped != 1 else ''} skipped"
+        if self.failed_files:
+            s += f"; {len(self.failed_files)} failed ({self.failed_files[0][0]}: {self.failed_files[0][1]}"
+            s += ", ...)" if len(self.failed_files) > 1 else ")"
+        return s + "."
+
+    def __add__(self, other: IngestSummary) -> IngestSummary:
+        return replace(self, files=self.files + other.files, stored=self.stored + other.stored,
+                       known=self.known + other.known, revised=self.revised + other.revised,
+                       quarantined=self.quarantined + other.quarantined,
+                       failed_files=[*self.failed_files, *other.failed_files],
+                       skipped=self.skipped + other.skipped)
+
+
+def ingest_all(cfg: Config, store: Store, *, sources: list[str] | None = None, now: datetime | None = None,
+               progress: bool | None = None) -> list[IngestSummary]:
+    """Ingest every configured source (or the named ones), in config order.
+
+    Parameters
+    ----------
+    cfg : the configuration.
+    store : the open store.
+    sources : names of the sources to ingest; None = all.
+    now : the ingest time (tz-aware); default the current time. It is the ``ingested_at`` of every row and
+        the ``available_at`` of revisions.
+    progress : show a rich progress bar on stderr; None = when stderr is a terminal and the ingest is long.
+
+    Returns
+    -------
+    list of IngestSummary
+        one per source.
+
+    Raises
+    ------
+    ConfigError
+        when a name in ``sources`` is not a configured source.
+    ValueError
+        when ``now`` is naive.
+    """
+    chosen = cfg.sources
+    if sources is not None:
+        known = {s.name: s for s in cfg.sources}
+        for name in sources:
+            if name not in known:
+                raise ConfigError(f"no source named '{name}'; configured: "
+                                  f"{', '.join(known) or 'none'}", file=str(cfg.file) if cfg.file else None,
+                                  key="sources")
+        chosen = [known[n] for n in sources]
+    now = _check_now(now)
+    rules = SeriesRules(cfg)
+    with _Progress(progress) as bar:
+        return [_ingest(cfg, store, s, now, rules, bar) for s in chosen]
+
+
+def ingest_source(cfg: Config, store: Store, source: str | SourceConfig, *, now: datetime | None = None,
+                  progress: bool | None = None) -> IngestSummary:
+    """Ingest one source (by name or config); see :func:`ingest_all`."""
+    name = source if isinstance(source, str) else source.name
+    if isinstance(source, SourceConfig) and source not in cfg.sources:
+        now = _check_now(now)
+        with _Progress(progress) as bar:
+            return _ingest(cfg, store, source, now, SeriesRules(cfg), bar)
+    return ingest_all(cfg, store, sources=[name], now=now, progress=progress)[0]
+
+
+def _check_now(now: datetime | None) -> datetime:
+    if now is None:
+        return datetime.now(timezone.utc)
+    if not isinstance(now, datetime):
+        raise TypeError(f"now must be a tz-aware datetime, got {type(now).__name__}")
+    if now.tzinfo is None or now.utcoffset() is None:
+        raise ValueError("now must be tz-aware (e.g. datetime.now(timezone.utc)), got a naive datetime")
+    return now.astimezone(timezone.utc)
+
+
+# ----------------------------------------------------------------------------------------- per source
+
+def _ingest(cfg: Config, store: Store, source: SourceConfig, now: datetime, rules: SeriesRules,
+            bar: _Progress) -> IngestSummary:
+    total = IngestSummary(source=source.name)
+    if source.kind == "sql":
+        since = _since(store, source)
+        log.info("ingesting source %s (query, since %s)", source.name, since.isoformat())
+        try:
+            raw = read_sql(source, since)
+        except InputError as exc:
+            log.warning("source %s: %s", source.name, exc)
+            return total + IngestSummary(source.name, files=1, failed_files=[(sql_label(source), str(exc))])
+        return total + _ingest_batch(store, source, raw, now, rules, bar)
+    files = cfg.source_files(source)
+    if not files:
+        log.warning("source %s: no file matches %s", source.name, source.path)
+        return total
+    log.info("ingesting source %s: %d file(s)", source.name, len(files))
+    reader = READERS[source.kind]
+    task = bar.task(f"{source.name}", len(files), show=len(files) >= PROGRESS_FILES)
+    for path in files:
+        try:
+            skipped = _already_ingested(store, source, path)
+            if skipped is not None:
+                log.info("source %s: %s already ingested with this content, skipped", source.name, path)
+                total = total + IngestSummary(source.name, files=1, known=skipped, skipped=1)
+                continue
+            raw = reader(path, source)
+            total = total + _ingest_batch(store, source, raw, now, rules, bar)
+        except InputError as exc:
+            log.warning("source %s: %s", source.name, exc)
+            total = total + IngestSummary(source.name, files=1, failed_files=[(str(path), str(exc))])
+        finally:
+            bar.advance(task)
+    return total
+
+
+def _since(store: Store, source: SourceConfig) -> datetime:
+    """Lower bound bound to ``:since``: latest ingested_at of the source, else ``since``, else the epoch."""
+    o = observations
+    with store.connect() as conn:
+        last = conn.execute(sa.select(sa.func.max(o.c.ingested_at)).where(o.c.source == source.name)).scalar()
+    if last is not None:
+        return last if isinstance(last, datetime) and last.tzinfo else _as_utc(pd.Timestamp(last))
+    if source.since:
+        try:
+            return _as_utc(pd.Timestamp(source.since))
+        except ValueError:
+            raise ConfigError(f"since '{source.since}' is not a date or time (ISO 8601)",
+                              key=f"sources[{source.name}].since") from None
+    return EPOCH
+
+
+def _as_utc(ts: pd.Timestamp) -> datetime:
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    return ts.to_pydatetime()
+
+
+def _file_hash(path: Path) -> str | None:
+    import hashlib
+
+    h = hashlib.sha256()
+    try:
+        with path.open("rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except OSError:
+        return None  # the reader reports it
+    return h.hexdigest()
+
+
+def _already_ingested(store: Store, source: SourceConfig, path: Path) -> int | None:
+    """Values of the earlier successful batch with this file content, or None when there is none."""
+    digest = _file_hash(path)
+    if digest is None:
+        return None
+    b = batches
+    q = (sa.select(b.c.stored, b.c.known, b.c.revised)
+         .where(b.c.source == source.name, b.c.content_hash == digest, b.c.status == "ok")
+         .order_by(b.c.id.desc()).limit(1))
+    with store.connect() as conn:
+        row = conn.execute(q).first()
+    if row is None:
+        return None
+    return int((row[0] or 0) + (row[1] or 0) + (row[2] or 0))
+
+
+# ----------------------------------------------------------------------------------------- per batch
+
+def _ingest_batch(store: Store, source: SourceConfig, raw: RawTable, now: datetime, rules: SeriesRules,
+                  bar: _Progress) -> IngestSummary:
+    t0 = time.monotonic()
+    checked: Validated = validate(raw, source, rules)
+    good = checked.good
+    with store.begin() as conn:
+        latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist()) if len(good) else None
+        new, n_known, n_revised = _classify(good, latest, now)
+        qrows = _new_quarantine(conn, source, raw.label, checked.quarantine)
+        started = now
+        res = conn.execute(batches.insert().values(
+            source=source.name, file=raw.label, content_hash=raw.content_hash, started_at=started,
+            finished_at=None, stored=0, known=0, revised=0, quarantined=0, status="running"))
+        batch_id = int(res.inserted_primary_key[0])
+        task = bar.task(f"{source.name}: {Path(raw.label).name}", len(new) + len(qrows),
+                        show=len(new) + len(qrows) >= PROGRESS_CELLS)
+        for chunk in _observation_rows(new, source.name, batch_id, now):
+            conn.execute(observations.insert(), chunk)
+            bar.advance(task, len(chunk))
+        if len(qrows):
+            recs = [{"batch": batch_id, "source": source.name, "file": raw.label, "row": int(r.row),
+                     "column": r.column, "raw_value": r.raw_value, "reason": r.reason, "created_at": now}
+                    for r in qrows.itertuples(index=False)]
+            for i in range(0, len(recs), INSERT_CHUNK):
+                conn.execute(quarantine.insert(), recs[i:i + INSERT_CHUNK])
+                bar.advance(task, len(recs[i:i + INSERT_CHUNK]))
+        n_stored = len(new) - n_revised
+        conn.execute(batches.update().where(batches.c.id == batch_id).values(
+            finished_at=now + timedelta(seconds=time.monotonic() - t0), stored=n_stored, known=n_known,
+            revised=n_revised, quarantined=len(qrows), status="ok"))
+    log.info("source %s, %s: %d new, %d revised, %d known, %d quarantined (%.2fs)", source.name, raw.label,
+             n_stored, n_revised, n_known, len(qrows), time.monotonic() - t0)
+    return IngestSummary(source.name, files=1, stored=n_stored, known=n_known, revised=n_revised,
+                         quarantined=len(qrows))
+
+
+def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime
+              ) -> tuple[pd.DataFrame, int, int]:
+    """The rows to write (with their available_at and a ``revised`` flag), and the known / revised counts."""
+    if good.empty:
+        return good.assign(revised=np.zeros(0, dtype=bool)), 0, 0
+    g = good.copy()
+    g["_p"] = _period_key(g["period"])
+    g["_i"] = _issued_key(g["issued_at"])
+    if latest is not None and len(latest):
+        lv = pd.DataFrame({"series": latest["series"].astype(object).to_numpy(),
+                           "_p": _period_key(latest["period"]), "_i": _issued_key(latest["issued_at"]),
+                           "_old": latest["value"].astype(np.float64).to_numpy()})
+        g = g.merge(lv, on=["series", "_p", "_i"], how="left", sort=False)
+    else:
+        g["_old"] = np.nan
+    seen = g["_old"].notna().to_numpy()
+    same = seen & (g["_old"].to_numpy() == g["value"].to_numpy())
+    revised = seen & ~same
+    out = g.loc[~same].copy()
+    rev = revised[~same]
+    now_ts = pd.Timestamp(now)
+    default = out["default_available_at"].copy()
+    is_fc = out["issued_at"].notna().to_numpy()
+    default[is_fc] = out["issued_at"][is_fc]
+    default = default.fillna(now_ts)
+    default[rev] = now_ts
+    out["available_at"] = out["available_at"].fillna(default) if len(out) else out["available_at"]
+    out["revised"] = rev
+    return out.drop(columns=["_p", "_i", "_old"]), int(same.sum()), int(revised.sum())
+
+
+def _period_key(col: pd.Series) -> np.ndarray:
+    """Days since the epoch of a period column (datetime64 or date objects)."""
+    return pd.to_datetime(pd.Series(col)).to_numpy(dtype="datetime64[D]").astype(np.int64)
+
+
+def _issued_key(col: pd.Series) -> np.ndarray:
+    """Microseconds since the epoch of issued_at (UTC); int64 min where there is none."""
+    return np.asarray(pd.DatetimeIndex(pd.to_datetime(pd.Series(col), utc=True)).as_unit("us").asi8,
+                      dtype=np.int64)
+
+
+def _observation_rows(new: pd.DataFrame, source: str, batch_id: int, now: datetime
+                      ) -> Iterator[list[dict[str, Any]]]:
+    for i in range(0, len(new), INSERT_CHUNK):
+        part = new.iloc[i:i + INSERT_CHUNK]
+        periods = pd.DatetimeIndex(part["period"]).date
+        issued = pd.DatetimeIndex(part["issued_at"])
+        issued_py = [None if pd.isna(x) else x for x in issued.to_pydatetime()]
+        avail = pd.DatetimeIndex(part["available_at"]).to_pydatetime()
+        yield [{"series": s, "period": p, "issued_at": iss, "value": float(v), "available_at": a,
+                "ingested_at": now, "source": source, "batch": batch_id}
+               for s, p, iss, v, a in zip(part["series"].to_numpy(), periods, issued_py,
+                                          part["value"].to_numpy(), avail, strict=True)]
+
+
+def _new_quarantine(conn: Any, source: SourceConfig, label: str, records: pd.DataFrame) -> pd.DataFrame:
+    """The records not already quarantined for this source and file (same row, column, raw value, reason)."""
+    if records.empty:
+        return records
+    q = quarantine
+    old = conn.execute(sa.select(q.c.row, q.c.column, q.c.raw_value, q.c.reason)
+                       .where(q.c.source == source.name, q.c.file == label)).fetchall()
+    if not old:
+        return records
+    seen = {(int(r[0]) if r[0] is not None else None, r[1], r[2], r[3]) for r in old}
+    keep = [(int(r.row), r.column, r.raw_value, r.reason) not in seen for r in records.itertuples(index=False)]
+    return records.loc[keep].reset_index(drop=True)
+
+
+# ----------------------------------------------------------------------------------------- progress
+
+class _Progress:
+    """A rich progress bar on stderr, started only when wanted (auto: stderr is a terminal)."""
+
+    def __init__(self, enabled: bool | None) -> None:
+        self._enabled = enabled
+        self._bar: Any = None
+
+    def __enter__(self) -> _Progress:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self._bar is not None:
+            self._bar.stop()
+            self._bar = None
+
+    def _want(self, show: bool) -> bool:
+        if self._enabled is None:
+            return show and sys.stderr.isatty()
+        return self._enabled
+
+    def task(self, description: str, total: int, *, show: bool) -> int | None:
+        if not self._want(show) or total <= 0:
+            return None
+        if self._bar is None:
+            from rich.console import Console
+            from rich.progress import Progress
+
+            self._bar = Progress(console=Console(stderr=True), transient=True)
+            self._bar.start()
+        return int(self._bar.add_task(description, total=total))
+
+    def advance(self, task: int | None, n: int = 1) -> None:
+        if task is not None and self._bar is not None:
+            self._bar.advance(task, n)
+
+
+__all__: Sequence[str] = ["IngestSummary", "READERS", "ingest_all", "ingest_source"]

@@ -1,0 +1,115 @@
+"""CSV reader: bytes -> :class:`~drift.ingest.validate.RawTable` of strings, or :class:`InputError`.
+
+The file must be UTF-8 (a byte-order mark is dropped) with a header row. Every cell is read as text;
+empty fields stay empty strings (missing observations). Rows are numbered with the header as row 1, so the
+first data row is row 2 (record numbers: a quoted field spanning lines counts as one record). A row with
+more or fewer fields than the header, bad quoting, invalid UTF-8, an empty file or a repeated header name
+make the whole file unreadable: nothing of it is written.
+"""
+
+from __future__ import annotations
+
+import csv as _csv
+import hashlib
+import io
+import logging
+from pathlib import Path
+
+import pandas as pd
+
+from drift.config import SourceConfig
+from drift.exceptions import InputError
+from drift.ingest.validate import RawTable
+
+log = logging.getLogger(__name__)
+
+_BOM = b"\xef\xbb\xbf"
+
+
+def read_csv(path: Path, source: SourceConfig) -> RawTable:
+    """Read one CSV file of a source.
+
+    Parameters
+    ----------
+    path : the file.
+    source : the source (``delimiter`` is used here; layout is checked by validation).
+
+    Returns
+    -------
+    RawTable
+        string cells, ``first_row=2``.
+
+    Raises
+    ------
+    InputError
+        naming the file (and the row where known) when the file cannot be read as a whole.
+    """
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    label = str(path)
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise InputError("file not found", file=label) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
+    digest = hashlib.sha256(data).hexdigest()
+    if data.startswith(_BOM):
+        data = data[len(_BOM):]
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        row = data[:exc.start].count(b"\n") + 1
+        raise InputError(f"is not UTF-8 text (byte 0x{data[exc.start]:02x} at offset {exc.start}); "
+                         "save it as UTF-8", file=label, row=row) from None
+    if not text.strip():
+        raise InputError("the file is empty (no header row)", file=label)
+    if data.count(b'"') % 2:
+        # every quoted field adds two quote characters (an escaped quote is doubled): an odd count means the
+        # file ends inside a quoted field
+        raise InputError("ends inside a quoted field (a truncated file, or a stray '\"'); nothing of this "
+                         "file was stored", file=label)
+    try:
+        header = next(_csv.reader(io.StringIO(text), delimiter=source.delimiter, strict=True))
+    except _csv.Error as exc:
+        raise InputError(f"the header row cannot be parsed: {exc}", file=label, row=1) from None
+    names = [h.strip() for h in header]
+    seen: set[str] = set()
+    for h in names:
+        if h in seen:
+            raise InputError(f"column '{h}' appears twice in the header; every column needs its own name",
+                             file=label, row=1, column=h)
+        seen.add(h)
+    invalid: list[tuple[int | None, int, int]] = []
+
+    def on_invalid(row: pacsv.InvalidRow) -> str:
+        invalid.append((row.number, row.expected_columns, row.actual_columns))
+        return "skip"
+
+    try:
+        table = pacsv.read_csv(
+            io.BytesIO(data),
+            read_options=pacsv.ReadOptions(column_names=names, skip_rows=1, use_threads=False,
+                                           block_size=1 << 24),
+            parse_options=pacsv.ParseOptions(delimiter=source.delimiter, ignore_empty_lines=False,
+                                              newlines_in_values=True, invalid_row_handler=on_invalid),
+            convert_options=pacsv.ConvertOptions(column_types={n: pa.string() for n in names},
+                                                 strings_can_be_null=False, quoted_strings_can_be_null=False),
+        )
+    except pa.ArrowInvalid as exc:
+        msg = str(exc)
+        if "Empty CSV file" in msg:
+            table = pa.table({n: pa.array([], pa.string()) for n in names})
+        else:
+            raise InputError(f"cannot be parsed as CSV: {msg}", file=label) from None
+    if invalid:
+        number, expected, actual = invalid[0]
+        row = None if number is None else number  # pyarrow counts records from 1 with the header as 1
+        more = f" ({len(invalid) - 1} more such rows)" if len(invalid) > 1 else ""
+        raise InputError(f"has {actual} fields where the header has {expected} (a truncated or ragged "
+                         f"file){more}; nothing of this file was stored", file=label, row=row)
+    frame = table.to_pandas(types_mapper=lambda t: pd.StringDtype() if t == pa.string() else None)
+    frame = frame.astype(object)
+    log.debug("read %s: %d rows, %d columns", label, len(frame), len(names))
+    return RawTable(label=label, content_hash=digest, frame=frame, first_row=2)

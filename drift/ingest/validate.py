@@ -1,0 +1,537 @@
+"""Validation of one batch: raw table in, good observations and quarantine records out.
+
+A reader (:mod:`drift.ingest.csv`, :mod:`~drift.ingest.parquet`, :mod:`~drift.ingest.sql`) hands over a
+:class:`RawTable` - the cells exactly as the source holds them, one row per data row. :func:`validate`
+turns it into
+
+- the *good* cells, one per observation: series, period (normalised to the period's first day), value,
+  issued_at, an explicit available_at (from the source) and the default available_at (end of period plus
+  the series delay); and
+- the *quarantine* records: row, column, raw value and a reason in plain words.
+
+Row numbers
+-----------
+Rows are numbered as the source shows them: for CSV the header is row 1 and the first data row is row 2
+(the record number a spreadsheet shows; a quoted field spanning lines counts as one record); for Parquet
+and SQL the first data row is row 1.
+
+What is quarantined (and where the record points)
+-------------------------------------------------
+Whole-row problems - one record per data row, pointing at the period / available / issued column:
+an empty or unparseable period, an unparseable available or issued time. None of the row's values is
+stored. A period that is not a period start of the series' frequency (or, with ``period_label: end``,
+not a period end) - one record per row and frequency, naming the series concerned. Cell problems - one
+record per cell, pointing at the value's column: non-numeric and non-finite values, an empty series name,
+and keys (series, period[, issued_at]) that occur more than once in the batch (every copy is quarantined,
+each reason lists the clashing rows). An empty cell is a missing observation: neither stored nor
+quarantined. Everything here is vectorised over cells; Python loops run only over distinct periods and
+over the (rare) bad records.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from datetime import date, datetime, timedelta
+
+import numpy as np
+import pandas as pd
+
+from drift.config import Config, SourceConfig, next_period, period_start
+from drift.exceptions import InputError
+
+log = logging.getLogger(__name__)
+
+_WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
+_NAN_SPELLINGS = frozenset({"nan", "+nan", "-nan", "na n"})
+#: at most this many series names are spelled out in one quarantine reason
+_NAMES_IN_REASON = 3
+#: the sentinel used in place of a missing issued_at in integer merge keys
+_NO_ISSUE = np.iinfo(np.int64).min
+
+QUARANTINE_COLUMNS = ["row", "column", "raw_value", "reason"]
+GOOD_COLUMNS = ["row", "series", "period", "issued_at", "value", "available_at", "default_available_at"]
+
+
+@dataclass(frozen=True)
+class RawTable:
+    """The cells of one batch as the source holds them.
+
+    Parameters
+    ----------
+    label : the file path (or ``sql:<source>`` for a query); used in messages and quarantine rows.
+    content_hash : SHA-256 of the batch content (file bytes, or the query result).
+    frame : one row per data row, the source's columns (strings for CSV; typed for Parquet and SQL).
+    first_row : the number of the first data row (2 for CSV, whose header is row 1; 1 otherwise).
+    empty : optional per-column masks, True where a cell is empty; for typed columns whose NaN is a value
+        (Parquet keeps null and NaN apart). Columns not listed count as empty where null or blank text.
+    """
+
+    label: str
+    content_hash: str
+    frame: pd.DataFrame
+    first_row: int = 1
+    empty: Mapping[str, np.ndarray] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class SeriesRule:
+    """How one series' periods are checked: frequency (None = unknown), week anchor, publication delay."""
+
+    frequency: str | None
+    week_anchor: int
+    delay: timedelta
+
+
+class SeriesRules:
+    """Frequency, weekly anchor and delay of every series, resolved once per ingest.
+
+    The frequency comes from the first model that uses the series (its weekly anchor is the weekday of that
+    model's reference start), else from the source's ``frequency``; the delay is the largest driver delay
+    any model sets for it, else the source's ``delay``.
+    """
+
+    def __init__(self, cfg: Config) -> None:
+        self._freq = cfg.series_frequency()
+        self._anchor: dict[str, int] = {}
+        for m in cfg.models:
+            for s in m.series:
+                self._anchor.setdefault(s, m.reference.start.weekday())
+        self._delays = cfg.series_delays()
+
+    def rule(self, series: str, source: SourceConfig) -> SeriesRule:
+        freq = self._freq.get(series)
+        anchor = self._anchor.get(series, 0) if freq is not None else 0
+        if freq is None:
+            freq = source.frequency
+        return SeriesRule(freq, anchor, self._delays.get(series, source.delay))
+
+
+@dataclass(frozen=True)
+class Validated:
+    """Result of :func:`validate`: the good cells and the quarantine records (see the module docstring)."""
+
+    good: pd.DataFrame
+    quarantine: pd.DataFrame
+    cells: int
+
+
+# ----------------------------------------------------------------------------------------- helpers
+
+def _text(v: object) -> str:
+    if v is None or v is pd.NA or v is pd.NaT:
+        return ""
+    if isinstance(v, (pd.Timestamp, datetime)):
+        return v.isoformat()
+    return str(v)
+
+
+def _empty_mask(values: np.ndarray) -> np.ndarray:
+    """True where a cell is null or an empty string (blank-only text is handled where it fails to parse)."""
+    mask = np.asarray(pd.isna(values), dtype=bool)
+    if values.dtype == object:
+        with np.errstate(invalid="ignore"):
+            mask |= np.asarray(values == "", dtype=bool)
+    return mask
+
+
+def _column_empty(raw: RawTable, column: str) -> np.ndarray:
+    if column in raw.empty:
+        return np.asarray(raw.empty[column], dtype=bool)
+    return _empty_mask(raw.frame[column].to_numpy())
+
+
+def _names(names: list[str]) -> str:
+    quoted = [f"'{n}'" for n in names[:_NAMES_IN_REASON]]
+    if len(names) > _NAMES_IN_REASON:
+        return ", ".join(quoted) + f" and {len(names) - _NAMES_IN_REASON} more"
+    if len(quoted) == 1:
+        return quoted[0]
+    return ", ".join(quoted[:-1]) + " and " + quoted[-1]
+
+
+def _parse_unique_dates(values: np.ndarray, fmt: str | None, *, utc: bool) -> dict[object, pd.Timestamp]:
+    """Parse the distinct raw values of a date column; unparseable values map to NaT.
+
+    Naive results are wall-clock dates (periods) or, with ``utc``, UTC times; aware ones are converted to
+    UTC (``utc``) or reduced to their local wall date (periods).
+    """
+    out: dict[object, pd.Timestamp] = {}
+    uniq = pd.unique(pd.Series(values, dtype=object))
+    pending: list[object] = []
+    for v in uniq:
+        if isinstance(v, (pd.Timestamp, datetime, date, np.datetime64)):
+            ts = pd.Timestamp(v)
+            out[v] = _fix_tz(ts, utc)
+        else:
+            pending.append(v)
+    if not pending:
+        return out
+    texts = pd.Index([_text(v).strip() for v in pending], dtype=object)
+    try:
+        parsed = pd.to_datetime(texts, format=fmt or "ISO8601", errors="coerce", utc=utc)
+        parsed_list = list(parsed)
+    except (ValueError, TypeError, OverflowError):
+        parsed_list = [_parse_one(t, fmt, utc) for t in texts]
+    for v, t, ts in zip(pending, texts, parsed_list, strict=True):
+        if pd.isna(ts) and fmt is None and t:
+            ts = _parse_one(t, fmt, utc)
+        out[v] = ts if pd.isna(ts) else _fix_tz(pd.Timestamp(ts), utc)
+    return out
+
+
+def _parse_one(text: str, fmt: str | None, utc: bool) -> pd.Timestamp:
+    try:
+        if fmt is not None:
+            return pd.Timestamp(datetime.strptime(text, fmt))
+        try:
+            return pd.Timestamp(text)
+        except ValueError:
+            # quarter / month spellings such as 2024Q1 or 2024-03 name a period, whose start we take
+            return pd.Period(text).start_time
+    except (ValueError, TypeError, OverflowError):
+        return pd.NaT  # type: ignore[return-value]
+
+
+def _fix_tz(ts: pd.Timestamp, utc: bool) -> pd.Timestamp:
+    if ts is pd.NaT or pd.isna(ts):
+        return ts
+    if utc:
+        return ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    return ts.tz_localize(None) if ts.tzinfo is not None else ts
+
+
+def _parse_row_dates(raw: RawTable, column: str, fmt: str | None, *, utc: bool
+                     ) -> tuple[pd.DatetimeIndex, np.ndarray, np.ndarray]:
+    """(parsed values per data row, empty mask, bad mask) for one date column.
+
+    Periods come back naive (wall dates); available / issued times (``utc``) tz-aware UTC. Distinct raw
+    values are parsed once.
+    """
+    col = raw.frame[column]
+    empty = _column_empty(raw, column)
+    if pd.api.types.is_datetime64_any_dtype(col.dtype):
+        idx = pd.DatetimeIndex(col)
+        if utc:
+            idx = idx.tz_localize("UTC") if idx.tz is None else idx.tz_convert("UTC")
+        elif idx.tz is not None:
+            idx = idx.tz_localize(None)
+        parsed = idx.as_unit("ns")
+    else:
+        values = col.to_numpy(dtype=object)
+        codes, uniq = pd.factorize(pd.Series(values[~empty], dtype=object), use_na_sentinel=True)
+        mapping = _parse_unique_dates(np.asarray(uniq, dtype=object), fmt, utc=utc)
+        tz = "UTC" if utc else None
+        u_parsed = pd.DatetimeIndex([mapping.get(v, pd.NaT) for v in uniq], tz=tz).as_unit("ns")
+        ns = np.full(len(values), np.iinfo(np.int64).min, dtype=np.int64)  # NaT
+        ok = codes >= 0
+        picked = np.full(len(codes), np.iinfo(np.int64).min, dtype=np.int64)
+        picked[ok] = u_parsed.asi8[codes[ok]]
+        ns[~empty] = picked
+        parsed = pd.DatetimeIndex(ns.view("datetime64[ns]"))
+        if utc:
+            parsed = parsed.tz_localize("UTC")
+    bad = np.asarray(parsed.isna(), dtype=bool) & ~empty
+    return parsed, empty, bad
+
+
+# ----------------------------------------------------------------------------------------- validate
+
+def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validated:
+    """Check every cell of a batch and split it into good observations and quarantine records.
+
+    Parameters
+    ----------
+    raw : the batch as read.
+    source : its source configuration (layout, period column and label, available / issued columns).
+    rules : frequency, anchor and delay per series.
+
+    Returns
+    -------
+    Validated
+        ``good`` has columns ``row, series, period (datetime64, first day), issued_at (UTC or NaT), value
+        (float), available_at (UTC or NaT: from the source), default_available_at (UTC or NaT: end of
+        period plus delay; NaT when the frequency is unknown)``; ``quarantine`` has ``row, column,
+        raw_value, reason``; ``cells`` counts the non-empty value cells examined.
+
+    Raises
+    ------
+    InputError
+        when a column the source configuration names is not in the table (nothing of it is usable).
+    """
+    frame = raw.frame
+    columns = [str(c) for c in frame.columns]
+    pc = source.period_column
+    _require(raw, pc, "period_column", columns)
+    special = {pc}
+    for key, col in (("available_column", source.available_column), ("issued_column", source.issued_column)):
+        if col is not None:
+            _require(raw, col, key, columns)
+            special.add(col)
+    n = len(frame)
+    rows = raw.first_row + np.arange(n, dtype=np.int64)
+    qrecords: list[pd.DataFrame] = []
+
+    # ---- row-level: period, available, issued
+    period_raw = frame[pc].to_numpy()
+    period_idx, period_empty, period_bad = _parse_row_dates(raw, pc, source.period_format, utc=False)
+    periods = period_idx.to_numpy()
+    avail = issued = None
+    avail_bad = issued_bad = np.zeros(n, dtype=bool)
+    if source.available_column is not None:
+        avail, _, avail_bad = _parse_row_dates(raw, source.available_column, None, utc=True)
+    if source.issued_column is not None:
+        issued, _, issued_bad = _parse_row_dates(raw, source.issued_column, None, utc=True)
+
+    # ---- cells (long table of non-empty value cells)
+    if source.long_format:
+        assert source.series_column is not None and source.value_column is not None  # validated config
+        _require(raw, source.series_column, "series_column", columns)
+        _require(raw, source.value_column, "value_column", columns)
+        vcol = source.value_column
+        value_empty = _column_empty(raw, vcol)
+        cell_row = np.nonzero(~value_empty)[0]
+        series_vals = frame[source.series_column].to_numpy()[cell_row]
+        series = np.array([_text(s).strip() for s in series_vals], dtype=object)
+        cell_values = frame[vcol].to_numpy()[cell_row]
+        cell_column = np.full(len(cell_row), vcol, dtype=object)
+    else:
+        if source.columns is not None:
+            for c in source.columns:
+                _require(raw, c, "columns", columns)
+            value_cols = [c for c in source.columns if c not in special]
+        else:
+            value_cols = [c for c in columns if c not in special]
+        if value_cols:
+            block = frame[value_cols]
+            arr = block.to_numpy()
+            empty2 = np.column_stack([_column_empty(raw, c) for c in value_cols]) if raw.empty else \
+                _empty_mask(arr)
+            r_idx, c_idx = np.nonzero(~empty2)
+            cell_row = r_idx
+            cell_values = arr[r_idx, c_idx]
+            names = np.array([c.strip() for c in value_cols], dtype=object)
+            series = names[c_idx]
+            cell_column = np.array(value_cols, dtype=object)[c_idx]
+        else:
+            cell_row = np.zeros(0, dtype=np.int64)
+            cell_values = np.zeros(0, dtype=object)
+            series = cell_column = np.zeros(0, dtype=object)
+    n_cells = len(cell_row)
+
+    # whole-row failures are reported once per row that has at least one value
+    has_value = np.zeros(n, dtype=bool)
+    has_value[cell_row] = True
+    row_fail = np.zeros(n, dtype=bool)
+    for mask, col, what in (
+        (period_empty & has_value, pc, None),
+        (period_bad & has_value, pc, "period"),
+        (avail_bad & has_value, source.available_column, "available"),
+        (issued_bad & has_value, source.issued_column, "issued"),
+    ):
+        mask = mask & ~row_fail
+        if not mask.any():
+            continue
+        idx = np.nonzero(mask)[0]
+        colvals = frame[col].to_numpy()[idx]
+        reasons = [_row_reason(what, _text(v), source) for v in colvals]
+        qrecords.append(pd.DataFrame({"row": rows[idx], "column": col,
+                                      "raw_value": [_text(v) for v in colvals], "reason": reasons}))
+        row_fail |= mask
+
+    keep = ~row_fail[cell_row]
+    cell_row, cell_values, series, cell_column = (cell_row[keep], cell_values[keep], series[keep],
+                                                  cell_column[keep])
+
+    # ---- frequency alignment, per (rule, distinct period)
+    cell_period = periods[cell_row]
+    s_codes, s_uniq = pd.factorize(pd.Series(series, dtype=object), use_na_sentinel=False)
+    s_rules = [rules.rule(str(s), source) for s in s_uniq]
+    rule_keys = [(r.frequency, r.week_anchor) for r in s_rules]
+    g_codes_of_s, g_uniq = pd.factorize(pd.Series(rule_keys, dtype=object), use_na_sentinel=False)
+    g_codes = g_codes_of_s[s_codes] if len(s_codes) else np.zeros(0, dtype=np.int64)
+    p_codes, p_uniq = pd.factorize(cell_period, use_na_sentinel=False)
+    n_p = max(len(p_uniq), 1)
+    pair = g_codes.astype(np.int64) * n_p + p_codes.astype(np.int64)
+    u_pair, inv = np.unique(pair, return_inverse=True)
+    start_u = np.empty(len(u_pair), dtype="datetime64[ns]")
+    end_u = np.empty(len(u_pair), dtype="datetime64[ns]")
+    ok_u = np.ones(len(u_pair), dtype=bool)
+    for i, key in enumerate(u_pair):
+        freq, anchor = g_uniq[key // n_p]
+        p = pd.Timestamp(p_uniq[key % n_p]).normalize()
+        start, end, ok = _align(p, freq, anchor, source.period_label)
+        start_u[i] = np.datetime64(start.to_datetime64(), "ns")
+        end_u[i] = np.datetime64("NaT", "ns") if end is None else np.datetime64(end.to_datetime64(), "ns")
+        ok_u[i] = ok
+    cell_start = start_u[inv]
+    cell_end = end_u[inv]
+    off = ~ok_u[inv]
+    if off.any():
+        qrecords.append(_off_frequency_records(
+            rows[cell_row[off]], g_codes[off], series[off], period_raw[cell_row[off]], cell_period[off],
+            g_uniq, pc, source))
+        on = ~off
+        cell_row, cell_values, series, cell_column = cell_row[on], cell_values[on], series[on], cell_column[on]
+        cell_start, cell_end, s_codes = cell_start[on], cell_end[on], s_codes[on]
+
+    # ---- cell-level: series name, duplicates, numbers
+    cell_issued = (issued[cell_row] if issued is not None
+                   else pd.DatetimeIndex(np.full(len(cell_row), np.datetime64("NaT", "ns")), tz="UTC"))
+    cell_avail = (avail[cell_row] if avail is not None
+                  else pd.DatetimeIndex(np.full(len(cell_row), np.datetime64("NaT", "ns")), tz="UTC"))
+    reason = np.full(len(cell_row), None, dtype=object)
+    rcolumn = cell_column.copy()
+    rraw = np.array([None] * len(cell_row), dtype=object)
+
+    if source.long_format:
+        no_name = series == ""
+        if no_name.any():
+            reason[no_name] = "the series name is empty"
+            rcolumn[no_name] = source.series_column
+            rraw[no_name] = ""
+
+    issued_key = cell_issued.as_unit("ns").asi8.copy()
+    issued_key[cell_issued.isna()] = _NO_ISSUE
+    keys = pd.DataFrame({"s": series, "p": cell_start.astype("datetime64[ns]").astype(np.int64),
+                         "i": issued_key})
+    dup = keys.duplicated(keep=False).to_numpy() & (reason == None)  # noqa: E711 - elementwise
+    if dup.any():
+        idx = np.nonzero(dup)[0]
+        d = keys.iloc[idx].assign(row=rows[cell_row[idx]], pos=idx)
+        for _, grp in d.groupby(["s", "p", "i"], sort=False):
+            clash = sorted(int(r) for r in grp["row"])
+            what = f"series '{grp['s'].iloc[0]}' period {_day(pd.Timestamp(int(grp['p'].iloc[0])))}"
+            if int(grp["i"].iloc[0]) != _NO_ISSUE:
+                what += f" issued {pd.Timestamp(int(grp['i'].iloc[0]), tz='UTC').isoformat()}"
+            rows_text = ", ".join(str(r) for r in clash[:-1]) + f" and {clash[-1]}"
+            text = (f"duplicate: {what} appears in rows {rows_text} of this batch; none of the copies "
+                    "was stored")
+            for p in grp["pos"]:
+                reason[p] = text
+
+    values, num_reason = _parse_values(cell_values, source.decimal)
+    blank = num_reason == "blank"
+    free = reason == None  # noqa: E711 - elementwise
+    take = free & (num_reason != None) & ~blank  # noqa: E711
+    reason[take] = num_reason[take]
+    bad = reason != None  # noqa: E711
+    if bad.any():
+        raw_text = np.array([_text(v) if r is None else r for v, r in zip(cell_values[bad], rraw[bad],
+                                                                           strict=True)], dtype=object)
+        qrecords.append(pd.DataFrame({"row": rows[cell_row[bad]], "column": rcolumn[bad],
+                                      "raw_value": raw_text, "reason": reason[bad]}))
+    good_mask = ~bad & ~blank
+
+    delays = np.array([r.delay for r in s_rules], dtype="timedelta64[us]").astype("timedelta64[ns]") \
+        if s_rules else np.zeros(0, dtype="timedelta64[ns]")
+    g_start = cell_start[good_mask]
+    good = pd.DataFrame({
+        "row": rows[cell_row[good_mask]],
+        "series": series[good_mask],
+        "period": pd.DatetimeIndex(g_start),
+        "issued_at": cell_issued[good_mask],
+        "value": values[good_mask].astype(np.float64),
+        "available_at": cell_avail[good_mask],
+        "default_available_at": pd.DatetimeIndex(cell_end[good_mask] + delays[s_codes[good_mask]]
+                                                 if len(delays) else cell_end[good_mask]).tz_localize("UTC"),
+    })
+    quarantine = (pd.concat(qrecords, ignore_index=True) if qrecords
+                  else pd.DataFrame({c: [] for c in QUARANTINE_COLUMNS}))
+    quarantine = quarantine.sort_values(["row", "column"], kind="stable").reset_index(drop=True)
+    quarantine["row"] = quarantine["row"].astype(np.int64)
+    return Validated(good=good, quarantine=quarantine[QUARANTINE_COLUMNS], cells=int(n_cells))
+
+
+def _require(raw: RawTable, column: str, key: str, columns: list[str]) -> None:
+    if column not in columns:
+        shown = ", ".join(f"'{c}'" for c in columns[:12]) + (" ..." if len(columns) > 12 else "")
+        raise InputError(f"no column '{column}' (named by '{key}'); the columns are {shown or 'none'}",
+                         file=raw.label, column=column)
+
+
+def _day(ts: pd.Timestamp) -> str:
+    return ts.strftime("%Y-%m-%d")
+
+
+def _row_reason(what: str | None, text: str, source: SourceConfig) -> str:
+    if what is None:
+        return "the period is empty, so the row's values cannot be placed in time"
+    if what == "period":
+        hint = (f"in the format '{source.period_format}'" if source.period_format else
+                "(write ISO dates such as 2024-03-04, or set 'period_format')")
+        return f"period '{text}' is not a date {hint}; none of the row's values was stored"
+    return (f"{what} time '{text}' is not a date and time (ISO 8601, e.g. 2024-03-04T09:30:00Z; "
+            "naive times are UTC); none of the row's values was stored")
+
+
+def _align(p: pd.Timestamp, freq: str | None, anchor: int, label: str
+           ) -> tuple[pd.Timestamp, pd.Timestamp | None, bool]:
+    """(period start, period end = next start or None, whether ``p`` is on the series' calendar)."""
+    if freq is None:
+        return p, None, label == "start"
+    start = period_start(p, freq, week_anchor=anchor)
+    end = next_period(start, freq)
+    if label == "start":
+        return start, end, bool(start == p)
+    return start, end, bool(end - pd.Timedelta(days=1) == p)
+
+
+def _calendar(freq: str, anchor: int, label: str) -> str:
+    if label == "start":
+        return {"D": "days start at midnight", "W": f"weeks start on {_WEEKDAYS[anchor]}",
+                "M": "months start on the 1st", "Q": "quarters start on 1 January, April, July and October"
+                }[freq]
+    return {"D": "days end at midnight", "W": f"weeks end on {_WEEKDAYS[(anchor - 1) % 7]}",
+            "M": "months end on their last day",
+            "Q": "quarters end on 31 March, 30 June, 30 September and 31 December"}[freq]
+
+
+def _off_frequency_records(rows: np.ndarray, g_codes: np.ndarray, series: np.ndarray, raw_period: np.ndarray,
+                           period: np.ndarray, g_uniq: pd.Index, pc: str, source: SourceConfig
+                           ) -> pd.DataFrame:
+    df = pd.DataFrame({"row": rows, "g": g_codes, "series": series, "pos": np.arange(len(rows))})
+    out = []
+    for (row, g), grp in df.groupby(["row", "g"], sort=True):
+        freq, anchor = g_uniq[g]
+        names = _names(sorted({str(s) for s in grp["series"]}))
+        pos = int(grp["pos"].iloc[0])
+        day = _day(pd.Timestamp(period[pos]))
+        if freq is None:
+            reason = (f"the frequency of series {names} is unknown, so period {day} (labelled as a period "
+                      "end) cannot be converted to a period start; set 'frequency' on the source")
+        else:
+            which = "first" if source.period_label == "start" else "last"
+            reason = (f"period {day} is not the {which} day of a {freq} period ({_calendar(freq, anchor, source.period_label)}) "
+                      f"for series {names}; the value was not stored")
+        out.append((int(row), pc, _text(raw_period[pos]), reason))
+    return pd.DataFrame(out, columns=QUARANTINE_COLUMNS)
+
+
+def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndarray]:
+    """Numbers from raw cells, with a reason per failing cell (None when fine, "blank" for blank text)."""
+    reason = np.full(len(values), None, dtype=object)
+    if values.dtype.kind in "fiub":
+        out = values.astype(np.float64)
+    else:
+        series = pd.Series(values, dtype=object)
+        if decimal != ".":
+            is_str = np.fromiter((isinstance(v, str) for v in values), dtype=bool, count=len(values))
+            if is_str.any():
+                series[is_str] = series[is_str].str.replace(decimal, ".", regex=False)
+        out = pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+        failed = np.nonzero(np.isnan(out))[0]
+        for i in failed:
+            text = _text(values[i]).strip()
+            if text == "":
+                reason[i] = "blank"
+            elif text.lower() in _NAN_SPELLINGS:
+                reason[i] = f"value '{text}' is not a finite number"
+            else:
+                reason[i] = f"value '{text}' is not a number"
+    with np.errstate(invalid="ignore"):
+        nonfinite = ~np.isfinite(out) & (reason == None)  # noqa: E711 - elementwise
+    for i in np.nonzero(nonfinite)[0]:
+        reason[i] = f"value '{_text(values[i]).strip()}' is not a finite number"
+    return out, reason
