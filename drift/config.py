@@ -231,6 +231,11 @@ class CheckConfig(_Strict):
     feed_limit: int = Field(4, ge=1)
     monitor_detector: Literal["csw", "mosum", "page"] = "page"
     horizon: float = Field(2.0, gt=0, le=6.0)
+    #: how chunks of models are run (see drift.executor); dask_scheduler None = a LocalCluster for the run
+    executor: Literal["local", "process", "dask"] = "local"
+    chunk_size: int = Field(500, ge=1)
+    workers: int | None = Field(None, ge=1)
+    dask_scheduler: str | None = None
 
     @model_validator(mode="after")
     def _levels(self) -> CheckConfig:
@@ -280,8 +285,10 @@ class AlertsConfig(_Strict):
     retry_backoff: timedelta = timedelta(minutes=5)
     retry_max_backoff: timedelta = timedelta(hours=6)
     digest_path: str = "digests/"
+    notify_cleared: bool = False
+    sending_timeout: timedelta = timedelta(minutes=15)
 
-    _dur = field_validator("retry_backoff", "retry_max_backoff", mode="before")(
+    _dur = field_validator("retry_backoff", "retry_max_backoff", "sending_timeout", mode="before")(
         lambda cls, v: parse_duration(v)
     )
 
@@ -540,7 +547,9 @@ def load_config(path: str | os.PathLike[str], *, check_files: bool = False) -> C
     try:
         cfg = Config.model_validate({**data, "base_dir": file.resolve().parent, "file": file})
     except ValidationError as exc:
-        err = exc.errors()[0]
+        # a misspelt key shows up twice (unknown key + missing required key): report the misspelling
+        errs = sorted(exc.errors(), key=lambda e: 0 if e["type"] == "extra_forbidden" else 1)
+        err = errs[0]
         loc = _clean_loc(tuple(err["loc"]))
         line = None
         for i in range(len(loc), -1, -1):

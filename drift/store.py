@@ -155,7 +155,7 @@ outbox = sa.Table(
     sa.Column("idempotency_key", sa.String(200), nullable=False, unique=True),
     sa.Column("subject", sa.Text, nullable=False),
     sa.Column("payload", sa.Text, nullable=False),
-    sa.Column("status", sa.String(20), nullable=False),  # pending | sending | sent | dead
+    sa.Column("status", sa.String(20), nullable=False),  # pending | sending | sent | uncertain | dead
     sa.Column("attempts", sa.Integer, nullable=False, default=0),
     sa.Column("next_attempt_at", UTCDateTime, nullable=False),
     sa.Column("last_error", sa.Text),
