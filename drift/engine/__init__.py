@@ -45,6 +45,19 @@ _EXPORTS: dict[str, str] = {
     "diebold_mariano": "worth",
     # lag profiles
     "lag_profile": "lags",
+    "compare_profiles": "lags",
+    "LagProfile": "lags",
+    # result types and helpers
+    "BreakResult": "breaks",
+    "NyblomResult": "breaks",
+    "ChangePointResult": "changepoints",
+    "Segment": "changepoints",
+    "check_partition": "changepoints",
+    "reference_fit": "monitor",
+    "parse_error_spec": "arma",
+    "ErrorModel": "arma",
+    "TrackingResult": "tracking",
+    "split_coefficients": "split",
 }
 
 __all__ = ["TestResult", *_EXPORTS]
