@@ -624,7 +624,9 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
     try:
         series = sorted({s for m in chosen for s in m.series})
         obs = store.load_observations(series, moment)
-        payloads, errors = analyse(cfg, chosen, obs, moment)
+        from drift.executor import run_chunks  # executor calls back into analyse
+
+        payloads, errors = run_chunks(cfg, chosen, obs, moment)
         outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors)
         store.save_verdicts(run_id, day, payloads)
         if deliver:

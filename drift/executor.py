@@ -1,0 +1,315 @@
+"""Run the check's statistical work chunk by chunk: in-process, in a process pool, or on a Dask cluster.
+
+A *chunk* of models is the unit of work. :func:`run_chunks` splits the models into chunks of
+``check.chunk_size``, gives each chunk only the observations of its own models' series, runs the chunk
+function (:func:`drift.check.analyse` by default) with the configured executor and puts the results back
+together in the original model order.
+
+Contract
+--------
+- Same inputs, same output, whatever the executor: every executor runs the same chunks through the same
+  function, and results are reassembled by model position, never by completion order.
+- A chunk that raises does not stop the run: each of its models gets an error entry
+  (``"<ExceptionType>: <message>"``), the traceback is logged, and the other chunks complete. Models that
+  ``analyse`` itself rejects (its own per-model errors) keep their own messages.
+- Worker processes run their linear algebra single-threaded (``OMP_NUM_THREADS=1`` and friends, set before
+  the workers start, plus ``threadpoolctl`` when it is installed), so ``w`` workers on ``w`` cores do not
+  oversubscribe the machine. A variable the user has already set is left alone.
+
+Executors
+---------
+``local``
+    A plain loop in the calling process.
+``process``
+    :class:`concurrent.futures.ProcessPoolExecutor` with ``check.workers`` processes (default: the number
+    of CPUs, at most one per chunk), started with the ``spawn`` method (safe next to threads, the same on
+    every platform). The configuration is pickled once per worker (pool initializer), not once per chunk.
+``dask``
+    A :class:`distributed.Client` connected to ``check.dask_scheduler``, or, when that is unset, to a
+    :class:`distributed.LocalCluster` (``check.workers`` or 2 worker processes, one thread each, no
+    dashboard) started and closed for the run. The configuration is broadcast once to every worker and
+    each chunk's observations are scattered before the chunk tasks are mapped.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import logging
+import multiprocessing
+import os
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from datetime import datetime
+from typing import Any, TypeAlias
+
+import numpy as np
+import pandas as pd
+
+from drift.config import Config, ModelConfig
+
+log = logging.getLogger(__name__)
+
+Payloads: TypeAlias = list[dict[str, Any]]
+Errors: TypeAlias = dict[str, str]
+#: a chunk function: ``(cfg, models, obs, as_of) -> (payloads, errors)``, like :func:`drift.check.analyse`
+ChunkFunc: TypeAlias = Callable[[Config, Sequence[ModelConfig], pd.DataFrame, datetime], tuple[Payloads, Errors]]
+
+EXECUTORS = ("local", "process", "dask")
+#: environment that keeps BLAS / OpenMP pools at one thread inside each worker process
+THREAD_ENV = {
+    "OMP_NUM_THREADS": "1",
+    "OPENBLAS_NUM_THREADS": "1",
+    "MKL_NUM_THREADS": "1",
+    "VECLIB_MAXIMUM_THREADS": "1",
+    "NUMEXPR_NUM_THREADS": "1",
+}
+#: workers of a LocalCluster started for the run when ``check.workers`` is unset
+DEFAULT_DASK_WORKERS = 2
+
+
+# ------------------------------------------------------------------------------------------------ splitting
+def chunk_models(models: Sequence[ModelConfig], size: int) -> list[list[ModelConfig]]:
+    """Consecutive chunks of at most ``size`` models, in order.
+
+    Raises
+    ------
+    ValueError
+        when ``size`` is not a positive integer.
+    """
+    if isinstance(size, bool) or not isinstance(size, (int, np.integer)) or size < 1:
+        raise ValueError(f"chunk size must be a positive integer, got {size!r}")
+    size = int(size)
+    return [list(models[i:i + size]) for i in range(0, len(models), size)]
+
+
+class _SeriesIndex:
+    """Row positions of each series in ``obs``, so that slicing obs for many chunks costs one pass."""
+
+    def __init__(self, obs: pd.DataFrame) -> None:
+        codes, uniques = pd.factorize(obs["series"], sort=False)
+        order = np.argsort(codes, kind="stable")
+        counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+        starts = np.concatenate([[0], np.cumsum(counts)])
+        n_missing = int(np.sum(codes < 0))  # NaN series names sort first (code -1)
+        self._obs = obs
+        self._rows = {s: order[n_missing + starts[j]: n_missing + starts[j + 1]] for j, s in enumerate(uniques)}
+
+    def take(self, series: Sequence[str]) -> pd.DataFrame:
+        """The rows of ``obs`` whose series is in ``series``, in their original order and index."""
+        parts = [self._rows[s] for s in dict.fromkeys(series) if s in self._rows]
+        if not parts:
+            return self._obs.iloc[0:0]
+        pos = np.sort(np.concatenate(parts))
+        return self._obs.iloc[pos]
+
+
+def chunk_observations(obs: pd.DataFrame, chunks: Sequence[Sequence[ModelConfig]]) -> list[pd.DataFrame]:
+    """For each chunk, the observations of its models' series only (original row order kept).
+
+    Raises
+    ------
+    ValueError
+        when ``obs`` has no ``series`` column.
+    """
+    if "series" not in obs.columns:
+        raise ValueError(f"obs must have a 'series' column; it has {list(obs.columns)}")
+    index = _SeriesIndex(obs)
+    return [index.take([s for m in chunk for s in m.series]) for chunk in chunks]
+
+
+# ------------------------------------------------------------------------------------------------ workers
+def _default_func() -> ChunkFunc:
+    from drift.check import analyse
+
+    return analyse
+
+
+def _limit_threads() -> None:
+    """Cap native thread pools in this process (threadpoolctl when installed; env is set by the parent)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return
+    threadpool_limits(1)
+
+
+def run_chunk(func: ChunkFunc | None, cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame,
+              as_of: datetime) -> tuple[Payloads, Errors]:
+    """Run one chunk (module level and picklable arguments, so any executor can ship it)."""
+    f = func or _default_func()
+    return f(cfg, models, obs, as_of)
+
+
+_WORKER_CFG: Config | None = None
+
+
+def _pool_init(cfg: Config) -> None:
+    global _WORKER_CFG
+    _WORKER_CFG = cfg
+    _limit_threads()
+
+
+def _pool_chunk(func: ChunkFunc | None, models: Sequence[ModelConfig], obs: pd.DataFrame,
+                as_of: datetime) -> tuple[Payloads, Errors]:
+    if _WORKER_CFG is None:  # the pool initializer always runs first; this guards misuse
+        raise RuntimeError("process-pool worker used without its initializer")
+    return run_chunk(func, _WORKER_CFG, models, obs, as_of)
+
+
+def _dask_chunk(func: ChunkFunc | None, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime,
+                cfg: Config) -> tuple[Payloads, Errors]:
+    _limit_threads()
+    return run_chunk(func, cfg, models, obs, as_of)
+
+
+@contextmanager
+def _single_threaded_env() -> Iterator[None]:
+    """Set :data:`THREAD_ENV` (where unset) while worker processes are spawned; restore afterwards."""
+    added = [k for k in THREAD_ENV if k not in os.environ]
+    for k in added:
+        os.environ[k] = THREAD_ENV[k]
+    try:
+        yield
+    finally:
+        for k in added:
+            os.environ.pop(k, None)
+
+
+# ------------------------------------------------------------------------------------------------ running
+def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime, *,
+               func: ChunkFunc | None = None) -> tuple[Payloads, Errors]:
+    """Run ``func`` (default :func:`drift.check.analyse`) over the models, chunk by chunk.
+
+    Parameters
+    ----------
+    cfg : the configuration; ``cfg.check`` selects ``executor`` (local / process / dask), ``chunk_size``,
+        ``workers`` and ``dask_scheduler``.
+    models : the models to check, in the order the output should have.
+    obs : observations (columns series, period, issued_at, value, available_at, ...) of at least the
+        models' series; each chunk receives only the rows of its own models' series.
+    as_of : the tz-aware moment of the check.
+    func : the chunk function, ``(cfg, models, obs, as_of) -> (payloads, errors)``; it must be importable
+        at module level for the process and dask executors.
+
+    Returns
+    -------
+    payloads : the payloads ``func`` produced, chunks concatenated in model order.
+    errors : model name -> reason, in model order: ``func``'s own per-model errors, and
+        ``"<ExceptionType>: <message>"`` for every model of a chunk that raised.
+
+    Raises
+    ------
+    ValueError
+        when ``cfg.check.executor`` is not one of :data:`EXECUTORS`.
+    ImportError
+        for the dask executor when ``dask.distributed`` is not installed (``pip install drift[dask]``).
+    """
+    chk = cfg.check
+    executor = getattr(chk, "executor", "local")
+    if executor not in EXECUTORS:
+        raise ValueError(f"check.executor must be one of {EXECUTORS}, got {executor!r}")
+    chunks = chunk_models(models, getattr(chk, "chunk_size", 500))
+    if not chunks:
+        return [], {}
+    parts = chunk_observations(obs, chunks)
+    workers = getattr(chk, "workers", None)
+    log.info("checking %d models in %d chunk(s) with the %s executor", len(models), len(chunks), executor)
+    if executor == "local":
+        results = _run_local(func, cfg, chunks, parts, as_of)
+    elif executor == "process":
+        results = _run_process(func, cfg, chunks, parts, as_of, workers)
+    else:
+        results = _run_dask(func, cfg, chunks, parts, as_of, workers, getattr(chk, "dask_scheduler", None))
+    return _assemble(models, chunks, results)
+
+
+_Outcome: TypeAlias = "tuple[Payloads, Errors] | BaseException"
+
+
+def _run_local(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
+               parts: list[pd.DataFrame], as_of: datetime) -> list[_Outcome]:
+    out: list[_Outcome] = []
+    for i, (chunk, part) in enumerate(zip(chunks, parts)):
+        try:
+            out.append(run_chunk(func, cfg, chunk, part, as_of))
+        except Exception as exc:  # noqa: BLE001 - a failing chunk is isolated and reported per model
+            _log_failure(i, len(chunks), chunk, exc)
+            out.append(exc)
+    return out
+
+
+def _run_process(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
+                 parts: list[pd.DataFrame], as_of: datetime, workers: int | None) -> list[_Outcome]:
+    n = max(1, min(workers or os.cpu_count() or 1, len(chunks)))
+    ctx = multiprocessing.get_context("spawn")
+    out: list[_Outcome] = []
+    with _single_threaded_env():
+        # workers are spawned on demand by submit(), i.e. inside this block, so they inherit THREAD_ENV
+        pool = cf.ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_pool_init, initargs=(cfg,))
+        try:
+            futures = [pool.submit(_pool_chunk, func, chunk, part, as_of) for chunk, part in zip(chunks, parts)]
+        except BaseException:
+            pool.shutdown(wait=False, cancel_futures=True)
+            raise
+    with pool:
+        for i, fut in enumerate(futures):
+            try:
+                out.append(fut.result())
+            except Exception as exc:  # noqa: BLE001 - includes BrokenProcessPool: reported per model
+                _log_failure(i, len(chunks), chunks[i], exc)
+                out.append(exc)
+    return out
+
+
+def _run_dask(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
+              parts: list[pd.DataFrame], as_of: datetime, workers: int | None,
+              address: str | None) -> list[_Outcome]:
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as exc:
+        raise ImportError("check.executor 'dask' needs dask.distributed: pip install 'drift[dask]'") from exc
+    cluster = None
+    if address is None:
+        cluster = LocalCluster(n_workers=workers or DEFAULT_DASK_WORKERS, threads_per_worker=1, processes=True,
+                               dashboard_address=None, env=dict(THREAD_ENV))
+        log.info("started a local Dask cluster with %d worker(s)", workers or DEFAULT_DASK_WORKERS)
+    out: list[_Outcome] = []
+    try:
+        with Client(cluster if cluster is not None else address) as client:
+            cfg_f = client.scatter(cfg, broadcast=True)
+            part_f = client.scatter(parts)
+            futures = client.map(_dask_chunk, [func] * len(chunks), chunks, part_f, [as_of] * len(chunks),
+                                 cfg=cfg_f, pure=False)
+            for i, fut in enumerate(futures):
+                try:
+                    out.append(fut.result())
+                except Exception as exc:  # noqa: BLE001 - a failing chunk is isolated and reported per model
+                    _log_failure(i, len(chunks), chunks[i], exc)
+                    out.append(exc)
+    finally:
+        if cluster is not None:
+            cluster.close()
+    return out
+
+
+def _log_failure(i: int, n: int, chunk: Sequence[ModelConfig], exc: BaseException) -> None:
+    names = [m.name for m in chunk]
+    shown = ", ".join(names[:5]) + (f", ... ({len(names)} models)" if len(names) > 5 else "")
+    log.error("chunk %d/%d failed (%s): %s: %s", i + 1, n, shown, type(exc).__name__, exc, exc_info=exc)
+
+
+def _assemble(models: Sequence[ModelConfig], chunks: list[list[ModelConfig]],
+              results: list[_Outcome]) -> tuple[Payloads, Errors]:
+    payloads: Payloads = []
+    raw_errors: Errors = {}
+    for chunk, res in zip(chunks, results):
+        if isinstance(res, BaseException):
+            text = f"{type(res).__name__}: {res}"
+            raw_errors.update({m.name: text for m in chunk})
+            continue
+        got, errs = res
+        payloads.extend(got)
+        raw_errors.update(errs)
+    errors = {m.name: raw_errors[m.name] for m in models if m.name in raw_errors}
+    errors.update({k: v for k, v in raw_errors.items() if k not in errors})  # names func made up, last
+    return payloads, errors
