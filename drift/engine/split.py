@@ -28,6 +28,9 @@ class SplitCoefficients:
     se_after: FloatArray
     ci_before: FloatArray  # (len(cols), 2)
     ci_after: FloatArray
+    diff: FloatArray  # after - before
+    se_diff: FloatArray
+    pvalue_diff: FloatArray  # two-sided t test of no change, per column
     nobs_before: int
     nobs_after: int
     df: int
@@ -83,8 +86,12 @@ def split_coefficients(y: FloatArray, X: FloatArray, at: int, cols: list[int], *
     var_a = np.diag(cov)[idx_b] + np.diag(cov)[idx_d] + 2 * cov[idx_b, idx_d]
     se_a = np.sqrt(np.maximum(var_a, 0.0))
     z = stats.t.ppf(0.5 + level / 2, dof)
+    diff = b[idx_d]
+    se_d = np.sqrt(np.diag(cov)[idx_d])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p_d = 2 * stats.t.sf(np.abs(diff / se_d), dof)
     return SplitCoefficients(
         before=before, after=after, se_before=se_b, se_after=se_a,
         ci_before=np.column_stack([before - z * se_b, before + z * se_b]),
         ci_after=np.column_stack([after - z * se_a, after + z * se_a]),
-        nobs_before=n1, nobs_after=n2, df=dof)
+        diff=diff, se_diff=se_d, pvalue_diff=p_d, nobs_before=n1, nobs_after=n2, df=dof)
