@@ -34,7 +34,7 @@ Scheduling rules (each a trap of APScheduler 3.x that is handled here)
 - *Daylight saving.* Cron triggers run in ``schedule.timezone`` (default: the machine's local zone). A
   wall-clock time that does not exist (spring forward) fires at the same offset as before the jump (e.g.
   01:30 on 2026-03-29 in Europe/Lisbon fires at 01:30 UTC); a wall-clock time that occurs twice (fall back)
-  fires on its first occurrence only, unless the hour field is ``*`` (then both hours run, as in cron).
+  fires on its first occurrence only (an hourly job has 23 runs that night, one per wall-clock hour).
 
 Clock
 -----
@@ -55,7 +55,7 @@ import threading
 import traceback
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, tzinfo
+from datetime import datetime, timedelta, timezone, tzinfo
 from enum import Enum
 from pathlib import Path
 from types import FrameType, MappingProxyType
@@ -165,20 +165,19 @@ class WallClockCronTrigger(CronTrigger):
     """A cron trigger that fires a repeated wall-clock time (fall back) once, on its first occurrence.
 
     APScheduler's CronTrigger fires ``30 1 * * *`` twice on a fall-back night (01:30 summer time, then 01:30
-    winter time). When the hour field is not ``*``, the second occurrence is skipped; an hourly or finer
-    schedule (hour ``*``) keeps both hours, as cron does.
+    winter time), while for an hourly ``0 * * * *`` it already skips the repeated hour. Here every
+    wall-clock time fires once, on its first occurrence, whatever the fields.
     """
 
     def get_next_fire_time(self, previous_fire_time: datetime | None, now: datetime) -> datetime | None:
         nxt = super().get_next_fire_time(previous_fire_time, now)
         while nxt is not None and self._second_occurrence(nxt):
-            nxt = super().get_next_fire_time(nxt, nxt + timedelta(microseconds=1))
+            # step in UTC: aware arithmetic in a zone drops `fold` and would land back on the first 01:30
+            at = nxt.astimezone(timezone.utc)
+            nxt = super().get_next_fire_time(at, at + timedelta(microseconds=1))
         return nxt
 
     def _second_occurrence(self, when: datetime) -> bool:
-        hour = next(f for f in self.fields if f.name == "hour")
-        if hour.is_default:
-            return False
         local = when.astimezone(self.timezone)
         other = local.replace(fold=1 - local.fold)
         return local.fold == 1 and other.utcoffset() != local.utcoffset()
@@ -200,10 +199,12 @@ def count_fire_times(trigger: BaseTrigger, after: datetime, until: datetime,
                      limit: int = BACKLOG_COUNT_LIMIT) -> tuple[int, datetime | None]:
     """Fire times in ``(after, until]``: their number (capped at ``limit``) and the latest one."""
     n, last = 0, None
+    after = after.astimezone(timezone.utc)
     t = trigger.get_next_fire_time(after, after + timedelta(microseconds=1))
     while t is not None and t <= until and n < limit:
         n, last = n + 1, t
-        t = trigger.get_next_fire_time(t, t + timedelta(microseconds=1))
+        at = t.astimezone(timezone.utc)  # UTC arithmetic keeps repeated wall-clock times apart
+        t = trigger.get_next_fire_time(at, at + timedelta(microseconds=1))
     return n, last
 
 
@@ -238,6 +239,7 @@ class _InFlight:
     started: float
     done: threading.Event = field(default_factory=threading.Event)
     box: dict[str, Any] = field(default_factory=dict)
+    detail: dict[str, Any] = field(default_factory=dict)
     settled: bool = False
 
 
@@ -430,7 +432,8 @@ class Daemon:
             out = JobOutcome(name, scheduled_for, "failed", error=msg)
             self._append(out)
             return out
-        fl = _InFlight(name=name, run_id=run_id, scheduled_for=scheduled_for, started=_monotonic())
+        fl = _InFlight(name=name, run_id=run_id, scheduled_for=scheduled_for, started=_monotonic(),
+                       detail=detail)
 
         def body() -> None:
             try:
@@ -473,7 +476,7 @@ class Daemon:
             self._inflight.pop(fl.run_id, None)
         duration = _monotonic() - fl.started
         fl.box["status"], fl.box["error"], fl.box["duration"] = status, error, duration
-        detail = {"trigger": getattr(self.cfg.schedule, fl.name, None), "duration_s": round(duration, 3)}
+        detail = {**fl.detail, "duration_s": round(duration, 3)}
         if result is not None:
             detail["result"] = _summary(result)
         try:

@@ -1,0 +1,81 @@
+"""collect_status / format_status on a store with runs, outbox rows, alerts, verdicts and a lock."""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+from datetime import date, datetime, timedelta, timezone
+
+from drift.config import Config, ScheduleConfig
+from drift.lock import StoreLock
+from drift.status import collect_status, format_status
+from drift.store import Store, alerts, outbox
+
+
+def _utc(*a: int) -> datetime:
+    return datetime(*a, tzinfo=timezone.utc)  # type: ignore[misc]
+
+
+def _fill(store: Store) -> None:
+    rid = store.start_run("check", job_id="drift:check", scheduled_for=_utc(2026, 3, 2, 1, 30))
+    store.finish_run(rid, "failed", error="ValueError: bad panel")
+    store.record_run("ingest", "missed", job_id="drift:ingest", scheduled_for=_utc(2026, 3, 2, 0, 0))
+    t0 = _utc(2026, 3, 1)
+    with store.begin() as conn:
+        a1 = conn.execute(alerts.insert().values(
+            model="sales_north", condition="refit", action="refit", severity=3, status="open",
+            first_seen=t0, last_seen=t0, payload="{}")).inserted_primary_key[0]
+        conn.execute(alerts.insert().values(
+            model="sales_south", condition="relag", action="relag", severity=2, status="cleared",
+            first_seen=t0, last_seen=t0, payload="{}"))
+        rows = [("pending", t0, "SMTP 451 try later"), ("pending", t0 + timedelta(hours=1), None),
+                ("uncertain", t0, "timeout after DATA"), ("dead", t0, "550 no such user"), ("sent", t0, None)]
+        for i, (st, created, err) in enumerate(rows):
+            conn.execute(outbox.insert().values(
+                alert=a1, channel="ops-mail", idempotency_key=f"k{i}", subject=f"alert {i}", payload="{}",
+                status=st, attempts=1, next_attempt_at=created, last_error=err, created_at=created))
+    store.save_verdicts(rid, date(2026, 3, 2), [{
+        "name": "sales_north", "verdict": "data-late",
+        "drivers": [{"series": "temp", "late": True, "last_period": "2026-02-16"},
+                    {"series": "price", "late": False}]}])
+
+
+def test_collect_status_fields(store: Store) -> None:
+    _fill(store)
+    cfg = Config(store=store.url, schedule=ScheduleConfig(timezone="Europe/Lisbon", check="30 1 * * *",
+                                                          ingest="every 1h", retry=None))
+    now = _utc(2026, 3, 2, 12, 0)
+    with StoreLock(store):
+        st = collect_status(cfg, store, now=now)
+    jobs = st["jobs"]
+    assert list(jobs) == ["ingest", "check", "digest", "retry"]
+    assert jobs["check"]["outcome"] == "failed" and jobs["check"]["error"] == "ValueError: bad panel"
+    assert jobs["check"]["duration"] is not None and jobs["check"]["duration"] >= 0
+    assert jobs["check"]["next_run"] == _utc(2026, 3, 3, 1, 30)
+    assert str(jobs["check"]["next_run"].tzinfo) == "Europe/Lisbon"
+    assert jobs["ingest"]["outcome"] == "missed" and jobs["ingest"]["next_run"] == _utc(2026, 3, 2, 12, 0)
+    assert jobs["digest"] == {"schedule": None, "last_run": None, "finished_at": None, "outcome": None,
+                              "duration": None, "error": None, "next_run": None}
+    ob = st["outbox"]
+    assert ob["pending"] == 2 and ob["oldest_pending"] == _utc(2026, 3, 1)
+    assert ob["last_error"] == "SMTP 451 try later"
+    assert [r["subject"] for r in ob["uncertain"]] == ["alert 2"] and len(ob["dead"]) == 1
+    assert st["stale_feeds"] == [{"series": "temp", "late": True, "last_period": "2026-02-16",
+                                  "model": "sales_north", "driver": "temp"}]
+    assert list(st["open_alerts"]) == ["sales_north"]
+    assert st["open_alerts"]["sales_north"][0]["action"] == "refit"
+    assert st["lock"]["pid"] == os.getpid() and st["lock"]["host"] == socket.gethostname()
+    assert st["lock"]["stale"] is None
+    text = format_status(st)
+    for needle in ("pid", "check", "failed", "2 pending", "uncertain: #", "dead: #", "sales_north: temp",
+                   "sales_north: refit"):
+        assert needle in text, needle
+    json.dumps(st, default=str)  # everything renders
+
+
+def test_status_of_an_empty_store(store: Store) -> None:
+    st = collect_status(Config(store=store.url), store, now=_utc(2026, 3, 2))
+    assert st["lock"] is None and st["open_alerts"] == {} and st["stale_feeds"] == []
+    assert st["outbox"]["pending"] == 0 and st["jobs"]["retry"]["schedule"] == "every 10m"
+    assert "not running" in format_status(st)
