@@ -235,7 +235,7 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
             models[str(p["name"])] = p
     channels = _outbox.configured_channels(cfg)
     min_rank = SEVERITY_RANK[cfg.alerts.min_action]
-    notify_cleared = bool(getattr(cfg.alerts, "notify_cleared", False))
+    notify_cleared = cfg.alerts.notify_cleared
 
     events: list[AlertEvent] = []
     for name in sorted(models):

@@ -222,8 +222,8 @@ def backoff(cfg: Config, attempts: int) -> timedelta:
 
 
 def sending_lease(cfg: Config) -> timedelta:
-    lease = getattr(cfg.alerts, "sending_timeout", None)
-    return lease if isinstance(lease, timedelta) and lease > timedelta(0) else DEFAULT_SENDING_LEASE
+    lease = cfg.alerts.sending_timeout
+    return lease if lease > timedelta(0) else DEFAULT_SENDING_LEASE
 
 
 @dataclass(frozen=True)

@@ -130,9 +130,7 @@ def test_keep_clears_everything(cfg: Any, store: Any) -> None:
 
 
 def test_cleared_notice_when_configured(tmp_path: Path, store: Any, monkeypatch: pytest.MonkeyPatch) -> None:
-    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out"}])
-    # ``alerts.notify_cleared`` is read with a default of False; emulate a config that sets it
-    monkeypatch.setattr(type(cfg.alerts), "notify_cleared", True, raising=False)
+    cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out"}], notify_cleared=True)
     process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
     ev = process_alerts(cfg, store, outcome(payload("k000", []), run_id=2), now=T0 + dt.timedelta(days=1))
     assert [(e.event, e.notified) for e in ev] == [("cleared", True)]
