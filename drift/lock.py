@@ -33,6 +33,7 @@ from types import TracebackType
 from typing import Any
 
 import sqlalchemy as sa
+from typing_extensions import Self
 
 from drift.exceptions import LockError
 from drift.store import Store, locks, utcnow
@@ -209,7 +210,7 @@ class StoreLock:
                 return
 
     # ------------------------------------------------------------------ context manager
-    def __enter__(self) -> StoreLock:
+    def __enter__(self) -> Self:
         self.acquire()
         return self
 

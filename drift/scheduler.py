@@ -643,7 +643,7 @@ def run_daemon(cfg: Config, *, jobs: Mapping[str, JobFunc] | None = None,
         except LockError as exc:
             log.error("%s", exc)
             return EXIT_LOCKED
-        except Exception:  # noqa: BLE001 - logged with traceback, mapped to an exit code
+        except Exception:
             log.exception("the daemon failed")
             return EXIT_ERROR
         finally:

@@ -190,7 +190,7 @@ def test_runs_left_running_by_a_dead_daemon_are_closed_at_start(store: Store, cl
     rid = store.start_run("check", job_id="drift:check", scheduled_for=_utc(2026, 3, 1, 1, 30))
     d = _daemon(store, clock, {"check": Calls()})
     d.stop()
-    row = [r for r in store.recent_runs(kind="check") if r["id"] == rid][0]
+    row = next(r for r in store.recent_runs(kind="check") if r["id"] == rid)
     assert row["status"] == "abandoned"
 
 

@@ -12,10 +12,8 @@ import subprocess
 import sys
 import time
 from collections.abc import Callable
-from datetime import timezone, datetime
+from datetime import datetime, timezone
 from pathlib import Path
-
-import pytest
 
 from drift.lock import read_lock
 from drift.scheduler import EXIT_LOCKED, EXIT_OK
