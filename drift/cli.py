@@ -66,6 +66,10 @@ def _run(fn: Any) -> Any:
         _fail(EXIT_RUNTIME, str(exc))
     except KeyboardInterrupt:
         _fail(130, "interrupted")
+    except Exception as exc:  # the CLI maps every failure to an exit code and one line
+        log.debug("unexpected error", exc_info=True)
+        _fail(EXIT_RUNTIME, f"unexpected error: {type(exc).__name__}: {exc} (run with --log-level debug "
+                            "for the traceback)")
 
 
 config_opt = click.option("--config", "config", required=True, type=click.Path(dir_okay=False),

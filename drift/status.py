@@ -6,7 +6,6 @@ it for a terminal. Both only read the store.
 
 from __future__ import annotations
 
-import json
 from datetime import datetime
 from typing import Any
 
@@ -172,8 +171,8 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append("")
     lines.append(f"late feeds: {len(feeds)}" if feeds else "late feeds: none")
     for f in feeds:
-        extra = {k: v for k, v in f.items() if k not in ("model", "driver", "late", "series", "name")}
-        lines.append(f"  {f['model']}: {f['driver']}" + (f" {json.dumps(extra, default=str)}" if extra else ""))
+        lines.append(f"  {f['model']}: {f['driver']}: last period {f.get('last_period') or '?'}, "
+                     f"next value was due {str(f.get('next_due') or '?').replace('T', ' ')[:16]} UTC")
     al = status["open_alerts"]
     lines.append("")
     lines.append(f"open alerts: {sum(len(v) for v in al.values())}" if al else "open alerts: none")
