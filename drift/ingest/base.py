@@ -26,7 +26,7 @@ from __future__ import annotations
 import logging
 import sys
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -272,9 +272,10 @@ def _ingest_batch(store: Store, source: SourceConfig, raw: RawTable, now: dateti
         batch_id = int(res.inserted_primary_key[0])
         task = bar.task(f"{source.name}: {Path(raw.label).name}", len(new) + len(qrows),
                         show=len(new) + len(qrows) >= PROGRESS_CELLS)
-        for chunk in _observation_rows(new, source.name, batch_id, now):
-            conn.execute(observations.insert(), chunk)
-            bar.advance(task, len(chunk))
+        if len(new):
+            _bulk_insert(conn, observations, _OBS_COLUMNS,
+                         _observation_columns(new, source.name, batch_id, now),
+                         lambda k: bar.advance(task, k))
         if len(qrows):
             recs = [{"batch": batch_id, "source": source.name, "file": raw.label, "row": int(r.row),
                      "column": r.column, "raw_value": r.raw_value, "reason": r.reason, "created_at": now}
@@ -334,18 +335,64 @@ def _issued_key(col: pd.Series) -> np.ndarray:
                       dtype=np.int64)
 
 
-def _observation_rows(new: pd.DataFrame, source: str, batch_id: int, now: datetime
-                      ) -> Iterator[list[dict[str, Any]]]:
-    for i in range(0, len(new), INSERT_CHUNK):
-        part = new.iloc[i:i + INSERT_CHUNK]
-        periods = pd.DatetimeIndex(part["period"]).date
-        issued = pd.DatetimeIndex(part["issued_at"])
-        issued_py = [None if pd.isna(x) else x for x in issued.to_pydatetime()]
-        avail = pd.DatetimeIndex(part["available_at"]).to_pydatetime()
-        yield [{"series": s, "period": p, "issued_at": iss, "value": float(v), "available_at": a,
-                "ingested_at": now, "source": source, "batch": batch_id}
-               for s, p, iss, v, a in zip(part["series"].to_numpy(), periods, issued_py,
-                                          part["value"].to_numpy(), avail, strict=True)]
+_OBS_COLUMNS = ("series", "period", "issued_at", "value", "available_at", "ingested_at", "source", "batch")
+
+
+def _bulk_insert(conn: Any, table: sa.Table, columns: Sequence[str], data: dict[str, np.ndarray],
+                 on_chunk: Callable[[int], None]) -> None:
+    """executemany in chunks, with each column's bind processing applied once per distinct value.
+
+    Binding through the table's own column types keeps the stored format exactly what SQLAlchemy writes
+    (naive UTC timestamps in the dialect's format), while processing only the distinct values (a few
+    hundred periods and publication times) instead of every cell, which is most of the cost of a large
+    batch.
+    """
+    compiled = table.insert().inline().compile(dialect=conn.dialect, column_keys=list(columns))
+    processed: dict[str, np.ndarray] = {}
+    for name in columns:
+        values = data[name]
+        proc = table.c[name].type._cached_bind_processor(conn.dialect)  # noqa: SLF001 - SQLAlchemy's cache
+        if proc is None:
+            processed[name] = values
+            continue
+        codes, uniq = pd.factorize(pd.Series(values, dtype=object), use_na_sentinel=True)
+        done = np.empty(len(uniq) + 1, dtype=object)
+        done[:-1] = [proc(v) for v in uniq]
+        done[-1] = None  # code -1: a null
+        processed[name] = done[codes]
+    if compiled.positional:
+        order = [compiled.binds[k].key for k in compiled.positiontup]  # type: ignore[union-attr]
+        cols = [processed[k] for k in order]
+        n = len(cols[0]) if cols else 0
+        for i in range(0, n, INSERT_CHUNK):
+            rows = list(zip(*(c[i:i + INSERT_CHUNK].tolist() for c in cols), strict=True))
+            conn.exec_driver_sql(compiled.string, rows)
+            on_chunk(len(rows))
+    else:
+        keys = list(columns)
+        n = len(processed[keys[0]]) if keys else 0
+        for i in range(0, n, INSERT_CHUNK):
+            parts = [processed[k][i:i + INSERT_CHUNK].tolist() for k in keys]
+            rows_d = [dict(zip(keys, r, strict=True)) for r in zip(*parts, strict=True)]
+            conn.exec_driver_sql(compiled.string, rows_d)
+            on_chunk(len(rows_d))
+
+
+def _observation_columns(new: pd.DataFrame, source: str, batch_id: int, now: datetime) -> dict[str, np.ndarray]:
+    n = len(new)
+    issued = pd.DatetimeIndex(new["issued_at"])
+    issued_py = issued.to_pydatetime().astype(object)
+    issued_py[np.asarray(issued.isna())] = None
+    return {
+        "series": new["series"].to_numpy(dtype=object),
+        "period": np.asarray(pd.DatetimeIndex(new["period"]).date, dtype=object),
+        "issued_at": issued_py,
+        "value": new["value"].to_numpy(dtype=np.float64).astype(object),
+        "available_at": pd.DatetimeIndex(new["available_at"]).to_pydatetime().astype(object),
+        "ingested_at": np.full(n, now, dtype=object),
+        "source": np.full(n, source, dtype=object),
+        "batch": np.full(n, batch_id, dtype=object),
+    }
 
 
 def _new_quarantine(conn: Any, source: SourceConfig, label: str, records: pd.DataFrame) -> pd.DataFrame:
