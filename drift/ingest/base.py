@@ -351,7 +351,7 @@ def _bulk_insert(conn: Any, table: sa.Table, columns: Sequence[str], data: dict[
     processed: dict[str, np.ndarray] = {}
     for name in columns:
         values = data[name]
-        proc = table.c[name].type._cached_bind_processor(conn.dialect)  # noqa: SLF001 - SQLAlchemy's cache
+        proc = table.c[name].type._cached_bind_processor(conn.dialect)
         if proc is None:
             processed[name] = values
             continue
@@ -447,4 +447,4 @@ class _Progress:
             self._bar.advance(task, n)
 
 
-__all__: Sequence[str] = ["IngestSummary", "READERS", "ingest_all", "ingest_source"]
+__all__: Sequence[str] = ["READERS", "IngestSummary", "ingest_all", "ingest_source"]

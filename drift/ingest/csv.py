@@ -55,8 +55,7 @@ def read_csv(path: Path, source: SourceConfig) -> RawTable:
     except OSError as exc:
         raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
     digest = hashlib.sha256(data).hexdigest()
-    if data.startswith(_BOM):
-        data = data[len(_BOM):]
+    data = data.removeprefix(_BOM)
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -104,11 +103,11 @@ def read_csv(path: Path, source: SourceConfig) -> RawTable:
         else:
             raise InputError(f"cannot be parsed as CSV: {msg}", file=label) from None
     if invalid:
-        number, expected, actual = invalid[0]
-        row = None if number is None else number  # pyarrow counts records from 1 with the header as 1
+        # pyarrow numbers records from 1 counting the skipped header, as our rows do
+        bad_row, expected, actual = invalid[0]
         more = f" ({len(invalid) - 1} more such rows)" if len(invalid) > 1 else ""
         raise InputError(f"has {actual} fields where the header has {expected} (a truncated or ragged "
-                         f"file){more}; nothing of this file was stored", file=label, row=row)
+                         f"file){more}; nothing of this file was stored", file=label, row=bad_row)
     frame = table.to_pandas(types_mapper=lambda t: pd.StringDtype() if t == pa.string() else None)
     frame = frame.astype(object)
     log.debug("read %s: %d rows, %d columns", label, len(frame), len(names))

@@ -57,8 +57,8 @@ def read_parquet(path: Path, source: SourceConfig) -> RawTable:
     names = [str(n) for n in table.column_names]
     dup = {n for n in names if names.count(n) > 1}
     if dup:
-        raise InputError(f"column '{sorted(dup)[0]}' appears twice; every column needs its own name",
-                         file=label, column=sorted(dup)[0])
+        raise InputError(f"column '{min(dup)}' appears twice; every column needs its own name",
+                         file=label, column=min(dup))
     empty: dict[str, np.ndarray] = {}
     for name, col in zip(names, table.columns, strict=True):
         mask = col.is_null().to_numpy(zero_copy_only=False)

@@ -83,7 +83,7 @@ def read_sql(source: SourceConfig, since: datetime) -> RawTable:
     assert source.query is not None  # validated config
     stmt = sa.text(source.query)
     params: dict[str, object] = {}
-    if "since" in stmt._bindparams:  # noqa: SLF001 - the documented way to ask text() for its parameters
+    if "since" in stmt._bindparams:
         stmt = stmt.bindparams(sa.bindparam("since", type_=sa.DateTime()))
         params["since"] = since.astimezone(timezone.utc).replace(tzinfo=None)
     try:
@@ -103,8 +103,8 @@ def read_sql(source: SourceConfig, since: datetime) -> RawTable:
         engine.dispose()
     dup = {n for n in names if names.count(n) > 1}
     if dup:
-        raise InputError(f"the query returns column '{sorted(dup)[0]}' twice", file=label,
-                         column=sorted(dup)[0])
+        raise InputError(f"the query returns column '{min(dup)}' twice", file=label,
+                         column=min(dup))
     columns: dict[str, np.ndarray] = {}
     empty: dict[str, np.ndarray] = {}
     for j, name in enumerate(names):

@@ -396,7 +396,7 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
     issued_key[cell_issued.isna()] = _NO_ISSUE
     keys = pd.DataFrame({"s": series, "p": cell_start.astype("datetime64[ns]").astype(np.int64),
                          "i": issued_key})
-    dup = keys.duplicated(keep=False).to_numpy() & (reason == None)  # noqa: E711 - elementwise
+    dup = keys.duplicated(keep=False).to_numpy() & (reason == None)
     if dup.any():
         idx = np.nonzero(dup)[0]
         d = keys.iloc[idx].assign(row=rows[cell_row[idx]], pos=idx)
@@ -413,10 +413,10 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
 
     values, num_reason = _parse_values(cell_values, source.decimal)
     blank = num_reason == "blank"
-    free = reason == None  # noqa: E711 - elementwise
-    take = free & (num_reason != None) & ~blank  # noqa: E711
+    free = reason == None
+    take = free & (num_reason != None) & ~blank
     reason[take] = num_reason[take]
-    bad = reason != None  # noqa: E711
+    bad = reason != None
     if bad.any():
         raw_text = np.array([_text(v) if r is None else r for v, r in zip(cell_values[bad], rraw[bad],
                                                                            strict=True)], dtype=object)
@@ -531,7 +531,7 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
             else:
                 reason[i] = f"value '{text}' is not a number"
     with np.errstate(invalid="ignore"):
-        nonfinite = ~np.isfinite(out) & (reason == None)  # noqa: E711 - elementwise
+        nonfinite = ~np.isfinite(out) & (reason == None)
     for i in np.nonzero(nonfinite)[0]:
         reason[i] = f"value '{_text(values[i]).strip()}' is not a finite number"
     return out, reason
