@@ -588,9 +588,12 @@ def setup_logging(log_file: str | Path | None = None, level: int = logging.INFO)
                                                              backupCount=LOG_BACKUPS, encoding="utf-8"))
     for h in handlers:
         h.setFormatter(fmt)
+    # --log-level on the command line can only make the daemon more talkative than INFO
+    level = min(level, logging.getLogger().getEffectiveLevel())
     for name, lvl in (("drift", level), ("apscheduler", logging.WARNING)):
         lg = logging.getLogger(name)
         lg.setLevel(lvl)
+        lg.propagate = False  # these handlers replace the root's: one line per record
         for h in handlers:
             lg.addHandler(h)
     return handlers
@@ -600,6 +603,7 @@ def _remove_logging(handlers: list[logging.Handler]) -> None:
     for name in ("drift", "apscheduler"):
         for h in handlers:
             logging.getLogger(name).removeHandler(h)
+        logging.getLogger(name).propagate = True
     for h in handlers:
         h.close()
 
