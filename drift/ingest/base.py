@@ -176,10 +176,10 @@ def _ingest(cfg: Config, store: Store, source: SourceConfig, now: datetime, rule
         log.info("ingesting source %s (query, since %s)", source.name, since.isoformat())
         try:
             raw = read_sql(source, since)
+            return total + _ingest_batch(store, source, raw, now, rules, bar)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)
             return total + IngestSummary(source.name, files=1, failed_files=[(sql_label(source), str(exc))])
-        return total + _ingest_batch(store, source, raw, now, rules, bar)
     files = cfg.source_files(source)
     if not files:
         log.warning("source %s: no file matches %s", source.name, source.path)

@@ -456,3 +456,13 @@ def test_summary_api_and_errors(sqlite_store, tmp_path):
     with pytest.raises(ValueError, match="now must be tz-aware"):
         ingest_all(cfg, sqlite_store, now=pd.Timestamp("2024-01-01").to_pydatetime())
     assert np.isfinite(1.0)
+
+
+def test_sql_missing_period_column_reported(store, tmp_path):
+    db = tmp_path / "src.db"
+    _sqlite_source_db(db)
+    src = {"name": "q", "kind": "sql", "url": f"sqlite:///{db}", "period_column": "day",
+           "query": "select week, series, value from obs"}
+    (s,) = ingest_all(make_config(tmp_path, [src]), store, now=NOW)
+    assert s.failed_files == [("sql:q", s.failed_files[0][1])] and "no column 'day'" in s.failed_files[0][1]
+    assert counts(store) == (0, 0, 0)
