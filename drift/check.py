@@ -355,23 +355,31 @@ def _test_words(name: str) -> str:
 
 def _date_break(c: _Ctx, alarm_idx: int) -> int:
     """Row of the first observation of the new regime: change-point search on the monitored recursive
-    residuals up to the alarm (mean shift, l2 cost, BIC penalty); the alarm row if none is found."""
+    residuals (mean shift, l2 cost, BIC penalty); the latest change point at or before the alarm row, or
+    the row before the alarm if none is found.
+
+    The search runs over every monitored residual known at the check, not only those up to the alarm: a
+    monitor often fires one or two periods after a large break, and a search that stopped at the alarm
+    could not place a change point there (each segment needs ``min_size`` rows), so it dated the break
+    early. Change points after the alarm (the recursive errors decay as the fit adapts) are ignored.
+    """
     d = c.design
     fe = c.charts["_fe"]
     lo = d.n_ref
-    hi = min(d.n, alarm_idx + 1)
-    w = fe[lo:hi]
+    w = fe[lo:]
     ok = np.isfinite(w)
-    if ok.sum() >= 8:
+    n_upto = int(ok[: max(0, alarm_idx + 1 - lo)].sum())
+    if n_upto >= 4 and ok.sum() >= 8:
         try:
             ww = w[ok]
             sig2 = float(np.var(np.diff(ww)) / 2) or None
-            cp = engine.change_points(ww, cost="l2", min_size=max(3, int(0.1 * ok.sum())), sigma2=sig2)
+            cp = engine.change_points(ww, cost="l2", min_size=max(3, int(0.1 * n_upto)), sigma2=sig2)
             bks = np.atleast_1d(cp.break_indices[0] if isinstance(cp.break_indices, list) else cp.break_indices)
-            bks = [int(b) for b in np.ravel(bks) if int(b) > 0]
-            if bks:
-                rows = np.flatnonzero(ok) + lo
-                return int(rows[bks[-1]])
+            rows = np.flatnonzero(ok) + lo
+            cands = [int(rows[int(b)]) for b in np.ravel(bks) if 0 < int(b) < len(rows)]
+            before = [r for r in cands if r <= alarm_idx]
+            if before:
+                return max(before)
         except (DriftError, ValueError) as exc:
             log.debug("change-point dating failed for %s: %s", d.model, exc)
     return int(max(lo, alarm_idx - 1))
@@ -433,18 +441,24 @@ def _drivers_and_worth(c: _Ctx) -> None:
     """Per driver: reference vs recent coefficient, Clark–West test of the model with vs without it."""
     d, chk = c.design, c.cfg.check
     ref_coef = c.charts.pop("_ref_coef")
-    fe_full = c.charts["_fe"]
     n = d.n
     recent = np.arange(n) >= max(d.n_ref, n - chk.recent_window)
-    # nested models without each driver, batched (all have k-1 columns)
+    # Worth keeping: one-step forecasts of the model with and without each driver, both re-estimated on a
+    # rolling window (the recent-coefficient window). An expanding (recursive) fit would carry the reference
+    # period's effect into the recent forecasts: after a driver's effect vanishes the full model keeps
+    # forecasting with a stale coefficient and the Clark-West adjustment term (y1 - y2)^2 then reads that
+    # stale, harmful difference as a gain. Clark & West (2007) cover the rolling scheme.
     names = list(d.driver_columns)
-    nested_fe = {}
+    window = chk.rolling_window or chk.recent_window
+    nested_fe: dict[str, np.ndarray] = {}
+    fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window)[0]
     if names:
         Xn = np.stack([np.delete(c.X, d.driver_columns[s], axis=1) for s in names])
         Yn = np.broadcast_to(c.y, (len(names), n))
-        rn = engine.recursive_fit(Yn, Xn)
+        fe_n = _rolling_forecast_errors(Yn, Xn, window)
         for i, s in enumerate(names):
-            nested_fe[s] = np.atleast_2d(rn.forecast_error)[i]
+            nested_fe[s] = fe_n[i]
+    c.charts["_fe_roll"], c.charts["_fe_roll_without"] = fe_full, nested_fe  # reused by _lag_drift
     last = {s: f.get("last_period") for s, f in c.charts.get("feeds", {}).items()}
     for dr in c.model.drivers:
         s = dr.series
@@ -496,6 +510,23 @@ def _drivers_and_worth(c: _Ctx) -> None:
         c.drivers.append(info)
 
 
+def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int) -> np.ndarray:
+    """(M, n) one-step errors ``y_t - x_t' b_{t-1}``, ``b_{t-1}`` the OLS fit on rows ``t - window .. t - 1``;
+    NaN where that window cannot be fitted (too short, a missing row, rank deficient)."""
+    M, n, k = X.shape
+    out = np.full((M, n), np.nan)
+    if window < k + 2 or window >= n:
+        return out
+    try:
+        roll = engine.rolling_coefficients(Y, X, window)
+    except InsufficientDataError:
+        return out
+    coef = np.asarray(roll.coef).reshape(M, n, k)
+    with np.errstate(invalid="ignore"):
+        out[:, 1:] = Y[:, 1:] - np.einsum("mtk,mtk->mt", X[:, 1:], coef[:, :-1])
+    return out
+
+
 # ------------------------------------------------------------------------------------------------ lag drift
 def _lag_drift(c: _Ctx) -> None:
     """Cross-correlation profile, reference vs recent window, of target and driver after removing the
@@ -522,7 +553,7 @@ def _lag_drift(c: _Ctx) -> None:
         return
     profiles: dict[str, Any] = {}
     obs = c.obs
-    from drift.panel import latest_values, period_index
+    from drift.panel import latest_values
 
     for dr in m.drivers:
         s = dr.series
@@ -554,22 +585,37 @@ def _lag_drift(c: _Ctx) -> None:
                                lags={s: new})
         except DriftError:
             continue
-        rf_alt = engine.recursive_fit(alt.y, alt.X)
-        e_new = np.asarray(rf_alt.forecast_error)[d.n - recent_n:]
-        e_cur = c.charts["_fe"][d.n - recent_n:]
-        both = np.isfinite(e_new) & np.isfinite(e_cur)
+        # Both models re-estimated on the same rolling window as the worth test: with expanding fits the
+        # current-lag model carries the reference period's effect, so *any* other lag (where the reference
+        # fit found little) would look better once the effect at the current lag has gone.
+        y_alt, X_alt, _ = _prewhiten(m, alt)
+        window = chk.rolling_window or chk.recent_window
+        e_new = _rolling_forecast_errors(y_alt[None], X_alt[None], window)[0][d.n - recent_n:]
+        e_cur = c.charts["_fe_roll"][d.n - recent_n:]
+        e_without = c.charts["_fe_roll_without"][s][d.n - recent_n:]
+        both = np.isfinite(e_new) & np.isfinite(e_cur) & np.isfinite(e_without)
         if both.sum() < 10:
             continue
         mae_new = float(np.mean(np.abs(e_new[both])))
         mae_cur = float(np.mean(np.abs(e_cur[both])))
-        dm = engine.diebold_mariano(e_cur[both], e_new[both])
-        if mae_new < mae_cur and _num(dm.pvalue) is not None and dm.pvalue < chk.level * 2:
+        # better than the current lag (DM, one-sided at level) ...
+        dm = engine.diebold_mariano(e_cur[both], e_new[both], alternative="greater")
+        # ... and the driver at the new lag earns its place (Clark-West against the model without it)
+        yb = c.y[d.n - recent_n:][both]
+        cw = engine.clark_west(yb, (yb - e_without[both]), (yb - e_new[both]))
+        if (mae_new < mae_cur and _num(dm.pvalue) is not None and dm.pvalue < chk.level
+                and _num(cw.pvalue) is not None and cw.pvalue < chk.level):
+            # a driver that forecasts better at another lag still earns its place: relag it, do not drop it
+            # (at the old lag its effect has gone, which is what a drop-driver test sees)
+            dropped = [a for a in c.actions if a.action == "drop-driver" and a.extra.get("driver") == s]
+            c.actions = [a for a in c.actions if a not in dropped]
             c.actions.append(Action("relag", extra={"driver": s, "lag": new}, reason=(
                 f"Driver '{s}' now leads the target by {new} period{'s' if new != 1 else ''} instead of {cur}: "
                 f"its cross-correlation peaks at lag {new} over the last {recent_n} periods "
                 f"(r = {float(np.asarray(lp_rec.ccf)[new]):.2f}, band ±{float(lp_rec.band):.2f}), and "
                 f"at lag {new} the one-step MAE would be {fmt_num(mae_new)} instead of {fmt_num(mae_cur)} "
-                f"{m.unit}.")))
+                f"{m.unit}." + (f" At lag {cur} it no longer helps, but at lag {new} it does: keep it." if dropped
+                                else ""))))
     if profiles:
         c.charts["lag_profile"] = profiles
 
