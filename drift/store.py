@@ -242,7 +242,8 @@ class Store:
                               o.c.ingested_at).where(o.c.series.in_(chunk))
                 if as_of is not None:
                     q = q.where(o.c.available_at <= as_of)
-                frames.append(pd.DataFrame(conn.execute(q).fetchall(),
+                # plain tuples: pandas inspects SQLAlchemy Row objects attribute by attribute (slow)
+                frames.append(pd.DataFrame([tuple(r) for r in conn.execute(q).fetchall()],
                                            columns=["series", "period", "issued_at", "value", "available_at",
                                                     "ingested_at"]))
         df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
