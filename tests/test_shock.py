@@ -16,7 +16,16 @@ from scipy import stats
 from drift.check import as_of_moment
 from drift.ingest import ingest_all
 from drift.shock import format_shock, run_shock, shock_model
-from tests.check_scenarios import N_REF, Scenario, config, end_moment, known_by, observations, simulate, write_csv
+from tests.check_scenarios import (
+    N_REF,
+    Scenario,
+    config,
+    end_moment,
+    known_by,
+    observations,
+    simulate,
+    write_csv,
+)
 
 
 def _shock(cfg, sc: Scenario, at_row: int) -> dict:
