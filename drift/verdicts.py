@@ -11,8 +11,21 @@ the Chu–Stinchcombe–White recursive CUSUM (quick on early changes) and a det
 told to refit within the horizon is at most ``level``. Retrospective tests (CUSUM and CUSUM of squares on
 the monitored residuals, the tracking signal) and monitoring at ``warn_level`` only give ``watch``. Change
 points and the sup-F search only *date* a break that the monitors found; they never raise one alone.
-``drop-driver`` and ``relag`` have their own out-of-sample tests (Clark–West); ``data-late`` is a fact
-about the feed, not a test.
+``drop-driver`` and ``relag`` have their own out-of-sample tests; ``data-late`` is a fact about the feed,
+not a test.
+
+Out-of-sample comparisons (``drop-driver``, ``relag``) use one-step forecasts of models re-estimated on a
+rolling window (``rolling_window``, default ``recent_window``) and scored over the recent window. An
+expanding fit would carry the reference period's effects forward: after a driver's effect vanished, the
+model with it would keep forecasting with the stale coefficient (the Clark–West adjustment then counts that
+stale difference as a gain), and every other lag would look better than the current one.
+
+- ``drop-driver``: Clark–West finds no gain at ``level`` and the recent coefficient interval covers zero,
+  or the feed has been missing for more than ``feed_limit`` periods.
+- ``relag``: the recent lag-profile peak is at another lag and clears a Bonferroni band over the scanned
+  lags, the model at the new lag beats the current one (Diebold–Mariano/HLN, one-sided at ``level``) *and*
+  beats the model without the driver (Clark–West at ``level``). A relag replaces a ``drop-driver`` of the
+  same driver: a driver that forecasts better at another lag still earns its place.
 """
 
 from __future__ import annotations

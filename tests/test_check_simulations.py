@@ -192,8 +192,10 @@ def test_ols_on_ar1_errors_over_alarms_documented_contrast(tmp_path):
 
 
 def test_ar1_payload_names_the_error_model(tmp_path):
-    # invented scenario (simulation); oracle: the closed-form conditional-LS AR(1) coefficient
-    # sum e_t e_{t-1} / sum e_{t-1}^2 of the reference-period OLS residuals, computed here by hand
+    # invented scenario (simulation); oracle: the engine's error model fitted here by hand to the
+    # reference-period OLS residuals of the design (the wiring, whatever estimator the engine uses)
+    from drift import engine
+
     cfg = config(tmp_path, errors="ar(1)")
     sc = Scenario(seed=601, error_phi=0.7)
     periods, values = simulate(sc)
@@ -205,8 +207,7 @@ def test_ar1_payload_names_the_error_model(tmp_path):
     ok = np.isfinite(y) & np.isfinite(X).all(axis=1)
     b, *_ = np.linalg.lstsq(X[ok], y[ok], rcond=None)
     e = np.where(ok, y - np.where(ok[:, None], X, 0.0) @ b, np.nan)
-    pair = np.isfinite(e[1:]) & np.isfinite(e[:-1])
-    phi = float(np.sum(e[1:][pair] * e[:-1][pair]) / np.sum(e[:-1][pair] ** 2))
+    phi = float(np.atleast_1d(engine.fit_error_model(e, "ar(1)").params()["ar"])[0])
     assert p["error_model"] == f"ar(1) with phi1 = {phi:.2f}"
     # residual-based estimates are biased down (k = 10 regressors incl. trend and Fourier terms absorb
     # low-frequency error variation; Kendall's -(1 + 3 phi)/n on top): loose band, common practice
