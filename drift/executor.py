@@ -28,7 +28,14 @@ Executors
     A :class:`distributed.Client` connected to ``check.dask_scheduler``, or, when that is unset, to a
     :class:`distributed.LocalCluster` (``check.workers`` or 2 worker processes, one thread each, no
     dashboard) started and closed for the run. The configuration is broadcast once to every worker and
-    each chunk's observations are scattered before the chunk tasks are mapped.
+    each chunk's observations are scattered before the chunk tasks are mapped. The workers of an existing
+    cluster need the same drift version installed; their thread caps are the cluster's own (Dask's nanny
+    sets ``OMP_NUM_THREADS=1`` and friends by default, ``distributed.nanny.pre-spawn-environ``).
+
+Notes
+-----
+Log records emitted inside worker processes (e.g. ``analyse``'s "model skipped" warnings) stay in the
+workers; what matters reaches the caller as values, in the returned ``errors``.
 """
 
 from __future__ import annotations
@@ -205,21 +212,23 @@ def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as
         for the dask executor when ``dask.distributed`` is not installed (``pip install drift[dask]``).
     """
     chk = cfg.check
-    executor = getattr(chk, "executor", "local")
+    executor = chk.executor
     if executor not in EXECUTORS:
         raise ValueError(f"check.executor must be one of {EXECUTORS}, got {executor!r}")
-    chunks = chunk_models(models, getattr(chk, "chunk_size", 500))
+    workers = chk.workers
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise ValueError(f"check.workers must be a positive integer or None, got {workers!r}")
+    chunks = chunk_models(models, chk.chunk_size)
     if not chunks:
         return [], {}
     parts = chunk_observations(obs, chunks)
-    workers = getattr(chk, "workers", None)
     log.info("checking %d models in %d chunk(s) with the %s executor", len(models), len(chunks), executor)
     if executor == "local":
         results = _run_local(func, cfg, chunks, parts, as_of)
     elif executor == "process":
         results = _run_process(func, cfg, chunks, parts, as_of, workers)
     else:
-        results = _run_dask(func, cfg, chunks, parts, as_of, workers, getattr(chk, "dask_scheduler", None))
+        results = _run_dask(func, cfg, chunks, parts, as_of, workers, chk.dask_scheduler)
     return _assemble(models, chunks, results)
 
 
@@ -251,13 +260,17 @@ def _run_process(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelCon
         except BaseException:
             pool.shutdown(wait=False, cancel_futures=True)
             raise
-    with pool:
+    try:
         for i, fut in enumerate(futures):
             try:
                 out.append(fut.result())
             except Exception as exc:  # noqa: BLE001 - includes BrokenProcessPool: reported per model
                 _log_failure(i, len(chunks), chunks[i], exc)
                 out.append(exc)
+    except BaseException:  # interrupted: drop the chunks not started yet, then let it propagate
+        pool.shutdown(wait=True, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
     return out
 
 
@@ -271,7 +284,8 @@ def _run_dask(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig
     cluster = None
     if address is None:
         cluster = LocalCluster(n_workers=workers or DEFAULT_DASK_WORKERS, threads_per_worker=1, processes=True,
-                               dashboard_address=None, env=dict(THREAD_ENV))
+                               dashboard_address=None,
+                               env={k: v for k, v in THREAD_ENV.items() if k not in os.environ})
         log.info("started a local Dask cluster with %d worker(s)", workers or DEFAULT_DASK_WORKERS)
     out: list[_Outcome] = []
     try:

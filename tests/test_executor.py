@@ -228,9 +228,11 @@ def boom_case(tmp_path_factory: pytest.TempPathFactory) -> tuple[Config, pd.Data
     return cfg, obs, dump(oracle)
 
 
-@pytest.mark.parametrize("executor", ["local", "process"])
+@pytest.mark.parametrize("executor", ["local", "process", pytest.param("dask", marks=pytest.mark.slow)])
 def test_failing_chunk_only_affects_its_models(boom_case: tuple[Config, pd.DataFrame, str], executor: str,
                                                caplog: pytest.LogCaptureFixture) -> None:
+    if executor == "dask":
+        pytest.importorskip("distributed")
     cfg, obs, oracle = boom_case
     with caplog.at_level(logging.ERROR, logger="drift.executor"):
         payloads, errors = run_chunks(with_executor(cfg, executor, 2), cfg.models, obs, as_of(),
