@@ -102,7 +102,8 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
         verdict = "keep"
         reason = (f"No evidence that the relationship changed at {when.isoformat()} "
                   f"({label} p = {fmt_num(p) if p is not None else 'n/a'}, {n2} periods after the date). Keep the model.")
-    return {"name": model.name, "tests": tests, "drivers": drivers, "accuracy": acc, "verdict": verdict,
+    return {"name": model.name, "unit": model.unit, "tests": tests, "drivers": drivers, "accuracy": acc,
+            "verdict": verdict,
             "reason": reason, "nobs_before": n1, "nobs_after": n2,
             "_chart": {"periods": [p.date().isoformat() for p in d.periods], "actual": d.y,
                        "forecast": np.where(np.arange(d.n) >= d.n_ref, d.y - fe, np.nan)}}
@@ -145,11 +146,9 @@ def _charts(results: list[dict[str, Any]], when: date, out: Path) -> None:
     out.mkdir(parents=True, exist_ok=True)
     for r in results:
         ch = r["_chart"]
-        try:
-            png = forecast_chart(ch["periods"], ch["actual"], ch["forecast"], monitor_start=when.isoformat(),
-                                 title=f"{r['name']}: actual vs as-deployed forecast around the shock")
-        except TypeError:
-            png = forecast_chart(ch["periods"], ch["actual"], ch["forecast"])
+        png = forecast_chart(ch["periods"], ch["actual"], ch["forecast"], event=when, event_label="shock",
+                             unit=r.get("unit", "units"),
+                             title=f"{r['name']}: actual vs as-deployed forecast around the shock")
         path = out / f"shock-{r['name']}.png"
         path.write_bytes(png)
         r["chart"] = str(path)

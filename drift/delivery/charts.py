@@ -369,6 +369,8 @@ def forecast_chart(
     title: str | None = "Actual vs as-deployed forecast",
     unit: str = "units",
     context: int = FORECAST_CONTEXT,
+    event: Any = None,
+    event_label: str = "event",
 ) -> bytes:
     """Actuals against the as-deployed one-step forecast, with the driver-free baseline lighter.
 
@@ -379,6 +381,7 @@ def forecast_chart(
     baseline : the driver-free baseline forecast, aligned, optional.
     title, unit : chart title and the target's unit.
     context : periods of actuals shown before the first forecast.
+    event, event_label : optional date to mark with a bold vertical line (e.g. a known shock).
 
     Returns
     -------
@@ -406,6 +409,10 @@ def forecast_chart(
     if defined.size and defined[0] > lo:
         ax.axvline(t[defined[0]], color=GREY, linewidth=0.9)
         _flag(ax, t[sl], t[defined[0]], "monitoring starts")
+    if event is not None:
+        at = _to_datetime64(event)
+        ax.axvline(at, color=VERMILION, linewidth=1.4)
+        _flag(ax, t[sl], at, f"{event_label} {_fmt_day(at)}", bold=True)
     ax.set_ylabel(unit, **_text_kw())
     ax.set_xlabel("period", **_text_kw())
     _date_axis(ax)
