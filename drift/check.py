@@ -259,17 +259,17 @@ def _screen(group: list[_Ctx]) -> None:
                                  "threshold": 1.0, "level": wl, "warning": True})
         # retrospective CUSUM family
         retro_flag = []
-        if cus is not None and enough[i]:
+        if cus is not None and cusq is not None and enough[i]:
             for name, r in (("cusum", cus), ("cusum-squares", cusq)):
                 fc_idx = int(np.atleast_1d(r.first_crossing[0.05])[i])
-                stat = _num(np.atleast_1d(r.statistic)[i])
-                crit = r.critical_values.get(0.05)
-                crit = _num(np.atleast_1d(crit)[i] if np.ndim(crit) else crit)
+                rstat = _num(np.atleast_1d(r.statistic)[i])
+                cv = r.critical_values.get(0.05)
+                crit = _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
                 date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
-                c.tests.append({"test": name, "statistic": stat, "pvalue": _num(np.atleast_1d(r.pvalue)[i]),
+                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(r.pvalue)[i]),
                                 "threshold": crit, "level": 0.05, "date": date_})
                 if fc_idx >= 0:
-                    c.alarms.append({"test": name, "date": date_, "statistic": stat, "threshold": crit,
+                    c.alarms.append({"test": name, "date": date_, "statistic": rstat, "threshold": crit,
                                      "level": 0.05})
                     retro_flag.append((name, date_))
             c.charts["cusum"] = {
@@ -324,7 +324,7 @@ def _refit_action(c: _Ctx, alarm_idx: int) -> None:
     d = c.design
     since = _date_break(c, alarm_idx)
     c.charts["break_index"] = since
-    parts = []
+    parts: list[str] = []
     try:
         cols = list(d.driver_columns.values())
         if cols:
@@ -504,7 +504,8 @@ def _drivers_and_worth(c: _Ctx) -> None:
                 else:
                     reason = f"Driver '{s}' is not earning its place: " + (f"over the last {int(both.sum())} periods it no longer improves the forecasts "
                            f"(Clark–West p = {cw.pvalue:.2f}) and its recent coefficient interval "
-                           f"[{fmt_num(ci[0])}, {fmt_num(ci[1])}] covers zero; MAE would go from "
+                           f"[{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] covers zero; "
+                           f"MAE would go from "
                            f"{fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} without it.")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)

@@ -251,6 +251,7 @@ def shock(config: str, when: str, models: tuple[str, ...], as_of: str | None, as
           out: str | None) -> None:
     """After a known market shock: did each model's relationship change at that date?"""
     day = _day(when, "--date")
+    assert day is not None  # --date is required by click
     aday = _day(as_of, "--as-of")
 
     def go() -> None:

@@ -314,10 +314,10 @@ class Store:
     def latest_verdicts(self, since: datetime | None = None) -> list[dict[str, Any]]:
         """The newest verdict row per model (optionally only those created since a time)."""
         v = verdicts
-        sub = sa.select(v.c.model, sa.func.max(v.c.id).label("mid")).group_by(v.c.model)
+        newest = sa.select(v.c.model, sa.func.max(v.c.id).label("mid")).group_by(v.c.model)
         if since is not None:
-            sub = sub.where(v.c.created_at >= since)
-        sub = sub.subquery()
+            newest = newest.where(v.c.created_at >= since)
+        sub = newest.subquery()
         q = sa.select(v).join(sub, v.c.id == sub.c.mid).order_by(v.c.model)
         with self.connect() as conn:
             out = []

@@ -411,7 +411,7 @@ def forecast_chart(
         _flag(ax, t[sl], t[defined[0]], "monitoring starts")
     if event is not None:
         at = _to_datetime64(event)
-        ax.axvline(at, color=VERMILION, linewidth=1.4)
+        ax.axvline(at, color=VERMILION, linewidth=1.4)  # type: ignore[arg-type]
         _flag(ax, t[sl], at, f"{event_label} {_fmt_day(at)}", bold=True)
     ax.set_ylabel(unit, **_text_kw())
     ax.set_xlabel("period", **_text_kw())
