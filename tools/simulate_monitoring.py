@@ -20,7 +20,16 @@ case) and records, for every horizon ``H`` in the grid, the maximum over ``k <= 
   ``w(t) = sqrt(1 + t) (t / (1 + t))^gamma`` (the Brownian-motion analogue of Fremdt's 2015 weight).
 
 Quantiles of these maxima over replications are the critical values for "a false alarm anywhere within the
-horizon" at each tail probability. The Trigg (1964) table holds stationary quantiles of ``|T_t|`` for iid
+horizon" at each tail probability.
+
+Estimated scale (``*_DOF`` tables). In use the partial sums are divided by a scale estimated on the
+reference period, independent of the monitored residuals: for iid normal errors ``sigma-hat^2 / sigma^2``
+is exactly chi^2_nu / nu with nu = m - k (the reference RSS is a sum of m - k squared recursive residuals,
+independent of the later ones; Brown, Durbin & Evans 1975). Each replication therefore also gets a scale
+``s = sqrt(chi^2_nu / nu)`` (stratified: the chi^2_nu quantiles at (i + 0.5)/reps in a random order, drawn
+from a second generator so the known-sigma tables are unchanged) and the same maxima are recorded with the
+path divided by s: mosum and page statistics scale as 1/s, the csw statistic is recomputed on the scaled
+path. This is the sequential analogue of replacing the normal by Student's t. The Trigg (1964) table holds stationary quantiles of ``|T_t|`` for iid
 N(0, 1) errors, pooled over times after a burn-in.
 """
 
@@ -40,9 +49,22 @@ MOSUM_H = (0.1, 0.25, 0.5, 1.0)
 PAGE_GAMMA = (0.0, 0.25, 0.45)
 TRIGG_ALPHA = (0.05, 0.1, 0.2, 0.3)
 TRIGG_LEVELS = (0.10, 0.05, 0.01)
+#: Degrees of freedom of the estimated scale for the ``*_DOF`` tables (interpolated in 1/nu; nu = inf is
+#: the known-sigma table).
+SCALE_SEED = SEED + 1
+DOF = (2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64, 96, 128, 256, 512)
 
 
-def simulate_monitoring(reps: int, m: int, rng: np.random.Generator, chunk: int = 500) -> dict:
+def _scale_draws(reps: int, rng: np.random.Generator) -> np.ndarray:
+    """(len(DOF), reps) stratified draws of sqrt(chi^2_nu / nu), each row in its own random order."""
+    from scipy import stats
+
+    u = (np.arange(reps) + 0.5) / reps
+    return np.stack([np.sqrt(stats.chi2.ppf(u, nu) / nu)[rng.permutation(reps)] for nu in DOF])
+
+
+def simulate_monitoring(reps: int, m: int, rng: np.random.Generator, chunk: int = 500,
+                        scale_rng: np.random.Generator | None = None) -> dict:
     hmax = max(HORIZONS)
     n_steps = int(round(hmax * m))
     k = np.arange(1, n_steps + 1)
@@ -55,6 +77,8 @@ def simulate_monitoring(reps: int, m: int, rng: np.random.Generator, chunk: int 
         **{f"mosum{h}": np.empty((reps, len(HORIZONS))) for h in MOSUM_H},
         **{f"page{g}": np.empty((reps, len(HORIZONS))) for g in PAGE_GAMMA},
     }
+    scales = _scale_draws(reps, scale_rng if scale_rng is not None else np.random.default_rng(SEED + 1))
+    csw_dof = {nu: np.empty((reps, len(HORIZONS))) for nu in DOF}
 
     def record(name: str, stat: np.ndarray, lo: int, hi: int) -> None:
         run = np.maximum.accumulate(stat, axis=1)
@@ -64,6 +88,10 @@ def simulate_monitoring(reps: int, m: int, rng: np.random.Generator, chunk: int 
         hi = min(reps, lo + chunk)
         s = np.cumsum(rng.standard_normal((hi - lo, n_steps)), axis=1)
         record("csw", s * s / n - log_ratio, lo, hi)
+        s2n = s * s / n
+        for i, nu in enumerate(DOF):
+            sc2 = scales[i, lo:hi, None] ** 2
+            csw_dof[nu][lo:hi] = np.maximum.accumulate(s2n / sc2 - log_ratio, axis=1)[:, [c - 1 for c in checkpoints]]
         s0 = np.concatenate([np.zeros((hi - lo, 1)), s], axis=1)  # S_0 = 0
         for h in MOSUM_H:
             L = int(round(h * m))
@@ -76,7 +104,13 @@ def simulate_monitoring(reps: int, m: int, rng: np.random.Generator, chunk: int 
             w = np.sqrt(1.0 + t) * (t / (1.0 + t)) ** g
             record(f"page{g}", page / w, lo, hi)
     q = 1.0 - np.asarray(TAIL_PROBS)
-    return {name: np.quantile(v, q, axis=0).T for name, v in out.items()}  # (horizon, tail)
+    tables = {name: np.quantile(v, q, axis=0).T for name, v in out.items()}  # (horizon, tail)
+    for i, nu in enumerate(DOF):
+        tables[f"csw|{nu}"] = np.quantile(csw_dof[nu], q, axis=0).T
+        for name, v in out.items():  # mosum/page maxima scale as 1/s
+            if name != "csw":
+                tables[f"{name}|{nu}"] = np.quantile(v / scales[i][:, None], q, axis=0).T
+    return tables
 
 
 def simulate_trigg(series: int, length: int, burn: int, rng: np.random.Generator) -> dict:
@@ -97,14 +131,14 @@ def _fmt_rows(arr: np.ndarray) -> str:
 
 LOOKUP_CODE = '''
 
-def _row(table: dict, key: float, name: str) -> np.ndarray:
+def _row(table: dict, key: float, name: str) -> Any:
     for k, v in table.items():
         if abs(k - key) < 1e-12:
-            return np.asarray(v, dtype=float)
+            return v
     raise ValueError(f"{name} must be one of {sorted(table)}, got {key!r}")
 
 
-def _interp_horizon(rows: np.ndarray, horizon: np.ndarray) -> np.ndarray:
+def _interp_horizon(rows: Any, horizon: Any) -> np.ndarray:
     """Rows of quantiles (len(HORIZONS), len(TAIL_PROBS)) interpolated linearly at each horizon.
 
     Below the smallest tabulated horizon the smallest horizon's row is used (conservative: critical values
@@ -119,47 +153,86 @@ def _interp_horizon(rows: np.ndarray, horizon: np.ndarray) -> np.ndarray:
             "extend tools/simulate_monitoring.py or monitor in shorter spans"
         )
     hz = np.asarray(HORIZONS)
+    rows = np.asarray(rows, dtype=float)
     return np.stack([np.interp(horizon, hz, rows[:, j]) for j in range(rows.shape[1])], axis=-1)
 
 
-def critical_value(detector: str, param: float, horizon, level: float) -> np.ndarray:
-    """Critical value of ``detector`` ("mosum": param = window fraction h; "page": param = gamma; "csw":
-    param ignored, returns the finite-horizon a^2) at false-alarm probability ``level`` over ``horizon``.
+def _check_dof(dof: Any, shape: tuple[int, ...]) -> np.ndarray | None:
+    if dof is None:
+        return None
+    nu = np.broadcast_to(np.asarray(dof, dtype=float), shape)
+    if np.any(np.isnan(nu)) or np.any(nu < DOF[0] - 1e-12):
+        raise ValueError(f"dof must be >= {DOF[0]} (the smallest tabulated) or inf, got {dof!r}")
+    return nu
 
-    ``level`` must be one of TAIL_PROBS. Horizons are interpolated linearly; see :func:`_interp_horizon`
-    for the edges. Returns an array shaped like ``horizon``.
+
+def quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np.ndarray:
+    """Tabulated quantiles, shape ``horizon.shape + (len(TAIL_PROBS),)``, at each horizon and scale dof.
+
+    ``dof`` None (or inf): known scale (``CSW_FINITE`` / ``MOSUM`` / ``PAGE``). Otherwise the ``*_DOF``
+    tables, interpolated linearly in 1/dof between the tabulated ``DOF`` and the known-scale table at
+    1/dof = 0 (the quantiles are close to linear in 1/dof, as Student's t quantiles are). A dof below
+    ``DOF[0]`` raises ValueError.
     """
-    table = _table(detector, param)
+    known, by_dof = _table(detector, param)
+    horizon = np.atleast_1d(np.asarray(horizon, dtype=float))
+    base = _interp_horizon(known, horizon)
+    nu = _check_dof(dof, horizon.shape)
+    if nu is None:
+        return base
+    inv_grid = np.concatenate([[0.0], 1.0 / np.asarray(DOF[::-1], dtype=float)])
+    stack = np.stack([base] + [_interp_horizon(by_dof[d], horizon) for d in DOF[::-1]])
+    with np.errstate(divide="ignore"):
+        inv = np.where(np.isinf(nu), 0.0, 1.0 / nu)
+    i = np.clip(np.searchsorted(inv_grid, inv, side="right") - 1, 0, len(inv_grid) - 2)
+    w = ((inv - inv_grid[i]) / (inv_grid[i + 1] - inv_grid[i]))[..., None]
+    lo = np.take_along_axis(stack, i[None, ..., None], axis=0)[0]
+    hi = np.take_along_axis(stack, (i + 1)[None, ..., None], axis=0)[0]
+    return (1.0 - w) * lo + w * hi
+
+
+def critical_value(detector: str, param: float, horizon: Any, level: float, dof: Any = None) -> np.ndarray:
+    """Critical value of ``detector`` ("mosum": param = window fraction h; "page": param = gamma; "csw":
+    param ignored, returns the finite-horizon a^2) at false-alarm probability ``level`` over ``horizon``,
+    for a known scale (``dof`` None) or a scale estimated with ``dof`` degrees of freedom.
+
+    ``level`` must be one of TAIL_PROBS. Horizons are interpolated linearly (see :func:`_interp_horizon`
+    for the edges), dof linearly in 1/dof (see :func:`quantiles`). Returns an array shaped like
+    ``horizon``.
+    """
     j = [i for i, p in enumerate(TAIL_PROBS) if abs(p - level) < 1e-12]
     if not j:
         raise ValueError(f"level must be one of {TAIL_PROBS}, got {level!r}")
-    return _interp_horizon(table, horizon)[..., j[0]]
+    return quantiles(detector, param, horizon, dof)[..., j[0]]
 
 
-def pvalue(detector: str, param: float, horizon, statistic) -> np.ndarray:
+def pvalue(detector: str, param: float, horizon: Any, statistic: Any, dof: Any = None) -> np.ndarray:
     """Approximate p-value by interpolating log tail probability against the tabulated quantiles.
 
     Clipped to the tabulated range: a statistic below the median quantile gets 0.5 (read "p >= 0.5"), one
-    beyond the last quantile gets 0.005 (read "p <= 0.005"). NaN statistics give NaN.
+    beyond the last quantile gets 0.005 (read "p <= 0.005"). NaN statistics give NaN. Vectorised.
     """
-    table = _table(detector, param)
     stat = np.atleast_1d(np.asarray(statistic, dtype=float))
-    q = _interp_horizon(table, np.broadcast_to(horizon, stat.shape))
+    q = quantiles(detector, param, np.broadcast_to(horizon, stat.shape), dof)
     logp = np.log(np.asarray(TAIL_PROBS))
-    out = np.full(stat.shape, np.nan)
-    for i in np.ndindex(stat.shape):
-        if np.isfinite(stat[i]):
-            out[i] = np.exp(np.interp(stat[i], q[i], logp))
-    return out
+    finite = np.isfinite(stat)
+    s = np.where(finite, stat, 0.0)
+    j = np.clip((q <= s[..., None]).sum(axis=-1), 1, len(TAIL_PROBS) - 1)  # segment [j - 1, j]
+    q0 = np.take_along_axis(q, (j - 1)[..., None], axis=-1)[..., 0]
+    q1 = np.take_along_axis(q, j[..., None], axis=-1)[..., 0]
+    w = np.clip((s - q0) / (q1 - q0), 0.0, 1.0)
+    out = np.exp((1.0 - w) * logp[j - 1] + w * logp[j])
+    return np.where(finite, out, np.nan)
 
 
-def _table(detector: str, param: float) -> np.ndarray:
+def _table(detector: str, param: float) -> tuple[Any, dict]:
     if detector == "mosum":
-        return _row(MOSUM, param, "mosum window fraction h")
+        name = "mosum window fraction h"
+        return _row(MOSUM, param, name), _row(MOSUM_DOF, param, name)
     if detector == "page":
-        return _row(PAGE, param, "page gamma")
+        return _row(PAGE, param, "page gamma"), _row(PAGE_DOF, param, "page gamma")
     if detector == "csw":
-        return np.asarray(CSW_FINITE, dtype=float)
+        return CSW_FINITE, CSW_FINITE_DOF
     raise ValueError(f"detector must be 'mosum', 'page' or 'csw', got {detector!r}")
 
 
@@ -189,7 +262,7 @@ def main() -> None:
     args = ap.parse_args()
     rng = np.random.default_rng(SEED)
     t0 = time.time()
-    mon = simulate_monitoring(args.reps, args.m, rng)
+    mon = simulate_monitoring(args.reps, args.m, rng, scale_rng=np.random.default_rng(SCALE_SEED))
     trigg_series, trigg_len, trigg_burn = 200, 20000, 500
     trigg = simulate_trigg(trigg_series, trigg_len, trigg_burn, rng)
     elapsed = time.time() - t0
@@ -221,18 +294,30 @@ Detectors (statistics on recursive residuals standardised by sigma; t = k/m, k m
   Trigg, D. W. (1964), Monitoring a forecasting system, Operational Research Quarterly 15(3), 271-274;
   {trigg_series} series x {trigg_len} steps after a burn-in of {trigg_burn}, iid N(0, 1) errors.
 
+- ``CSW_FINITE_DOF[nu]``, ``MOSUM_DOF[h][nu]``, ``PAGE_DOF[gamma][nu]``: the same maxima with the path
+  divided by an independent estimated scale s = sqrt(chi^2_nu / nu) (stratified draws, seed
+  {SCALE_SEED}, one per replication): the sequential analogue of Student's t. For iid normal errors and
+  sigma-hat^2 = RSS / (m - k) on the reference sample, nu = m - k is exact: the reference RSS is a sum of
+  m - k squared recursive residuals, independent of the monitored ones (Brown, R. L., Durbin, J. and
+  Evans, J. M. (1975), Techniques for testing the constancy of regression relationships over time,
+  JRSS B 37(2), 149-192). With prewhitened errors nu is an effective dof (see drift.engine.monitor).
+
 Arrays are indexed [horizon][tail probability] over ``HORIZONS`` x ``TAIL_PROBS``.
 """
 
 from __future__ import annotations
+
+from typing import Any
 
 import numpy as np
 
 SEED = {SEED}
 REPLICATIONS = {args.reps}
 DISCRETISATION = {args.m}
+SCALE_SEED = {SCALE_SEED}
 HORIZONS = {HORIZONS!r}
 TAIL_PROBS = {TAIL_PROBS!r}
+DOF = {DOF!r}
 
 CSW_FINITE = {_fmt_rows(mon["csw"])}
 
@@ -243,6 +328,16 @@ MOSUM = {{
     parts.append("}\n\nPAGE = {\n")
     for g in PAGE_GAMMA:
         parts.append(f"    {g!r}: {_fmt_rows(mon[f'page{g}'])},\n")
+    parts.append("}\n\nCSW_FINITE_DOF = {\n")
+    for nu in DOF:
+        parts.append(f"    {nu!r}: {_fmt_rows(mon[f'csw|{nu}'])},\n")
+    for name, keys, label in (("MOSUM_DOF", MOSUM_H, "mosum"), ("PAGE_DOF", PAGE_GAMMA, "page")):
+        parts.append(f"}}\n\n{name} = {{\n")
+        for key in keys:
+            parts.append(f"    {key!r}: {{\n")
+            for nu in DOF:
+                parts.append(f"        {nu!r}: {_fmt_rows(mon[f'{label}{key}|{nu}'])},\n".replace("\n    ", "\n        "))
+            parts.append("    },\n")
     parts.append("}\n\nTRIGG = {\n")
     for a, row in trigg.items():
         parts.append(f"    {a!r}: {{" + ", ".join(f"{lvl!r}: {v:.4f}" for lvl, v in row.items()) + "},\n")

@@ -50,6 +50,8 @@ Zeileis, A., Leisch, F., Kleiber, C. and Hornik, K. (2005). Monitoring structura
 econometric models. J. Applied Econometrics 20(1), 99-121.
 Fremdt, S. (2015). Page's sequential procedure for change-point detection in time series regression.
 J. Time Series Analysis 36(6).
+Satterthwaite, F. E. (1946). An approximate distribution of estimates of variance components.
+Biometrics Bulletin 2(6), 110-114.
 """
 
 from __future__ import annotations
@@ -60,6 +62,7 @@ from typing import Any
 
 import numpy as np
 
+from drift.engine.arma import ErrorModel
 from drift.engine.results import TestResult
 from drift.engine.tables import csw as csw_table
 from drift.engine.tables import monitoring as mon_table
@@ -258,7 +261,8 @@ def _horizon_array(horizon: float | None, m: IntArray, T: int) -> FloatArray:
     return np.full(m.shape, h)
 
 
-def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict) -> tuple:
+def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
+         dof: FloatArray | None = None) -> tuple:
     M, T = S.shape
     k, mon = _monitored_time(m, T)
     n = k + m[:, None]
@@ -273,12 +277,13 @@ def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params
         with np.errstate(invalid="ignore"):
             pval = np.where(np.isfinite(A), csw_table.crossing_probability(np.nan_to_num(A)), np.nan)
         params["calibration"] = "infinite horizon (CSW 1996 eq. 3.5)"
+        params["scale_dof"] = None  # the closed form has no estimated-scale version
         end = np.full(M, T)
     else:
         hz = np.full(M, float(horizon))
-        a2 = mon_table.critical_value("csw", 0.0, hz, level)
-        cvs = {lvl: mon_table.critical_value("csw", 0.0, hz, lvl) for lvl in REPORTED_LEVELS}
-        pval = mon_table.pvalue("csw", 0.0, hz, A)
+        a2 = mon_table.critical_value("csw", 0.0, hz, level, dof)
+        cvs = {lvl: mon_table.critical_value("csw", 0.0, hz, lvl, dof) for lvl in REPORTED_LEVELS}
+        pval = mon_table.pvalue("csw", 0.0, hz, A, dof)
         params["calibration"] = f"finite horizon {horizon} (simulated)"
         end = m + np.ceil(hz * m).astype(np.int64)
     with np.errstate(invalid="ignore"):
@@ -289,7 +294,7 @@ def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params
 
 
 def _mosum(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
-           window: float = 0.25) -> tuple:
+           dof: FloatArray | None = None, window: float = 0.25) -> tuple:
     T = S.shape[1]
     _, mon = _monitored_time(m, T)
     hz = _horizon_array(horizon, m, T)
@@ -300,19 +305,19 @@ def _mosum(S: FloatArray, m: IntArray, horizon: float | None, level: float, para
     lagged = np.take_along_axis(S0, np.clip(lag_idx, 0, T - 1), axis=1)
     lagged = np.where(lag_idx >= m[:, None], lagged, 0.0)
     path = np.where(mon, S0 - lagged, np.nan)
-    c = mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), level)
-    cvs = {lvl: mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), lvl)
+    c = mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), level, dof)
+    cvs = {lvl: mon_table.critical_value("mosum", window, np.maximum(hz, 1e-9), lvl, dof)
            for lvl in REPORTED_LEVELS}
     boundary = np.where(mon, (c * np.sqrt(L))[:, None] * np.ones((1, T)), np.nan)
     boundary = _truncate(boundary, m + np.ceil(hz * m).astype(np.int64))
     ratio = _nanmax(np.abs(path) / boundary)
-    pval = mon_table.pvalue("mosum", window, np.maximum(hz, 1e-9), ratio * c)
+    pval = mon_table.pvalue("mosum", window, np.maximum(hz, 1e-9), ratio * c, dof)
     params.update(window=window, window_length=L if L.size > 1 else int(L[0]))
     return path, boundary, c, pval, cvs, params
 
 
 def _page(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
-          gamma: float = 0.0) -> tuple:
+          dof: FloatArray | None = None, gamma: float = 0.0) -> tuple:
     T = S.shape[1]
     k, mon = _monitored_time(m, T)
     hz = _horizon_array(horizon, m, T)
@@ -321,13 +326,13 @@ def _page(S: FloatArray, m: IntArray, horizon: float | None, level: float, param
                                     np.maximum.accumulate(S0, axis=1) - S0), np.nan)
     tau = np.where(mon, k, 1.0) / m[:, None]
     weight = np.sqrt(1.0 + tau) * (tau / (1.0 + tau)) ** gamma
-    c = mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), level)
-    cvs = {lvl: mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), lvl)
+    c = mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), level, dof)
+    cvs = {lvl: mon_table.critical_value("page", gamma, np.maximum(hz, 1e-9), lvl, dof)
            for lvl in REPORTED_LEVELS}
     boundary = np.where(mon, c[:, None] * np.sqrt(m)[:, None] * weight, np.nan)
     boundary = _truncate(boundary, m + np.ceil(hz * m).astype(np.int64))
     ratio = _nanmax(np.abs(path) / boundary)
-    pval = mon_table.pvalue("page", gamma, np.maximum(hz, 1e-9), ratio * c)
+    pval = mon_table.pvalue("page", gamma, np.maximum(hz, 1e-9), ratio * c, dof)
     params.update(gamma=gamma)
     return path, boundary, c, pval, cvs, params
 
@@ -352,8 +357,33 @@ DETECTORS: dict[str, _Detector] = {
 }
 
 
+def _scale_dof(scale_dof: Any, error_model: ErrorModel | None, fit: ReferenceFit, k: int) -> FloatArray | None:
+    """Effective degrees of freedom of the monitoring scale per model (see :func:`monitor`, Notes)."""
+    M = fit.ok.shape[0]
+    if scale_dof is None:
+        return None
+    if isinstance(scale_dof, str):
+        if scale_dof != "auto":
+            raise ValueError(f"scale_dof must be 'auto', None or a number >= {mon_table.DOF[0]}, got {scale_dof!r}")
+        nu_sigma = np.maximum(fit.nobs_reference - k, 1).astype(float)
+        v = 0.5 / nu_sigma
+        if error_model is not None:
+            extra = np.broadcast_to(np.asarray(error_model.log_scale_variance(), dtype=float), (M,))
+            v = v + np.where(np.isfinite(extra), extra, 0.0)
+        nu = np.maximum(0.5 / v, float(mon_table.DOF[0]))
+    else:
+        try:
+            nu = np.broadcast_to(np.asarray(scale_dof, dtype=float), (M,)).copy()
+        except (TypeError, ValueError) as exc:
+            raise TypeError(f"scale_dof must be 'auto', None, a number or an (M,) array, got {scale_dof!r}") from exc
+        if np.any(np.isnan(nu)) or np.any(nu < mon_table.DOF[0]):
+            raise ValueError(f"scale_dof must be >= {mon_table.DOF[0]} (or inf), got {scale_dof!r}")
+    return np.where(fit.ok, nu, np.inf)
+
+
 def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: str = "csw",
-            level: float = 0.05, window: float = 0.25, gamma: float = 0.0) -> MonitorResult:
+            level: float = 0.05, window: float = 0.25, gamma: float = 0.0,
+            error_model: ErrorModel | None = None, scale_dof: Any = "auto") -> MonitorResult:
     """Monitor observations ``t >= m`` against the fit frozen on the reference rows ``t < m``.
 
     Parameters
@@ -372,6 +402,16 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         for mosum/page and finite-horizon csw; any value in (0, 1) for infinite-horizon csw.
     window : mosum window as a fraction h of m (tabulated: 0.1, 0.25, 0.5, 1.0).
     gamma : page weight exponent (tabulated: 0.0, 0.25, 0.45); larger reacts faster early on.
+    error_model : the :class:`~drift.engine.arma.ErrorModel` that prewhitened ``y`` and ``X`` (one per
+        model, or one for all). Its estimation covariance widens the boundary for the sampling error of
+        the estimated filter (see Notes); without it the filter is treated as known. Pass it whenever the
+        data were prewhitened with estimated coefficients: with AR(1) errors phi = 0.5 and m = 100 the
+        false-alarm rate is otherwise about three times nominal.
+    scale_dof : ``"auto"`` (default): degrees of freedom of the estimated monitoring scale, m_eff - k for
+        sigma-hat combined with ``error_model``'s estimation variance (Notes); None: the asymptotic
+        known-scale tables (the behaviour before this option; sizes run above nominal for small m - k); a
+        number or (M,) array >= 2 (inf allowed): used as given. Ignored (asymptotic) by the
+        infinite-horizon csw.
 
     Returns
     -------
@@ -392,9 +432,21 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     csw path :math:`S_n`, boundary :math:`\\sqrt{n[a^2 + \\ln(n/m)]}`; mosum path
     :math:`S_n - S_{n-L}`, boundary :math:`c\\sqrt{L}`; page path :math:`\\max_{m\\le j\\le n}|S_n - S_j|`,
     boundary :math:`c\\sqrt{m}\\sqrt{1+\\tau}(\\tau/(1+\\tau))^\\gamma`. Errors are assumed serially
-    uncorrelated; with ARMA errors prewhiten first (:func:`drift.engine.arma.prewhiten`). The constants
-    ignore the estimation of sigma (asymptotic); with a small m - k the sizes run slightly above nominal,
-    offset by the conservative discretisation of the simulated tables.
+    uncorrelated; with ARMA errors prewhiten first (:func:`drift.engine.arma.prewhiten`).
+
+    Estimated scale. :math:`\\hat\\sigma` comes from the reference sample and is independent of the
+    monitored recursive residuals; for iid normal errors :math:`\\hat\\sigma^2/\\sigma^2 \\sim
+    \\chi^2_\\nu/\\nu`, :math:`\\nu = m_{eff} - k`, exactly (Brown, Durbin & Evans 1975). The critical
+    values are then those of the path divided by an independent :math:`\\sqrt{\\chi^2_\\nu/\\nu}`
+    (the sequential analogue of Student's t; simulated ``*_DOF`` tables, interpolated in 1/nu). After
+    prewhitening by an estimated filter the monitored partial sums are, over long spans, multiplied by
+    :math:`\\hat f/f` (the filter's zero-frequency gain, for AR(1) :math:`(1-\\hat\\phi)/(1-\\phi)`),
+    independent of the future errors: the scale carries the extra log-variance
+    :math:`v_f` = :meth:`ErrorModel.log_scale_variance`. Matching the log-variance of a chi-type scale,
+    :math:`1/(2\\nu) = 1/(2(m_{eff}-k)) + v_f`, gives the effective dof (a Satterthwaite-type
+    approximation; Satterthwaite 1946), floored at the smallest tabulated value 2. For phi = 0.5 and
+    m = 100, nu is about 8 instead of 90: the boundary widens as much as the estimated filter is
+    uncertain, and that width is what holds the false-alarm rate.
 
     References
     ----------
@@ -413,6 +465,8 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         raise ValueError(f"gamma must be one of {sorted(mon_table.PAGE)}, got {gamma!r}")
     if horizon is not None and (not np.isfinite(float(horizon)) or float(horizon) <= 0):
         raise ValueError(f"horizon must be a positive ratio (T_max - m)/m, got {horizon!r}")
+    if error_model is not None and not isinstance(error_model, ErrorModel):
+        raise TypeError(f"error_model must be an ErrorModel from fit_error_model, got {type(error_model).__name__}")
 
     yb, Xb, squeeze = _as_batch(y, X)
     M, T = yb.shape
@@ -431,7 +485,10 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     params: dict[str, Any] = {"detector": detector, "level": level, "horizon": horizon,
                               "m": int(mb[0]) if np.all(mb == mb[0]) else mb}
     extra = {"window": window} if detector == "mosum" else {"gamma": gamma} if detector == "page" else {}
-    path, boundary, cv, pval, cvs, params = det.run(S, mb, horizon, level, params, **extra)
+    nu = _scale_dof(scale_dof, error_model, fit, Xb.shape[2])
+    if nu is not None:
+        params["scale_dof"] = float(nu[0]) if squeeze else nu
+    path, boundary, cv, pval, cvs, params = det.run(S, mb, horizon, level, params, dof=nu, **extra)
 
     bad = ~fit.ok
     path = np.where(bad[:, None], np.nan, path)
