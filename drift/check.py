@@ -149,10 +149,15 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     """
     ctxs: list[_Ctx] = []
     errors: dict[str, str] = {}
+    # split the observations by series once: every later per-model filter then works on a small frame
+    by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+    empty = obs.iloc[0:0]
     for m in models:
         try:
-            d = build_design(cfg, m, obs[obs["series"].isin(m.series)], pd.Timestamp(as_of))
-            c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=obs)
+            frames = [by_series[s] for s in dict.fromkeys(m.series) if s in by_series]
+            mobs = pd.concat(frames, ignore_index=True) if frames else empty
+            d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
+            c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
             c.y, c.X, c.error_model = _prewhiten(m, d)
             need = d.k + 3
             if np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)) < need:
@@ -387,8 +392,7 @@ def _date_break(c: _Ctx, alarm_idx: int) -> int:
 
 # ------------------------------------------------------------------------------------------------ freshness
 def _freshness(c: _Ctx) -> None:
-    m, d, obs = c.model, c.design, c.obs
-    known = obs[obs["series"].isin(m.series)]
+    m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
     last = known.groupby("series")["period"].max()
     feeds: dict[str, Any] = {}
     limit = c.cfg.check.feed_limit
@@ -582,7 +586,7 @@ def _lag_drift(c: _Ctx) -> None:
             continue
         # does the model at the new lag beat the current one out of sample (recent window)?
         try:
-            alt = build_design(c.cfg, m, obs[obs["series"].isin(m.series)], pd.Timestamp(c.as_of),
+            alt = build_design(c.cfg, m, obs, pd.Timestamp(c.as_of),
                                lags={s: new})
         except DriftError:
             continue
