@@ -393,7 +393,9 @@ def _date_break(c: _Ctx, alarm_idx: int) -> int:
 # ------------------------------------------------------------------------------------------------ freshness
 def _freshness(c: _Ctx) -> None:
     m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
-    last = known.groupby("series")["period"].max()
+    groups = {str(k): g for k, g in known.groupby("series", sort=False)}
+    last = {k: g["period"].max() for k, g in groups.items()}
+    start = d.periods[max(0, d.n - 26)]
     feeds: dict[str, Any] = {}
     limit = c.cfg.check.feed_limit
     for s in m.series:
@@ -406,10 +408,11 @@ def _freshness(c: _Ctx) -> None:
             continue
         due = next_due(pd.Timestamp(lp), m.frequency, delay)
         late = pd.Timestamp(c.as_of) > due
-        g = known[known["series"] == s].sort_values("period").drop_duplicates("period")
-        g = g[g["period"] >= d.periods[max(0, d.n - 26)]]
-        feeds[s] = {"periods": [p.date().isoformat() for p in g["period"]],
-                    "available_at": [pd.Timestamp(a).isoformat() for a in g["available_at"]],
+        g = groups[s]
+        g = g[g["period"] >= start].sort_values(["period", "available_at"]).drop_duplicates("period")
+        feeds[s] = {"periods": g["period"].dt.strftime("%Y-%m-%d").tolist(),
+                    "available_at": g["available_at"].dt.tz_convert("UTC").dt.strftime(
+                        "%Y-%m-%dT%H:%M:%S+00:00").tolist(),
                     "next_due": due.isoformat(), "late": bool(late), "last_period": lp.date().isoformat()}
         if late:
             c.late.add(s)
