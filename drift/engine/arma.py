@@ -338,9 +338,10 @@ def _expected_ar1_ls(phi: FloatArray, Q: FloatArray, pair: np.ndarray) -> FloatA
     # tr(Q'A Sigma Q) with A = (1/2) sum_pairs (E_{t,t-1} + E_{t-1,t}); tr(Q'B Sigma Q), B = sum_pairs E_{t-1,t-1}
     tr_a_s = 0.5 * (np.einsum("mtk,mtk->m", q_now, SQ[:, :-1]) + np.einsum("mtk,mtk->m", q_lag, SQ[:, 1:]))
     tr_b_s = np.einsum("mtk,mtk->m", q_lag, SQ[:, :-1])
-    qaq = 0.5 * (np.einsum("mti,mtj->mij", q_now, q_lag) + np.einsum("mti,mtj->mij", q_lag, q_now))
-    qbq = np.einsum("mti,mtj->mij", q_lag, q_lag)
-    qsq = np.einsum("mti,mtj->mij", Q, SQ)
+    cross = np.matmul(q_now.transpose(0, 2, 1), q_lag)
+    qaq = 0.5 * (cross + cross.transpose(0, 2, 1))
+    qbq = np.matmul(q_lag.transpose(0, 2, 1), q_lag)
+    qsq = np.matmul(Q.transpose(0, 2, 1), SQ)
     num = n_p * phi - 2.0 * tr_a_s + np.einsum("mij,mji->m", qaq, qsq)
     den = n_p - 2.0 * tr_b_s + np.einsum("mij,mji->m", qbq, qsq)
     return num / den - 2.0 * phi / n_p
@@ -351,40 +352,55 @@ def _var_ar1_ls(phi: FloatArray, g: FloatArray, Q: FloatArray, pair: np.ndarray,
     """First-order (delta-method) variance of the AR(1) least-squares estimate from OLS residuals.
 
     :math:`\\mathrm{var}(\\hat\\phi) \\approx 2\\,\\mathrm{tr}\\{(G S)^2\\} / \\mathrm{tr}(B S)^2` with
-    :math:`S = M\\Sigma_\\phi M`, :math:`G = A - g(\\phi) B` (the quadratic-form variance of the
-    linearised estimating equation :math:`e'Ae - g\\,e'Be` for Gaussian errors). Explicit (T, T) matrices
-    in chunks of models: O(T^2 k) per model, vectorised.
+    :math:`S = M\\Sigma_\\phi M`, :math:`G = A - g(\\phi) B` (the variance of the linearised estimating
+    equation :math:`e'Ae - g\\,e'Be`, a Gaussian quadratic form). Low rank: :math:`S = \\Sigma - ZKZ'` with
+    :math:`Z = [Q, \\Sigma Q]`, :math:`K = [[-Q'\\Sigma Q, I], [I, 0]]`, so
+    :math:`\\mathrm{tr}(GSGS) = \\mathrm{tr}(G\\Sigma G\\Sigma) - 2\\,\\mathrm{tr}(K (GZ)'\\Sigma(GZ))
+    + \\mathrm{tr}(K Z'GZ K Z'GZ)` and :math:`\\mathrm{tr}(BS) = n - \\mathrm{tr}(K Z'BZ)`; only the first
+    term needs (T, T) arrays (elementwise, in chunks of models).
     """
-    M, T, _ = Q.shape
+    M, T, k = Q.shape
+    pw = pair.astype(float)
+    nxt = np.zeros_like(pw)  # pair_{i+1}: row i enters as the lagged value
+    nxt[:, :-1] = pw[:, 1:]
+
+    def apply_g(v: FloatArray) -> FloatArray:  # G v along axis 1 of v (M, T, c)
+        out = -g[:, None, None] * nxt[:, :, None] * v
+        out[:, 1:] += 0.5 * pw[:, 1:, None] * v[:, :-1]
+        out[:, :-1] += 0.5 * nxt[:, :-1, None] * v[:, 1:]
+        return out
+
+    SQ = _ar1_cov_apply(Q, phi)
+    Z = np.concatenate([Q, SQ], axis=2)
+    K = np.zeros((M, 2 * k, 2 * k))
+    K[:, :k, :k] = -np.matmul(Q.transpose(0, 2, 1), SQ)
+    K[:, :k, k:] = np.eye(k)
+    K[:, k:, :k] = np.eye(k)
+    GZ = apply_g(Z)
+    W = np.matmul(Z.transpose(0, 2, 1), GZ)
+    V = np.matmul(GZ.transpose(0, 2, 1), _ar1_cov_apply(GZ, phi))
+    ZBZ = np.matmul(Z.transpose(0, 2, 1), nxt[:, :, None] * Z)
+    KW = np.matmul(K, W)
+    low = -2.0 * np.einsum("mij,mji->m", K, V) + np.einsum("mij,mji->m", KW, KW)
+    den = pw.sum(axis=1) - np.einsum("mij,mji->m", K, ZBZ)
     lag = np.abs(np.arange(T)[:, None] - np.arange(T)[None, :])
-    out = np.empty(M)
-    pw_t = pair.astype(float)
-    nxt = np.zeros_like(pw_t)  # pair_{i+1}: row i enters as the lagged value
-    nxt[:, :-1] = pw_t[:, 1:]
-    for lo in range(0, M, chunk):  # chunks of models bound the memory; each chunk is fully vectorised
+    main = np.empty(M)
+    for lo in range(0, M, chunk):  # chunks of models bound the (T, T) memory; each is vectorised
         sl = slice(lo, min(M, lo + chunk))
         powers = np.cumprod(np.concatenate([np.ones((phi[sl].size, 1)),
                                             np.repeat(phi[sl, None], T - 1, axis=1)], axis=1), axis=1)
         sig = powers[:, lag]  # (c, T, T) Toeplitz phi^|t-s|
-        q = Q[sl]
-        qs = np.matmul(q.transpose(0, 2, 1), sig)  # Q' Sigma, (c, k, T)
-        half = sig - np.matmul(q, qs)  # M Sigma
-        S = half - np.matmul(np.matmul(half, q), q.transpose(0, 2, 1))  # M Sigma M
-        a_now = 0.5 * pw_t[sl][:, :, None]  # A S, row i: 1/2 pair_i S_{i-1} + 1/2 pair_{i+1} S_{i+1}
-        AS = np.zeros_like(S)
-        AS[:, 1:] += a_now[:, 1:] * S[:, :-1]
-        AS[:, :-1] += 0.5 * nxt[sl][:, :-1, None] * S[:, 1:]
-        BS = nxt[sl][:, :, None] * S
-        GS = AS - g[sl, None, None] * BS
-        num = 2.0 * (GS * GS.transpose(0, 2, 1)).sum(axis=(1, 2))
-        den = np.einsum("mii->m", BS)
-        out[sl] = num / den**2
-    return out
+        GS = -g[sl, None, None] * nxt[sl][:, :, None] * sig
+        GS[:, 1:] += 0.5 * pw[sl][:, 1:, None] * sig[:, :-1]
+        GS[:, :-1] += 0.5 * nxt[sl][:, :-1, None] * sig[:, 1:]
+        main[sl] = (GS * GS.transpose(0, 2, 1)).sum(axis=(1, 2))
+    return 2.0 * (main + low) / den**2
+
 
 def _corrected_ar1(e: FloatArray, coef: FloatArray, s2: FloatArray, n: IntArray, X: FloatArray | None,
                    squeeze: bool) -> ErrorModel:
     """Bias-corrected AR(1) (see :func:`fit_error_model`, Notes), batched."""
-    M, T = e.shape
+    M = e.shape[0]
     phi_ls = coef[:, 0]
     n_p = n.astype(float)
     fin = np.isfinite(e)
