@@ -21,11 +21,17 @@ from scipy import stats
 from drift import engine
 from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig
 from drift.engine.split import split_coefficients
+from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import Design, build_design, next_due
 from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
 
 log = logging.getLogger(__name__)
+
+#: smallest per-monitor level the simulated monitoring tables cover (drift.engine.tables.monitoring)
+MIN_LEVEL = min(_mon_table.TAIL_PROBS)
+#: smallest scale degrees of freedom the tables cover
+MIN_DOF = float(_mon_table.DOF[0])
 
 
 def as_of_moment(day: date) -> datetime:
@@ -82,11 +88,16 @@ def _stack(designs: Sequence[Design]) -> tuple[np.ndarray, np.ndarray, np.ndarra
     return Y, X, off
 
 
-def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None]:
-    """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``)."""
+def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None, float]:
+    """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``).
+
+    Returns the filtered (y, X), a description of the error model and the extra variance its estimation
+    adds to the log of the monitoring scale (see :meth:`drift.engine.arma.ErrorModel.log_scale_variance`).
+    The AR(1) estimate is bias-corrected for the model's own regressors (trend and season bias it down).
+    """
     p, q = model.error_order
     if p == 0 and q == 0:
-        return d.y, d.X, None
+        return d.y, d.X, None, 0.0
     ref = slice(0, d.n_ref)
     ok = np.isfinite(d.y[ref]) & np.isfinite(d.X[ref]).all(axis=1)
     if ok.sum() <= d.k + p + q + 2:
@@ -94,13 +105,14 @@ def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, s
                                     int(ok.sum()))
     b, *_ = np.linalg.lstsq(d.X[ref][ok], d.y[ref][ok], rcond=None)
     resid = np.where(ok, d.y[ref] - np.where(ok[:, None], d.X[ref], 0.0) @ b, np.nan)
-    em = engine.fit_error_model(resid, model.errors)
+    em = engine.fit_error_model(resid, model.errors, X=d.X[ref])
     yt, Xt = engine.prewhiten(d.y, d.X, em)
+    extra = float(np.atleast_1d(em.log_scale_variance())[0])
     par = em.params()
     desc = model.errors + " with " + ", ".join(
         f"{n}{i + 1} = {v:.2f}" for n, arr in (("phi", par["ar"]), ("theta", par["ma"])) for i, v in
         enumerate(np.atleast_1d(arr)))
-    return np.asarray(yt, float), np.asarray(Xt, float), desc
+    return np.asarray(yt, float), np.asarray(Xt, float), desc, extra if np.isfinite(extra) else 0.0
 
 
 def _seasonal_naive(y: np.ndarray, s: float | None) -> np.ndarray:
@@ -131,6 +143,7 @@ class _Ctx:
     y: np.ndarray = None  # type: ignore[assignment]
     X: np.ndarray = None  # type: ignore[assignment]
     error_model: str | None = None
+    scale_logvar: float = 0.0
     actions: list[Action] = field(default_factory=list)
     alarms: list[dict[str, Any]] = field(default_factory=list)
     tests: list[dict[str, Any]] = field(default_factory=list)
@@ -158,7 +171,7 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
             mobs = pd.concat(frames, ignore_index=True) if frames else empty
             d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
             c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
-            c.y, c.X, c.error_model = _prewhiten(m, d)
+            c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
             need = d.k + 3
             if np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)) < need:
                 raise InsufficientDataError(f"model '{m.name}': reference fit", need, int(
@@ -201,14 +214,34 @@ def _screen(group: list[_Ctx]) -> None:
     m = np.array([c.design.n_ref for c in group]) + off
     rf = engine.recursive_fit(Y, Xs)
     horizon = chk.horizon
-    detectors = ("csw", chk.monitor_detector) if chk.monitor_detector != "csw" else ("csw",)
-    lv = chk.level / len(detectors)
-    wl = chk.warn_level / len(detectors)
-    mons = {}
-    warns = {}
-    for det in detectors:
-        mons[det] = engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=_nearest_level(lv))
-        warns[det] = engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=_nearest_level(wl))
+    # the monitors that can raise `refit`, each at level / (their number) (Bonferroni): the residual
+    # CUSUM monitors (level shifts, changes along the mean regressor) and one score monitor per driver
+    # slot (that driver's effect, also when the change leaves the residual mean alone)
+    specs: list[tuple[str, str, int | None]] = [
+        ({"csw": "monitor-cusum", "page": "monitor-page", "mosum": "monitor-mosum"}[det], det, None)
+        for det in dict.fromkeys(("csw", chk.monitor_detector))]
+    n_drv = max(len(c.design.driver_columns) for c in group)
+    specs += [("monitor-effect", chk.monitor_detector, j) for j in range(n_drv)]
+    lv = max(chk.level / len(specs), MIN_LEVEL)
+    wl = max(chk.warn_level / len(specs), MIN_LEVEL)
+    weights = None
+    if n_drv:
+        slots = np.full((len(group), n_drv), -1)
+        for i, c in enumerate(group):
+            slots[i, : len(c.design.driver_columns)] = list(c.design.driver_columns.values())
+        weights = engine.score_weights(Xs, m, slots)
+    # scale estimated on the reference rows (and the error model's extra uncertainty)
+    n_ok = np.array([np.sum(np.isfinite(c.y[: c.design.n_ref]) & np.isfinite(c.X[: c.design.n_ref]).all(axis=1))
+                     for c in group], float)
+    logvar = 0.5 / np.maximum(n_ok - ds[0].k, 1.0) + np.array([c.scale_logvar for c in group])
+    dof = np.maximum(0.5 / logvar, MIN_DOF)
+    mons, warns = [], []
+    for _name, det, j in specs:
+        wj = None if j is None else weights[:, j]  # type: ignore[index]
+        mons.append(engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=lv, weights=wj,
+                                   scale_dof=dof))
+        warns.append(engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=wl, weights=wj,
+                                    scale_dof=dof))
     # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals
     W = rf.resid.copy()
     cols = np.arange(W.shape[1])[None, :]
@@ -244,23 +277,25 @@ def _screen(group: list[_Ctx]) -> None:
                       "window": int(min(chk.recent_window, int(mon_mask.sum())))}
         # monitoring
         alarm_idx = None
-        for det in detectors:
-            r = mons[det]
+        drivers_i = list(d.driver_columns)
+        for (name, _det, j), r, rw in zip(specs, mons, warns):
+            if j is not None and j >= len(drivers_i):
+                continue
+            extra = {} if j is None else {"driver": drivers_i[j]}
             ai = int(np.atleast_1d(r.alarm_index)[i])
             stat = float(np.atleast_1d(r.statistic)[i])
             pv = _num(np.atleast_1d(r.pvalue)[i])
             date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
-            name = {"csw": "monitor-cusum", "page": "monitor-page", "mosum": "monitor-mosum"}[det]
-            c.tests.append({"test": name, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
+            c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
                             "level": lv, "date": date_})
             if ai >= 0:
-                c.alarms.append({"test": name, "date": date_, "statistic": _num(round(stat, 4)),
+                c.alarms.append({"test": name, **extra, "date": date_, "statistic": _num(round(stat, 4)),
                                  "threshold": 1.0, "level": lv})
                 alarm_idx = ai - o if alarm_idx is None else min(alarm_idx, ai - o)
-            wi = int(np.atleast_1d(warns[det].alarm_index)[i])
+            wi = int(np.atleast_1d(rw.alarm_index)[i])
             if ai < 0 and wi >= 0:
-                c.alarms.append({"test": name, "date": d.periods[wi - o].date().isoformat(),
-                                 "statistic": _num(round(float(np.atleast_1d(warns[det].statistic)[i]), 4)),
+                c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
+                                 "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
                                  "threshold": 1.0, "level": wl, "warning": True})
         # retrospective CUSUM family
         retro_flag = []
@@ -315,13 +350,6 @@ def _unfilter_error(c: _Ctx, fe: np.ndarray) -> np.ndarray:
     return fe
 
 
-_LEVELS = (0.5, 0.3, 0.2, 0.15, 0.1, 0.075, 0.05, 0.025, 0.01, 0.005)
-
-
-def _nearest_level(x: float) -> float:
-    """The tabulated level at or below ``x`` (conservative)."""
-    cands = [lv for lv in _LEVELS if lv <= x + 1e-12]
-    return max(cands) if cands else min(_LEVELS)
 
 
 def _refit_action(c: _Ctx, alarm_idx: int) -> None:
@@ -346,13 +374,16 @@ def _refit_action(c: _Ctx, alarm_idx: int) -> None:
                 key=lambda a: a["date"] or "9999")
     since_s = d.periods[since].date().isoformat()
     reason = (f"The relationship changed around {since_s}: " + ("; ".join(parts) + ". " if parts else "")
-              + f"{_test_words(alarm['test']).capitalize()} crossed its boundary on {alarm['date']} "
+              + f"{_test_words(alarm['test'], alarm.get('driver')).capitalize()} crossed its boundary on "
+              f"{alarm['date']} "
               f"(false-alarm rate held at {c.cfg.check.level:.0%} over the monitoring horizon). "
               f"Refit on data since {since_s}.")
     c.actions.append(Action("refit", reason=reason, extra={"since": since_s}))
 
 
-def _test_words(name: str) -> str:
+def _test_words(name: str, driver: str | None = None) -> str:
+    if name == "monitor-effect":
+        return f"the monitor of the {driver} effect"
     return {"monitor-cusum": "the recursive-CUSUM monitor", "monitor-page": "the Page-CUSUM monitor",
             "monitor-mosum": "the moving-sum monitor", "cusum": "the recursive CUSUM",
             "cusum-squares": "the CUSUM of squares"}.get(name, name)
@@ -596,7 +627,7 @@ def _lag_drift(c: _Ctx) -> None:
         # Both models re-estimated on the same rolling window as the worth test: with expanding fits the
         # current-lag model carries the reference period's effect, so *any* other lag (where the reference
         # fit found little) would look better once the effect at the current lag has gone.
-        y_alt, X_alt, _ = _prewhiten(m, alt)
+        y_alt, X_alt, _, _ = _prewhiten(m, alt)
         window = chk.rolling_window or chk.recent_window
         e_new = _rolling_forecast_errors(y_alt[None], X_alt[None], window)[0][d.n - recent_n:]
         e_cur = c.charts["_fe_roll"][d.n - recent_n:]

@@ -31,7 +31,7 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
     """Shock analysis of one model (see module docstring); raises InsufficientDataError."""
     level = cfg.check.level
     d = build_design(cfg, model, obs[obs["series"].isin(model.series)], pd.Timestamp(moment))
-    y, X, _ = _prewhiten(model, d)
+    y, X, _, _ = _prewhiten(model, d)
     at = int(np.searchsorted(d.periods.values, np.datetime64(pd.Timestamp(when))))
     if at <= 0 or at >= d.n:
         raise InsufficientDataError(f"shock analysis of '{model.name}' at {when}", 1, 0,

@@ -54,6 +54,7 @@ _EXPORTS: dict[str, str] = {
     "Segment": "changepoints",
     "check_partition": "changepoints",
     "reference_fit": "monitor",
+    "score_weights": "monitor",
     "parse_error_spec": "arma",
     "ErrorModel": "arma",
     "TrackingResult": "tracking",
@@ -71,3 +72,9 @@ def __getattr__(name: str) -> Any:
     value = getattr(importlib.import_module(f"drift.engine.{mod}"), name)
     globals()[name] = value
     return value
+
+
+# Functions that share their module's name: importing the submodule (``drift.engine.monitor``) would set
+# the package attribute to the module and shadow the lazy export, so bind these two eagerly.
+from drift.engine.cusum import cusum  # noqa: E402
+from drift.engine.monitor import monitor  # noqa: E402

@@ -383,7 +383,8 @@ def _scale_dof(scale_dof: Any, error_model: ErrorModel | None, fit: ReferenceFit
 
 def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: str = "csw",
             level: float = 0.05, window: float = 0.25, gamma: float = 0.0,
-            error_model: ErrorModel | None = None, scale_dof: Any = "auto") -> MonitorResult:
+            error_model: ErrorModel | None = None, scale_dof: Any = "auto",
+            weights: Any = None) -> MonitorResult:
     """Monitor observations ``t >= m`` against the fit frozen on the reference rows ``t < m``.
 
     Parameters
@@ -398,8 +399,18 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         finite-horizon a^2 (beyond the table: falls back to the infinite-horizon constant). The boundary
         is NaN beyond a finite horizon: no alarm is raised there.
     detector : one of ``DETECTORS``: "csw", "mosum", "page".
-    level : false-alarm probability, one of 0.5, 0.3, 0.2, 0.15, 0.1, 0.075, 0.05, 0.025, 0.01, 0.005
-        for mosum/page and finite-horizon csw; any value in (0, 1) for infinite-horizon csw.
+    level : false-alarm probability in [0.005, 0.5] for mosum/page and finite-horizon csw (between the
+        tabulated 0.5, 0.3, 0.2, 0.15, 0.1, 0.075, 0.05, 0.025, 0.01, 0.005 the critical value is interpolated
+        in log level); any value in (0, 1) for infinite-horizon csw.
+    weights : optional (T,) or (M, T) weights ``v_t`` multiplying each standardised recursive residual
+        before the partial sums, ``S_n = sum v_t w_t / sigma``. With ``v`` a driver's column orthogonalised
+        on the other regressors and scaled to unit mean square over the reference rows, ``S_n`` is the
+        score (fluctuation) process of that driver's coefficient: it drifts when the driver's effect
+        changes even if the residual mean does not (a change orthogonal to the mean regressor, to which
+        the plain residual CUSUM has no power; Ploberger & Krämer 1992). Under the null ``v_t w_t`` is a
+        martingale difference with variance ``sigma^2 v_t^2``, so the same boundaries apply provided
+        ``v_t^2`` averages one over the monitored span (a driver whose variance grows inflates the
+        false-alarm rate). NaN weights count as zero.
     window : mosum window as a fraction h of m (tabulated: 0.1, 0.25, 0.5, 1.0).
     gamma : page weight exponent (tabulated: 0.0, 0.25, 0.45); larger reacts faster early on.
     error_model : the :class:`~drift.engine.arma.ErrorModel` that prewhitened ``y`` and ``X`` (one per
@@ -456,9 +467,10 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         raise ValueError(f"detector must be one of {sorted(DETECTORS)}, got {detector!r}")
     if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
         raise ValueError(f"level must be in (0, 1), got {level!r}")
-    if detector != "csw" or horizon is not None:
-        if not any(abs(level - p) < 1e-12 for p in mon_table.TAIL_PROBS):
-            raise ValueError(f"level must be one of {mon_table.TAIL_PROBS} for this detector, got {level!r}")
+    lo_p, hi_p = min(mon_table.TAIL_PROBS), max(mon_table.TAIL_PROBS)
+    if (detector != "csw" or horizon is not None) and not lo_p - 1e-12 <= level <= hi_p + 1e-12:
+        raise ValueError(f"level must be in [{lo_p}, {hi_p}] for this detector (the simulated table's range), "
+                         f"got {level!r}")
     if detector == "mosum" and not any(abs(window - h) < 1e-12 for h in mon_table.MOSUM):
         raise ValueError(f"window must be one of {sorted(mon_table.MOSUM)}, got {window!r}")
     if detector == "page" and not any(abs(gamma - g) < 1e-12 for g in mon_table.PAGE):
@@ -480,6 +492,12 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
                                     hint="the reference rows are too few, collinear or fit exactly")
     with np.errstate(invalid="ignore"):
         z = fit.w / fit.sigma[:, None]
+    if weights is not None:
+        v = np.asarray(weights, dtype=float)
+        if v.shape not in ((T,), (M, T)):
+            raise ValueError(f"weights must have shape ({T},) or ({M}, {T}), got {v.shape}")
+        v = np.broadcast_to(v, (M, T))
+        z = z * np.where(np.isfinite(v), v, 0.0)
     S = np.cumsum(np.where(np.isfinite(z), z, 0.0), axis=1)
     det = DETECTORS[detector]
     params: dict[str, Any] = {"detector": detector, "level": level, "horizon": horizon,
@@ -519,3 +537,47 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         path=sq(path), boundary=sq(boundary), alarm_index=sq(alarm), critical_value=sq(cv_arr),
         reference=fit,
     )
+
+
+def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
+    """Weights that turn :func:`monitor` into a monitor of single coefficients (see ``weights``).
+
+    For each model and each requested column ``j``: the column orthogonalised on the other regressors by
+    the reference-period least-squares projection, ``x~_j = X c``, ``c = G^+ e_j / (G^+)_{jj}`` with
+    ``G = X_ref' X_ref`` (so ``x~_j`` is the residual of regressing ``x_j`` on the others over the
+    reference rows), divided by its root mean square over the reference rows.
+
+    Parameters
+    ----------
+    X : (T, k) or (M, T, k) regressors (NaN rows are left out of ``G``).
+    m : int or (M,) reference sizes.
+    columns : (M, J) int array of column indices per model; -1 marks "no such column" (weights 0).
+
+    Returns
+    -------
+    (M, J, T) weights; NaN where X has NaN.
+    """
+    Xb = np.asarray(X, dtype=float)
+    if Xb.ndim == 2:
+        Xb = Xb[None]
+    M, T, k = Xb.shape
+    mb = _as_m(m, M, T)
+    cols = np.asarray(columns, dtype=np.int64)
+    if cols.ndim == 1:
+        cols = np.broadcast_to(cols, (M, cols.shape[0]))
+    if cols.shape[0] != M or np.any(cols >= k):
+        raise ValueError(f"columns must be (M, J) indices below k={k} (or -1), got shape {cols.shape}")
+    ref = (np.arange(T)[None, :] < mb[:, None]) & np.isfinite(Xb).all(axis=2)
+    Xr = np.where(ref[:, :, None], Xb, 0.0)
+    G = np.einsum("mti,mtj->mij", Xr, Xr)
+    Gp = np.linalg.pinv(G, hermitian=True)
+    safe = np.where(cols >= 0, cols, 0)
+    c = np.take_along_axis(Gp, safe[:, None, :], axis=2)  # (M, k, J): columns e_j of G^+
+    dj = np.take_along_axis(np.diagonal(Gp, axis1=1, axis2=2), safe, axis=1)  # (M, J)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c = c / dj[:, None, :]
+        xt = np.einsum("mtk,mkj->mjt", Xb, c)  # (M, J, T)
+        rms = np.sqrt(np.sum(np.where(ref[:, None, :], xt, 0.0) ** 2, axis=2) / ref.sum(axis=1)[:, None])
+        out = xt / rms[:, :, None]
+    out = np.where((cols >= 0)[:, :, None] & np.isfinite(rms)[:, :, None] & (rms > 0)[:, :, None], out, 0.0)
+    return np.where(np.isfinite(Xb).all(axis=2)[:, None, :], out, np.nan)

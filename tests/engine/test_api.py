@@ -11,3 +11,10 @@ def test_every_exported_name_resolves() -> None:
 def test_contract_names_present() -> None:
     for name in ("recursive_residuals", "chow", "predictive_failure", "sup_f", "TestResult"):
         assert name in engine.__all__
+
+
+def test_functions_named_like_their_module_stay_functions() -> None:
+    import drift.engine.cusum  # noqa: F401  - importing the submodules must not shadow the functions
+    import drift.engine.monitor  # noqa: F401
+
+    assert callable(engine.monitor) and callable(engine.cusum)

@@ -42,7 +42,11 @@ def test_table_lookup_edges() -> None:
     with pytest.raises(ValueError, match="beyond"):
         mon_table.critical_value("mosum", 0.25, 100.0, 0.05)
     with pytest.raises(ValueError, match="level"):
-        mon_table.critical_value("mosum", 0.25, 1.0, 0.04)
+        mon_table.critical_value("mosum", 0.25, 1.0, 0.001)  # outside the simulated range
+    # between tabulated levels the quantile is interpolated in log level, monotone (common practice, no source)
+    c04 = mon_table.critical_value("mosum", 0.25, np.array([1.0]), 0.04)[0]
+    assert mon_table.critical_value("mosum", 0.25, np.array([1.0]), 0.05)[0] < c04 < \
+        mon_table.critical_value("mosum", 0.25, np.array([1.0]), 0.025)[0]
     # interpolation lies between its neighbours; critical values grow with the horizon
     lo, hi = (mon_table.critical_value("page", 0.0, h, 0.05)[0] for h in (1.0, 1.5))
     mid = mon_table.critical_value("page", 0.0, 1.25, 0.05)[0]
@@ -289,7 +293,9 @@ def test_bad_arguments() -> None:
     with pytest.raises(ValueError, match="detector"):
         monitor(y, X, 20, detector="nope")
     with pytest.raises(ValueError, match="level"):
-        monitor(y, X, 20, detector="mosum", level=0.04)
+        monitor(y, X, 20, detector="mosum", level=0.001)
+    with pytest.raises(ValueError, match="weights"):
+        monitor(y, X, 20, detector="page", weights=np.ones(3))
     with pytest.raises(ValueError, match="window"):
         monitor(y, X, 20, detector="mosum", window=0.3)
     with pytest.raises(ValueError, match="gamma"):

@@ -1433,14 +1433,24 @@ def critical_value(detector: str, param: float, horizon: Any, level: float, dof:
     param ignored, returns the finite-horizon a^2) at false-alarm probability ``level`` over ``horizon``,
     for a known scale (``dof`` None) or a scale estimated with ``dof`` degrees of freedom.
 
-    ``level`` must be one of TAIL_PROBS. Horizons are interpolated linearly (see :func:`_interp_horizon`
-    for the edges), dof linearly in 1/dof (see :func:`quantiles`). Returns an array shaped like
-    ``horizon``.
+    ``level`` is any probability in [min(TAIL_PROBS), max(TAIL_PROBS)]; between tabulated tail
+    probabilities the quantile is interpolated linearly in log(level) (the tail is close to exponential, so
+    this is accurate to the table's own Monte Carlo error; e.g. a Bonferroni share 0.05 / 4). Horizons are
+    interpolated linearly (see :func:`_interp_horizon` for the edges), dof linearly in 1/dof (see
+    :func:`quantiles`). Returns an array shaped like ``horizon``.
     """
+    probs = np.asarray(TAIL_PROBS)
+    if not (probs.min() - 1e-12 <= level <= probs.max() + 1e-12):
+        raise ValueError(f"level must be in [{probs.min()}, {probs.max()}], got {level!r}")
+    q = quantiles(detector, param, horizon, dof)
     j = [i for i, p in enumerate(TAIL_PROBS) if abs(p - level) < 1e-12]
-    if not j:
-        raise ValueError(f"level must be one of {TAIL_PROBS}, got {level!r}")
-    return quantiles(detector, param, horizon, dof)[..., j[0]]
+    if j:
+        return q[..., j[0]]
+    # TAIL_PROBS decrease: find the segment [hi, lo] of probabilities around level
+    i = int(np.searchsorted(-probs, -level))  # first index with prob < level
+    p_hi, p_lo = probs[i - 1], probs[i]
+    w = (np.log(p_hi) - np.log(level)) / (np.log(p_hi) - np.log(p_lo))
+    return (1.0 - w) * q[..., i - 1] + w * q[..., i]
 
 
 def pvalue(detector: str, param: float, horizon: Any, statistic: Any, dof: Any = None) -> np.ndarray:
