@@ -300,13 +300,13 @@ def _screen(group: list[_Ctx]) -> None:
         # retrospective CUSUM family
         retro_flag = []
         if cus is not None and cusq is not None and enough[i]:
-            for name, r in (("cusum", cus), ("cusum-squares", cusq)):
-                fc_idx = int(np.atleast_1d(r.first_crossing[0.05])[i])
-                rstat = _num(np.atleast_1d(r.statistic)[i])
-                cv = r.critical_values.get(0.05)
-                crit = _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
+            for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
+                fc_idx = int(np.atleast_1d(rc.first_crossing[0.05])[i])
+                rstat = _num(np.atleast_1d(rc.statistic)[i])
+                cv = rc.critical_values.get(0.05)
+                crit = None if cv is None else _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
                 date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
-                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(r.pvalue)[i]),
+                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
                                 "threshold": crit, "level": 0.05, "date": date_})
                 if fc_idx >= 0:
                     c.alarms.append({"test": name, "date": date_, "statistic": rstat, "threshold": crit,

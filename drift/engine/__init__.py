@@ -61,7 +61,7 @@ _EXPORTS: dict[str, str] = {
     "split_coefficients": "split",
 }
 
-__all__ = ["TestResult", *_EXPORTS]
+__all__ = ["TestResult", *_EXPORTS]  # noqa: PLE0604 - built from the export table
 
 
 def __getattr__(name: str) -> Any:
@@ -76,5 +76,5 @@ def __getattr__(name: str) -> Any:
 
 # Functions that share their module's name: importing the submodule (``drift.engine.monitor``) would set
 # the package attribute to the module and shadow the lazy export, so bind these two eagerly.
-from drift.engine.cusum import cusum  # noqa: E402
-from drift.engine.monitor import monitor  # noqa: E402
+from drift.engine.cusum import cusum as cusum
+from drift.engine.monitor import monitor as monitor
