@@ -5,10 +5,13 @@ The model's verdict is ``keep`` or the most pressing action. Deterministic: same
 
 False-alarm control (per model, over the monitoring horizon)
 -----------------------------------------------------------
-``refit`` needs a *sequential* monitoring detector to cross its boundary. Two detectors watch every model —
-the Chu–Stinchcombe–White recursive CUSUM (quick on early changes) and a detector quick on late changes
-(Page-type CUSUM by default) — each at ``level / 2`` (Bonferroni), so the chance that a stable model is ever
-told to refit within the horizon is at most ``level``. Retrospective tests (CUSUM and CUSUM of squares on
+``refit`` needs a *sequential* monitoring detector to cross its boundary. The detectors that watch every
+model are the Chu–Stinchcombe–White recursive CUSUM (quick on early changes) and a detector quick on late
+changes (Page-type CUSUM by default) on the recursive residuals, plus one score monitor per driver (the
+recursive residuals weighted by the driver's orthogonalised column: its coefficient's fluctuation process,
+which has power against changes the residual mean does not show). Each runs at ``level / (number of
+monitors)`` (Bonferroni, floored at the tables' 0.5%), so the chance that a stable model is ever told to
+refit within the horizon is at most ``level``. Retrospective tests (CUSUM and CUSUM of squares on
 the monitored residuals, the tracking signal) and monitoring at ``warn_level`` only give ``watch``. Change
 points and the sup-F search only *date* a break that the monitors found; they never raise one alone.
 ``drop-driver`` and ``relag`` have their own out-of-sample tests; ``data-late`` is a fact about the feed,
