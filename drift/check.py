@@ -24,6 +24,7 @@ from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import Design, build_design, next_due
+from drift.replay import h_step_errors
 from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
 
 log = logging.getLogger(__name__)
@@ -275,6 +276,10 @@ def _screen(group: list[_Ctx]) -> None:
         c.accuracy = {"model": _accuracy(np.where(mon_mask, d.y - fc, np.nan)[-chk.recent_window:], ref_scale),
                       "baseline": _accuracy((actual - base)[-chk.recent_window:], ref_scale),
                       "window": int(min(chk.recent_window, int(mon_mask.sum())))}
+        if c.model.horizon > 1:
+            eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
+            c.accuracy["h_step"] = {"horizon": c.model.horizon,
+                                    **_accuracy(np.where(mon_mask, eh, np.nan)[-chk.recent_window:], ref_scale)}
         # monitoring
         alarm_idx = None
         drivers_i = list(d.driver_columns)
