@@ -104,7 +104,7 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
             click.echo(s.describe())
             for f, msg in s.failed_files:
                 failed = True
-                click.echo(f"  not read: {f}: {msg}", err=True)
+                click.echo(f"  not read: {msg if msg.startswith(f) else f + ': ' + msg}", err=True)
         if failed:
             sys.exit(EXIT_RUNTIME)
 

@@ -93,8 +93,8 @@ class IngestSummary:
         if self.skipped:
             s += f", {self.skipped} unchanged file{'s' if self.skipped != 1 else ''} skipped"
         if self.failed_files:
-            s += f"; {len(self.failed_files)} failed ({self.failed_files[0][0]}: {self.failed_files[0][1]}"
-            s += ", ...)" if len(self.failed_files) > 1 else ")"
+            n = len(self.failed_files)
+            s += f"; {n} failed (unreadable, nothing stored from {'them' if n != 1 else 'it'})"
         return s + "."
 
     def __add__(self, other: IngestSummary) -> IngestSummary:
