@@ -23,7 +23,7 @@ from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig
 from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import Design, build_design, next_due
+from drift.panel import Design, _ns, build_design, next_due
 from drift.replay import h_step_errors
 from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
 
@@ -429,9 +429,11 @@ def _date_break(c: _Ctx, alarm_idx: int) -> int:
 # ------------------------------------------------------------------------------------------------ freshness
 def _freshness(c: _Ctx) -> None:
     m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
-    groups = {str(k): g for k, g in known.groupby("series", sort=False)}
-    last = {k: g["period"].max() for k, g in groups.items()}
-    start = d.periods[max(0, d.n - 26)]
+    # numpy views per series: period and available_at as int64 ns (first vintage of each period shown)
+    ser = known["series"].to_numpy()
+    per_ns = _ns(known["period"])
+    at_ns = _ns(known["available_at"])
+    start_ns = int(_ns(d.periods[max(0, d.n - 26):][:1])[0])
     feeds: dict[str, Any] = {}
     limit = c.cfg.check.feed_limit
     for s in m.series:
@@ -439,16 +441,18 @@ def _freshness(c: _Ctx) -> None:
         if dr is not None and dr.form != "lagged":
             continue  # planned / forecast series are not "due" on a schedule
         delay = c.cfg.driver_delay(m, dr) if dr else timedelta(0)
-        lp = last.get(s)
-        if lp is None or pd.isna(lp):
+        rows = np.flatnonzero(ser == s)
+        if rows.size == 0:
             continue
-        due = next_due(pd.Timestamp(lp), m.frequency, delay)
+        lp = pd.Timestamp(int(per_ns[rows].max()))
+        due = next_due(lp, m.frequency, delay)
         late = pd.Timestamp(c.as_of) > due
-        g = groups[s]
-        g = g[g["period"] >= start].sort_values(["period", "available_at"]).drop_duplicates("period")
-        feeds[s] = {"periods": g["period"].dt.strftime("%Y-%m-%d").tolist(),
-                    "available_at": g["available_at"].dt.tz_convert("UTC").dt.strftime(
-                        "%Y-%m-%dT%H:%M:%S+00:00").tolist(),
+        recent = rows[per_ns[rows] >= start_ns]
+        recent = recent[np.lexsort((at_ns[recent], per_ns[recent]))]
+        first = recent[np.r_[True, per_ns[recent][1:] != per_ns[recent][:-1]]] if recent.size else recent
+        feeds[s] = {"periods": np.datetime_as_string(per_ns[first].astype("datetime64[ns]"), unit="D").tolist(),
+                    "available_at": [t + "+00:00" for t in np.datetime_as_string(
+                        at_ns[first].astype("datetime64[ns]"), unit="s").tolist()],
                     "next_due": due.isoformat(), "late": bool(late), "last_period": lp.date().isoformat()}
         if late:
             c.late.add(s)

@@ -26,6 +26,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import timedelta
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -109,6 +110,25 @@ def _shift(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
     return pd.DatetimeIndex([p - pd.DateOffset(months=months) for p in periods])
 
 
+_SHIFT = np.int64(2**32)  # period code * 2^32 + seconds: one sortable int64 key per (period, time)
+
+
+def _ns(values: Any) -> np.ndarray:
+    """datetime-like values -> int64 nanoseconds (UTC for aware ones; NaT -> min int64)."""
+    idx = pd.DatetimeIndex(values)
+    if idx.tz is not None:
+        idx = idx.tz_convert("UTC").tz_localize(None)
+    return np.asarray(idx.as_unit("ns").asi8)
+
+
+def _keys(codes: np.ndarray, t_ns: np.ndarray, base: int, *, up: bool) -> np.ndarray:
+    """(period code, time) -> int64 keys; times rounded to whole seconds, ``up`` for availability times and
+    down for origins, so rounding can only make a value *later* (never reads the future)."""
+    sec = (t_ns - base) / 1e9
+    sec = np.ceil(sec) if up else np.floor(sec)
+    return codes.astype(np.int64) * _SHIFT + np.clip(sec, 0, float(_SHIFT - 1)).astype(np.int64)
+
+
 def values_as_of(vintages: pd.DataFrame, periods: pd.DatetimeIndex, origins: pd.DatetimeIndex,
                  form: str = "lagged") -> np.ndarray:
     """Value of each requested period as known at the matching origin.
@@ -118,47 +138,75 @@ def values_as_of(vintages: pd.DataFrame, periods: pd.DatetimeIndex, origins: pd.
     vintages : rows of one series with columns period, issued_at, value, available_at.
     periods, origins : equal-length requests.
     form : "lagged" (available_at <= origin), "forecast" (latest issue by the origin) or "known".
+
+    Notes
+    -----
+    Vectorised as one sorted search: vintages are keyed by (period, usable-from time) and each request by
+    (period, origin); the last key at or before the request's key with the same period is the vintage in
+    force. Times are compared in whole seconds, availability rounded up and origins down.
     """
     n = len(periods)
     out = np.full(n, np.nan)
     if vintages.empty or n == 0:
         return out
     v = vintages
-    usable_from = v["available_at"]
-    if form == "forecast" and v["issued_at"].notna().any():
-        issued = v["issued_at"].fillna(v["available_at"])
-        usable_from = pd.concat([issued, v["available_at"]], axis=1).max(axis=1)
-        # a forecast is at most as fresh as its issue; a plain value without issue time counts as planned
-    # one time resolution on both sides (pandas refuses to merge datetime64[s] with [us])
-    right = pd.DataFrame({"period": pd.DatetimeIndex(v["period"]).as_unit("ns"),
-                          "t": pd.DatetimeIndex(usable_from).tz_convert("UTC").as_unit("ns"),
-                          "value": v["value"].to_numpy(dtype=float)}).sort_values("t")
-    left = pd.DataFrame({"period": pd.DatetimeIndex(periods).as_unit("ns"),
-                         "t": pd.DatetimeIndex(origins).tz_convert("UTC").as_unit("ns"),
-                         "i": np.arange(n)}).sort_values("t")
-    m = pd.merge_asof(left, right, on="t", by="period", direction="backward")
-    out[m["i"].to_numpy()] = m["value"].to_numpy(dtype=float)
+    usable = _ns(v["available_at"])
+    has_issue = form == "forecast" and bool(v["issued_at"].notna().any())
+    if has_issue:
+        # a forecast is usable from its issue (and not before the store says it was available)
+        issued = _ns(v["issued_at"].fillna(v["available_at"]))
+        usable = np.maximum(issued, usable)
+    vp = _ns(v["period"])
+    uniq = np.unique(vp)
+    vcode = np.searchsorted(uniq, vp)
+    rp = _ns(periods)
+    rcode = np.searchsorted(uniq, rp)
+    found = (rcode < uniq.size) & (uniq[np.minimum(rcode, uniq.size - 1)] == rp)
+    base = int(min(usable.min(), _ns(origins).min())) - 10**9
+    vkey = _keys(vcode, usable, base, up=True)
+    order = np.argsort(vkey, kind="stable")
+    vkey_s = vkey[order]
+    vals = v["value"].to_numpy(dtype=float)[order]
+    rkey = _keys(rcode, _ns(origins), base, up=False)
+    pos = np.searchsorted(vkey_s, rkey, side="right") - 1
+    ok = found & (pos >= 0)
+    ok[ok] &= (vkey_s[pos[ok]] // _SHIFT) == rcode[ok]
+    out[ok] = vals[pos[ok]]
     if form in ("known", "forecast"):
-        missing = np.isnan(out)
+        missing = np.isnan(out) & found
         if missing.any():
-            first = (right.sort_values("t").drop_duplicates("period", keep="first").set_index("period")["value"])
-            if form == "forecast" and v["issued_at"].notna().any():
-                # only values without an issue time count as planned in advance
-                plain = v[v["issued_at"].isna()]
-                first = plain.sort_values("available_at").drop_duplicates("period").set_index("period")["value"]
-            first.index = pd.DatetimeIndex(first.index).as_unit("ns")
-            fill = pd.Series(pd.DatetimeIndex(periods[missing]).as_unit("ns")).map(first).to_numpy(dtype=float)
-            out[np.flatnonzero(missing)] = fill
+            plain = np.ones(len(v), bool) if not has_issue else v["issued_at"].isna().to_numpy()
+            # the first plan stored for each period (earliest usable-from among the plain values)
+            cand = np.flatnonzero(plain)
+            if cand.size:
+                c_order = cand[np.lexsort((usable[cand], vcode[cand]))]
+                first_code, first_at = np.unique(vcode[c_order], return_index=True)
+                first_val = v["value"].to_numpy(dtype=float)[c_order[first_at]]
+                k = np.searchsorted(first_code, rcode[missing])
+                hit = (k < first_code.size) & (first_code[np.minimum(k, first_code.size - 1)] == rcode[missing])
+                fill = np.full(int(missing.sum()), np.nan)
+                fill[hit] = first_val[k[hit]]
+                out[np.flatnonzero(missing)] = fill
     return out
 
 
 def latest_values(vintages: pd.DataFrame, periods: pd.DatetimeIndex) -> np.ndarray:
-    """Latest known vintage of each period (the 'final' data)."""
-    if vintages.empty:
-        return np.full(len(periods), np.nan)
-    last = vintages.sort_values("available_at").drop_duplicates("period", keep="last").set_index("period")["value"]
-    last.index = pd.DatetimeIndex(last.index).as_unit("ns")
-    return pd.Series(pd.DatetimeIndex(periods).as_unit("ns")).map(last).to_numpy(dtype=float)
+    """Latest known vintage of each period (the 'final' data): the one with the latest available_at."""
+    out = np.full(len(periods), np.nan)
+    if vintages.empty or len(periods) == 0:
+        return out
+    vp = _ns(vintages["period"])
+    at = _ns(vintages["available_at"])
+    order = np.lexsort((np.arange(len(vp)), at, vp))  # by period, then time, then row order
+    vp_s = vp[order]
+    last = np.r_[vp_s[1:] != vp_s[:-1], True]  # last row of each period
+    per = vp_s[last]
+    val = vintages["value"].to_numpy(dtype=float)[order][last]
+    rp = _ns(periods)
+    k = np.searchsorted(per, rp)
+    hit = (k < per.size) & (per[np.minimum(k, per.size - 1)] == rp)
+    out[hit] = val[k[hit]]
+    return out
 
 
 def deterministic_columns(model: ModelConfig, periods: pd.DatetimeIndex,
