@@ -55,7 +55,11 @@ def _num(x: Any) -> float | None:
 
 
 def _list(a: np.ndarray) -> list[float | None]:
-    return [None if not np.isfinite(v) else round(float(v), 6) for v in np.asarray(a, float)]
+    """Floats rounded to 6 decimals for the payload, NaN/inf as None (strict JSON)."""
+    x = np.asarray(a, float)
+    out = np.round(x, 6).astype(object)
+    out[~np.isfinite(x)] = None
+    return out.tolist()  # type: ignore[no-any-return]
 
 
 @dataclass

@@ -139,6 +139,30 @@ class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
         return float(r @ r)
 
 
+class _CumL2(rpt.base.BaseCost):  # type: ignore[misc]
+    """Sum of squared deviations from the segment mean, O(1) per segment from cumulative sums.
+
+    Same value as ruptures' ``CostL2`` (which recomputes the variance of every candidate segment, the
+    dominant cost of a jump=1 search); the series is centred first so the running sums stay accurate.
+    """
+
+    model = "l2_cumulative"
+    min_size = 1
+
+    def fit(self, signal: FloatArray) -> _CumL2:
+        self.signal = np.asarray(signal, dtype=float).reshape(len(signal), -1)
+        v = self.signal[:, 0] - self.signal[:, 0].mean()
+        self.s1 = np.concatenate([[0.0], np.cumsum(v)])
+        self.s2 = np.concatenate([[0.0], np.cumsum(v * v)])
+        return self
+
+    def error(self, start: int, end: int) -> float:
+        if end - start < self.min_size:
+            raise rpt.costs.NotEnoughPoints
+        s1 = self.s1[end] - self.s1[start]
+        return float(max(self.s2[end] - self.s2[start] - s1 * s1 / (end - start), 0.0))
+
+
 def _ols(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
     coef, *_ = np.linalg.lstsq(X, y, rcond=None)
     return np.asarray(coef, dtype=np.float64), np.asarray(y - X @ coef, dtype=np.float64)
@@ -289,7 +313,7 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
         else:
             signal = yi[:, None] if cost == "l2" else np.column_stack([yi, Xi])
             if cost == "l2":
-                algo = METHODS[method](model="l2", min_size=ms, jump=1).fit(signal)
+                algo = METHODS[method](custom_cost=_CumL2(), min_size=ms, jump=1).fit(signal)
             else:
                 algo = METHODS[method](custom_cost=_LinearRSS(), min_size=ms, jump=1).fit(signal)
             if method == "pelt":

@@ -159,3 +159,17 @@ def test_rank_deficient_segment_is_not_free() -> None:
     ref = rpt.Pelt(model="linear", min_size=15, jump=1).fit(np.column_stack([y, X])).predict(pen=3 * np.log(n))
     assert len(ref) > 1  # the trap: plain ruptures finds spurious changes here
     assert change_points(y, X, sigma2=1.0).break_indices == ()
+
+
+def test_cumulative_l2_cost_equals_ruptures_costl2() -> None:
+    # reference: ruptures 1.1.10 CostL2 (segment sum of squared deviations); invented data
+    import ruptures as rpt
+
+    from drift.engine.changepoints import _CumL2
+
+    rng = np.random.default_rng(42)
+    sig = 1e4 + rng.normal(size=(120, 1)).cumsum(axis=0)
+    ref = rpt.costs.CostL2().fit(sig)
+    ours = _CumL2().fit(sig)
+    for a, b in [(0, 120), (3, 17), (50, 51), (90, 120), (10, 60)]:
+        assert ours.error(a, b) == pytest.approx(ref.error(a, b), rel=1e-9, abs=1e-6)
