@@ -65,7 +65,8 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
         entry: dict[str, Any] = {"series": s, "lag": d.lags.get(s)}
         if sp is not None:
             entry.update(coef_before=_num(sp.before[i]), coef_after=_num(sp.after[i]),
-                         ci_before=[_num(v) for v in sp.ci_before[i]], ci_after=[_num(v) for v in sp.ci_after[i]])
+                         ci_before=[_num(v) for v in sp.ci_before[i]], ci_after=[_num(v) for v in sp.ci_after[i]],
+                         pvalue_change=_num(sp.pvalue_diff[i]))
         else:
             entry.update(coef_before=None, coef_after=None, ci_before=None, ci_after=None)
         drivers.append(entry)
@@ -86,10 +87,12 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
         verdict = "refit"
         moved = []
         if sp is not None:
+            # a driver's effect "moved" when the t test of its change (the interaction term) rejects at
+            # the level, Bonferroni over the drivers
+            n_d = max(len(d.driver_columns), 1)
             for i, s in enumerate(d.driver_columns):
-                lo, hi = sp.ci_after[i]
                 b, a = sp.before[i], sp.after[i]
-                if not (sp.ci_before[i][0] <= a <= sp.ci_before[i][1]):
+                if np.isfinite(sp.pvalue_diff[i]) and sp.pvalue_diff[i] < level / n_d:
                     moved.append(f"the {s} effect {pct_change(b, a)} ({fmt_num(b)} → {fmt_num(a)})")
         what = "; ".join(moved) if moved else "the relationship shifted (level or several coefficients together)"
         reason = (f"{what[0].upper() + what[1:]} after the shock; {label} p = {p:.2g} "
