@@ -203,6 +203,8 @@ def demo(out: str) -> None:
         click.echo(f"report: {res.report}")
         if res.report_html:
             click.echo(f"report (HTML): {res.report_html}")
+        if res.digest:
+            click.echo(f"weekly digest (HTML, charts embedded): {res.digest}")
 
     _run(go)
 

@@ -81,6 +81,7 @@ class DemoResult:
     config: Path
     report: Path
     report_html: Path | None
+    digest: Path | None = None
 
 
 def generate(out: Path) -> Path:
@@ -127,7 +128,7 @@ def generate(out: Path) -> Path:
 def run_demo(out: str | Path = "drift-demo") -> DemoResult:
     """Generate, ingest, check and write the report; returns where things are."""
     from drift.config import load_config
-    from drift.pipeline import run_check, run_ingest
+    from drift.pipeline import run_check, run_digest, run_ingest
     from drift.report import write_report
     from drift.store import open_store
 
@@ -143,6 +144,7 @@ def run_demo(out: str | Path = "drift-demo") -> DemoResult:
         run_ingest(cfg, store, progress=False)
         outcome = run_check(cfg, store, as_of=AS_OF)
         md, html = write_report(cfg, store, outcome, out / "report")
+        dg = run_digest(cfg, store)
     finally:
         store.dispose()
-    return DemoResult(out=out, config=cfg_path, report=md, report_html=html)
+    return DemoResult(out=out, config=cfg_path, report=md, report_html=html, digest=Path(dg.path))

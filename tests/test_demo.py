@@ -11,6 +11,7 @@ from drift.demo import run_demo
 def test_demo_runs_and_tells_its_three_stories(tmp_path: Path) -> None:
     res = run_demo(tmp_path / "demo")
     assert res.report.exists() and res.report_html is not None and res.report_html.exists()
+    assert res.digest is not None and res.digest.exists() and "data:image/png;base64," in res.digest.read_text()
     text = res.report.read_text(encoding="utf-8")
     assert "north: keep" in text
     assert "east: refit" in text
