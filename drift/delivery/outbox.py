@@ -262,6 +262,14 @@ class DeliveryReport:
     def ok(self) -> bool:
         return self.failed == 0 and self.uncertain == 0 and self.deferred == 0
 
+    def describe(self) -> str:
+        """A few lines for the CLI."""
+        lines = [f"outbox: {self.sent} sent, {self.failed} failed (kept, retried later), "
+                 f"{self.uncertain} uncertain (not resent; see drift status), {self.deferred} deferred, "
+                 f"{self.pending} still pending"]
+        lines += [f"  {e.channel}: {e.error}" for e in self.errors]
+        return "\n".join(lines)
+
 
 def _message(row: Any) -> OutboxMessage:
     try:
