@@ -234,12 +234,34 @@ def deterministic_columns(model: ModelConfig, periods: pd.DatetimeIndex,
             cols.append(np.cos(ang))
             names.append(f"cos{j}")
     elif s is not None and pp.method == "dummies":
-        si = int(round(s))
-        pos = np.arange(n) % si
+        pos, si = season_position(model, periods)
         for j in range(1, si):
-            cols.append((pos == j).astype(float))
-            names.append(f"season{j}")
+            col = (pos == j).astype(float)
+            if col[:n_ref].any():  # a position never seen in the reference period cannot be estimated
+                cols.append(col)
+                names.append(f"season{j}")
     return np.column_stack(cols), names
+
+
+def season_position(model: ModelConfig, periods: pd.DatetimeIndex) -> tuple[np.ndarray, int]:
+    """Calendar position of each period within the season, and the number of positions.
+
+    ``season: auto`` follows the calendar, so that a season of 365.25 days does not drift against a
+    fixed cycle: weekly data by ISO week of the year (week 53 counted with week 52), monthly by month,
+    quarterly by quarter, daily by weekday. An explicit integer season is a plain cycle of that length.
+    """
+    if model.preprocess.season != "auto":
+        si = int(model.preprocess.season)
+        return np.arange(len(periods)) % si, si
+    f = model.frequency
+    if f == "W":
+        wk = np.asarray(pd.DatetimeIndex(periods).isocalendar().week, dtype=int)
+        return np.minimum(wk, 52) - 1, 52
+    if f == "M":
+        return np.asarray(periods.month) - 1, 12
+    if f == "Q":
+        return np.asarray(periods.quarter) - 1, 4
+    return np.asarray(periods.weekday), 7
 
 
 def _season_length(model: ModelConfig) -> float | None:
@@ -250,8 +272,9 @@ def _season_length(model: ModelConfig) -> float | None:
     return float(model.preprocess.season)
 
 
-def _stl_profile(values: np.ndarray, n_ref: int, s: float) -> np.ndarray:
-    """Seasonal component estimated by STL on the reference rows, repeated forward."""
+def _stl_profile(values: np.ndarray, n_ref: int, s: float, pos: np.ndarray, npos: int) -> np.ndarray:
+    """Seasonal component estimated by STL on the reference rows, averaged by calendar position
+    (:func:`season_position`) and carried forward by position (no look-ahead)."""
     from statsmodels.tsa.seasonal import STL
 
     si = int(round(s))
@@ -260,8 +283,11 @@ def _stl_profile(values: np.ndarray, n_ref: int, s: float) -> np.ndarray:
         raise InsufficientDataError("STL seasonal adjustment", 2 * si + 1, int(np.isfinite(ref).sum()),
                                     "use method: fourier or a longer reference period")
     seasonal = STL(ref, period=si, robust=True).fit().seasonal
-    profile = np.array([seasonal[np.arange(j, n_ref, si)].mean() for j in range(si)])
-    return profile[np.arange(len(values)) % si]
+    sums = np.bincount(pos[:n_ref], weights=seasonal, minlength=npos)
+    counts = np.bincount(pos[:n_ref], minlength=npos)
+    with np.errstate(invalid="ignore"):
+        profile = np.where(counts > 0, sums / np.maximum(counts, 1), 0.0)
+    return profile[pos]
 
 
 def build_design(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: pd.Timestamp, *,
@@ -305,7 +331,8 @@ def build_design(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: pd.T
     s = _season_length(model)
     stl = s is not None and model.preprocess.method == "stl"
     if stl:
-        y = y - _stl_profile(y, n_ref, s)  # type: ignore[arg-type]
+        spos, snpos = season_position(model, periods)
+        y = y - _stl_profile(y, n_ref, s, spos, snpos)  # type: ignore[arg-type]
     k = det.shape[1]
     for d in model.drivers:
         if d.series in drop:
@@ -314,7 +341,7 @@ def build_design(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: pd.T
         vint = by_series.get(d.series, obs.iloc[0:0])
         x = values_as_of(vint, _shift(periods, f, lag), origins, d.form)
         if stl:
-            x = x - _stl_profile(x, n_ref, s)  # type: ignore[arg-type]
+            x = x - _stl_profile(x, n_ref, s, spos, snpos)  # type: ignore[arg-type]
         cols.append(x[:, None])
         names.append(f"{d.series}[L{lag}]" if lag else d.series)
         driver_columns[d.series] = k

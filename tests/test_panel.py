@@ -153,3 +153,25 @@ def test_future_vintages_do_not_change_the_replay(tmp_path):
     j = d0.driver_columns["xl"]
     np.testing.assert_array_equal(d0.X[:, j], d1.X[:, j])
     assert not (d1.X[:, j] == 1e9).any()
+
+
+def test_calendar_season_positions_do_not_drift(tmp_path) -> None:
+    # common practice, no source: weekly seasonal dummies by ISO week, so a 365.25-day year does not drift
+    # against a fixed 52-week cycle; monthly by calendar month
+    from drift.config import load_config
+    from drift.panel import season_position
+
+    (tmp_path / "c.yaml").write_text(
+        "models:\n  - name: m\n    target: y\n    frequency: W\n    reference: {start: 2021-01-04, end: 2023-12-25}\n"
+        "    preprocess: {method: dummies}\n", encoding="utf-8")
+    m = load_config(tmp_path / "c.yaml").models[0]
+    weeks = pd.date_range("2021-01-04", "2026-12-28", freq="7D")
+    pos, n = season_position(m, weeks)
+    assert n == 52
+    # the first Monday of each January is ISO week 1 in these years, so it always gets position 0
+    firsts = [i for i, w in enumerate(weeks) if w.month == 1 and w.day <= 7]
+    assert all(pos[i] == 0 for i in firsts)
+    months = pd.date_range("2021-01-01", periods=30, freq="MS")
+    mm = m.model_copy(update={"frequency": "M"})
+    pos_m, n_m = season_position(mm, months)
+    assert n_m == 12 and list(pos_m[:13]) == [*range(12), 0]

@@ -539,23 +539,41 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     )
 
 
+#: pseudo-rows of the reference-implied variance in the running scale of :func:`score_weights`
+PRIOR_ROWS_FRACTION = 0.25
+PRIOR_ROWS_MIN = 13
+
+
 def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
     """Weights that turn :func:`monitor` into a monitor of single coefficients (see ``weights``).
 
     For each model and each requested column ``j``: the column orthogonalised on the other regressors by
-    the reference-period least-squares projection, ``x~_j = X c``, ``c = G^+ e_j / (G^+)_{jj}`` with
-    ``G = X_ref' X_ref`` (so ``x~_j`` is the residual of regressing ``x_j`` on the others over the
-    reference rows), divided by its root mean square over the reference rows.
+    the reference-period least-squares projection, ``x~_t = x_tj - g' x_t,-j`` (``g`` from regressing
+    ``x_j`` on the other columns over the reference rows), divided by its own standard error at that row,
+    ``s * sqrt(1 + h_t)`` for a monitored row, where ``s^2 = sum_ref x~^2 / (m - k + 1)`` and
+    ``h_t = x_t,-j' (X_ref,-j' X_ref,-j)^{-1} x_t,-j`` is the row's leverage — the variance the reference
+    fit implies for that row — pooled with the running mean square of ``x~`` over the monitored rows up to
+    ``t`` (the prior counting as ``max(13, m/4)`` rows). The weights then have mean square close to one
+    over the monitored span whatever the number of regressors, how far a trend column is extrapolated or
+    how the driver's own variability moves, which the boundaries of :func:`monitor` assume (an in-sample
+    normalisation would understate the variance by about ``(1 + k/m) / (1 - k/m)`` and raise false
+    alarms in models with many columns). Each weight uses rows up to its own only.
 
     Parameters
     ----------
-    X : (T, k) or (M, T, k) regressors (NaN rows are left out of ``G``).
+    X : (T, k) or (M, T, k) regressors (NaN rows are left out of the reference fit).
     m : int or (M,) reference sizes.
     columns : (M, J) int array of column indices per model; -1 marks "no such column" (weights 0).
 
     Returns
     -------
     (M, J, T) weights; NaN where X has NaN.
+
+    Notes
+    -----
+    With ``G = X_ref' X_ref`` and ``P = G^+``: ``x~ = X P e_j / P_jj`` and
+    ``(X_-j' X_-j)^{-1}``, embedded with a zero row and column j, is ``P - P e_j e_j' P / P_jj``
+    (Schur complement), so every driver is handled from the one inverse.
     """
     Xb = np.asarray(X, dtype=float)
     if Xb.ndim == 2:
@@ -567,17 +585,34 @@ def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
         cols = np.broadcast_to(cols, (M, cols.shape[0]))
     if cols.shape[0] != M or np.any(cols >= k):
         raise ValueError(f"columns must be (M, J) indices below k={k} (or -1), got shape {cols.shape}")
-    ref = (np.arange(T)[None, :] < mb[:, None]) & np.isfinite(Xb).all(axis=2)
-    Xr = np.where(ref[:, :, None], Xb, 0.0)
+    finite = np.isfinite(Xb).all(axis=2)
+    ref = (np.arange(T)[None, :] < mb[:, None]) & finite
+    X0 = np.where(finite[:, :, None], Xb, 0.0)
+    Xr = np.where(ref[:, :, None], X0, 0.0)
     G = np.einsum("mti,mtj->mij", Xr, Xr)
-    Gp = np.linalg.pinv(G, hermitian=True)
+    P = np.linalg.pinv(G, hermitian=True)
     safe = np.where(cols >= 0, cols, 0)
-    c = np.take_along_axis(Gp, safe[:, None, :], axis=2)  # (M, k, J): columns e_j of G^+
-    dj = np.take_along_axis(np.diagonal(Gp, axis1=1, axis2=2), safe, axis=1)  # (M, J)
+    pj = np.take_along_axis(P, safe[:, None, :], axis=2).transpose(0, 2, 1)  # (M, J, k): rows P e_j
+    pjj = np.take_along_axis(np.diagonal(P, axis1=1, axis2=2), safe, axis=1)  # (M, J)
     with np.errstate(invalid="ignore", divide="ignore"):
-        c = c / dj[:, None, :]
-        xt = np.einsum("mtk,mkj->mjt", Xb, c)  # (M, J, T)
-        rms = np.sqrt(np.sum(np.where(ref[:, None, :], xt, 0.0) ** 2, axis=2) / ref.sum(axis=1)[:, None])
-        out = xt / rms[:, :, None]
-    out = np.where((cols >= 0)[:, :, None] & np.isfinite(rms)[:, :, None] & (rms > 0)[:, :, None], out, 0.0)
-    return np.where(np.isfinite(Xb).all(axis=2)[:, None, :], out, np.nan)
+        c = pj / pjj[:, :, None]
+        xt = np.einsum("mtk,mjk->mjt", X0, c)  # (M, J, T)
+        B = P[:, None, :, :] - pj[:, :, :, None] * pj[:, :, None, :] / pjj[:, :, None, None]
+        h = np.einsum("mti,mjik,mtk->mjt", X0, B, X0)  # leverage of x_-j at each row
+        n_ref = ref.sum(axis=1).astype(float)
+        s2 = np.sum(np.where(ref[:, None, :], xt, 0.0) ** 2, axis=2) / np.maximum(n_ref - k + 1, 1.0)[:, None]
+        monitored = ~(np.arange(T)[None, :] < mb[:, None])
+        prior = s2[:, :, None] * (1.0 + h)  # out-of-sample variance implied by the reference fit
+        # running mean square of x~ over the monitored rows so far, shrunk towards the prior with the
+        # weight of PRIOR_ROWS pseudo-rows: adapts when the driver's own variability (or the error of the
+        # extrapolated projection, e.g. of a trend under autocorrelated drivers) differs from the
+        # reference's, using only rows up to t (the weights stay predictable: no look-ahead)
+        sq = np.where(monitored[:, None, :] & np.isfinite(xt), xt * xt, 0.0)
+        cnt = np.cumsum(monitored[:, None, :] & np.isfinite(xt), axis=2)
+        p0 = np.maximum(PRIOR_ROWS_MIN, PRIOR_ROWS_FRACTION * mb)[:, None, None]
+        run = (p0 * prior + np.cumsum(sq, axis=2)) / (p0 + cnt)
+        var = np.where(monitored[:, None, :], run, s2[:, :, None] * np.maximum(1.0 - h, 1e-12))
+        out = xt / np.sqrt(var)
+    good = (cols >= 0) & np.isfinite(s2) & (s2 > 0)
+    out = np.where(good[:, :, None], out, 0.0)
+    return np.where(finite[:, None, :], out, np.nan)
