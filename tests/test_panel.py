@@ -168,9 +168,13 @@ def test_calendar_season_positions_do_not_drift(tmp_path) -> None:
     weeks = pd.date_range("2021-01-04", "2026-12-28", freq="7D")
     pos, n = season_position(m, weeks)
     assert n == 52
-    # the first Monday of each January is ISO week 1 in these years, so it always gets position 0
-    firsts = [i for i, w in enumerate(weeks) if w.month == 1 and w.day <= 7]
-    assert all(pos[i] == 0 for i in firsts)
+    iso = np.asarray(weeks.isocalendar().week, dtype=int)
+    assert np.array_equal(pos, np.minimum(iso, 52) - 1) and pos.max() == 51
+    # the week containing 15 June lands within one position of itself every year (no drift: a fixed
+    # 52-week cycle would have moved it by more than a week over these six years)
+    june = [i for i, w in enumerate(weeks) if w.month == 6 and w.day <= 15 < w.day + 7]
+    assert max(pos[i] for i in june) - min(pos[i] for i in june) <= 1
+    assert max(i % 52 for i in june) - min(i % 52 for i in june) > 1
     months = pd.date_range("2021-01-01", periods=30, freq="MS")
     mm = m.model_copy(update={"frequency": "M"})
     pos_m, n_m = season_position(mm, months)
