@@ -443,7 +443,8 @@ def _freshness(c: _Ctx) -> None:
     for s in m.series:
         dr = next((x for x in m.drivers if x.series == s), None)
         if dr is not None and dr.form != "lagged":
-            continue  # planned / forecast series are not "due" on a schedule
+            _forward_feed(c, dr, ser, per_ns, feeds)
+            continue
         delay = c.cfg.driver_delay(m, dr) if dr else timedelta(0)
         rows = np.flatnonzero(ser == s)
         if rows.size == 0:
@@ -471,6 +472,36 @@ def _freshness(c: _Ctx) -> None:
                                     extra={"driver": s, "last_period": lp.date().isoformat(),
                                            "missing_periods": int(missing)}))
     c.charts["feeds"] = feeds
+
+
+def _forward_feed(c: _Ctx, dr: Any, ser: np.ndarray, per_ns: np.ndarray, feeds: dict[str, Any]) -> None:
+    """A forecast or planned driver is late when the forecast of the current period had to be made
+    without it: no forecast (or plan) of the period it needs was stored by the check's moment."""
+    from drift.config import period_start
+    from drift.panel import _shift, week_anchor
+
+    m = c.model
+    moment = pd.Timestamp(c.as_of) - pd.Timedelta(microseconds=1)
+    cur = period_start(moment.tz_convert("UTC").tz_localize(None), m.frequency, week_anchor=week_anchor(m))
+    need = _shift(pd.DatetimeIndex([cur]), m.frequency, dr.lag)[0]
+    rows = np.flatnonzero(ser == dr.series)
+    have = per_ns[rows]
+    last = pd.Timestamp(int(have.max())) if have.size else None
+    late = not bool(np.any(have == int(_ns(pd.DatetimeIndex([need]))[0])))
+    kind = "forecast" if dr.form == "forecast" else "plan"
+    feeds[dr.series] = {"periods": [], "available_at": [], "next_due": cur.tz_localize("UTC").isoformat(),
+                        "late": late, "last_period": last.date().isoformat() if last is not None else None,
+                        "form": dr.form}
+    if late:
+        c.late.add(dr.series)
+        covers = f"its latest {kind} covers the period starting {last.date().isoformat()}" if last is not None \
+            else f"no {kind} of it is stored at all"
+        c.actions.append(Action("data-late", extra={
+            "driver": dr.series, "last_period": last.date().isoformat() if last is not None else None,
+            "missing_periods": 1}, reason=(
+                f"The {kind} feed '{dr.series}' is late: the forecast for the period starting "
+                f"{cur.date().isoformat()} needed its {kind} for the period starting {need.date().isoformat()}, "
+                f"and none had arrived; {covers}.")))
 
 
 def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:

@@ -51,6 +51,7 @@ sources:
     period_column: week
     series_column: series
     value_column: planned
+    available_column: planned_on
 models:
 {models}
 check:
@@ -111,8 +112,13 @@ def generate(out: Path) -> Path:
         if name == "west":
             xo = np.where(weeks > pd.Timestamp(WEST_STOP), np.nan, xo)
         orders[f"web_orders_{name}"] = xo
-        camp_rows += [{"week": w.date().isoformat(), "series": f"campaign_{name}", "planned": int(c)}
-                      for w, c in zip(weeks, camp)]
+        # the campaign calendar is planned ahead: it runs eight weeks past the last actuals
+        ahead = pd.date_range(weeks[-1] + pd.Timedelta(days=7), periods=8, freq="7D")
+        camp_ahead = (rng.random(len(ahead)) < 0.12).astype(int)
+        # each campaign week was planned eight weeks before it starts (the planning date is in the file)
+        camp_rows += [{"week": w.date().isoformat(), "series": f"campaign_{name}", "planned": int(c),
+                       "planned_on": (w - pd.Timedelta(weeks=8)).date().isoformat()}
+                      for w, c in zip([*weeks, *ahead], [*camp, *camp_ahead])]
     data = out / "data"
     data.mkdir(parents=True, exist_ok=True)
     wk = [w.date().isoformat() for w in weeks]

@@ -263,7 +263,7 @@ def _ingest_batch(store: Store, source: SourceConfig, raw: RawTable, now: dateti
     good = checked.good
     with store.begin() as conn:
         latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist()) if len(good) else None
-        new, n_known, n_revised = _classify(good, latest, now)
+        new, n_known, n_revised = _classify(good, latest, now, rules.forward)
         qrows = _new_quarantine(conn, source, raw.label, checked.quarantine)
         started = now
         res = conn.execute(batches.insert().values(
@@ -293,8 +293,8 @@ def _ingest_batch(store: Store, source: SourceConfig, raw: RawTable, now: dateti
                          quarantined=len(qrows))
 
 
-def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime
-              ) -> tuple[pd.DataFrame, int, int]:
+def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime,
+              forward_series: frozenset[str] = frozenset()) -> tuple[pd.DataFrame, int, int]:
     """The rows to write (with their available_at and a ``revised`` flag), and the known / revised counts."""
     if good.empty:
         return good.assign(revised=np.zeros(0, dtype=bool)), 0, 0
@@ -318,6 +318,10 @@ def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime
     is_fc = out["issued_at"].notna().to_numpy()
     default[is_fc] = out["issued_at"][is_fc]
     default = default.fillna(now_ts)
+    # a plan (or a forecast without an issue time) of a period that has not ended yet cannot wait for its
+    # period's end: it is available from when it was ingested
+    forward = out["series"].isin(forward_series).to_numpy() & (default > now_ts).to_numpy()
+    default[forward] = now_ts
     default[rev] = now_ts
     out["available_at"] = out["available_at"].fillna(default) if len(out) else out["available_at"]
     out["revised"] = rev

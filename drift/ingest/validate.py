@@ -99,6 +99,8 @@ class SeriesRules:
             for s in m.series:
                 self._anchor.setdefault(s, m.reference.start.weekday())
         self._delays = cfg.series_delays()
+        #: series some model uses as a forecast or known-in-advance driver (values for future periods)
+        self.forward = frozenset(d.series for m in cfg.models for d in m.drivers if d.form != "lagged")
 
     def rule(self, series: str, source: SourceConfig) -> SeriesRule:
         freq = self._freq.get(series)
