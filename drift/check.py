@@ -40,12 +40,6 @@ def as_of_moment(day: date) -> datetime:
     return datetime.combine(day + timedelta(days=1), time(0), tzinfo=timezone.utc)
 
 
-def _iso(ts: Any) -> str | None:
-    if ts is None or (isinstance(ts, float) and math.isnan(ts)) or ts is pd.NaT:
-        return None
-    return pd.Timestamp(ts).date().isoformat()
-
-
 def _num(x: Any) -> float | None:
     try:
         v = float(x)
@@ -78,21 +72,6 @@ class CheckOutcome:
 
 
 # ------------------------------------------------------------------------------------------------ helpers
-def _stack(designs: Sequence[Design]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Stack designs with equal k into (M, N) / (M, N, k), padding at the front with NaN rows."""
-    N = max(d.n for d in designs)
-    k = designs[0].k
-    Y = np.full((len(designs), N), np.nan)
-    X = np.full((len(designs), N, k), np.nan)
-    off = np.zeros(len(designs), int)
-    for i, d in enumerate(designs):
-        o = N - d.n
-        Y[i, o:] = d.y
-        X[i, o:] = d.X
-        off[i] = o
-    return Y, X, off
-
-
 def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None, float]:
     """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``).
 
@@ -121,7 +100,7 @@ def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, s
 
 
 def _seasonal_naive(y: np.ndarray, s: float | None) -> np.ndarray:
-    lag = int(round(s)) if s else 1
+    lag = round(s) if s else 1
     out = np.full_like(y, np.nan)
     out[lag:] = y[:-lag]
     return out
@@ -268,8 +247,9 @@ def _screen(group: list[_Ctx]) -> None:
         c.charts["periods"] = [p.date().isoformat() for p in d.periods]
         c.charts["monitor_start_index"] = int(d.n_ref)
         fe = rf.forecast_error[i, sl]
-        # as-deployed one-step forecasts of the original target (the prewhitened model forecasts y~)
-        fc = d.y - fe if c.error_model is None else d.y - _unfilter_error(c, fe)
+        # as-deployed one-step forecasts of the target. With AR errors the one-step error of y equals that
+        # of the prewhitened y~ (y_t - x_t'b - phi (y_{t-1} - x_{t-1}'b) = y~_t - x~_t'b), so one formula
+        fc = d.y - fe
         base = _seasonal_naive(d.y, d.season_length)
         mon_mask = np.arange(d.n) >= d.n_ref
         actual = np.where(mon_mask, d.y, np.nan)
@@ -351,12 +331,6 @@ def _screen(group: list[_Ctx]) -> None:
                 c.actions.append(Action("watch", severity="watch", reason=(
                     f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
                     f"{chk.level:.0%} level. Keep the model, look again next week.")))
-
-
-def _unfilter_error(c: _Ctx, fe: np.ndarray) -> np.ndarray:
-    """Forecast error on the original scale for a prewhitened model (AR part; MA approximated)."""
-    # y_t = x_t'b + u_t, u_t = phi u_{t-1} + e_t: the one-step forecast error of y equals that of y~.
-    return fe
 
 
 
