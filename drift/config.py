@@ -44,7 +44,7 @@ MAX_LAG_BY_FREQ = {"D": 14, "W": 8, "M": 3, "Q": 2}
 _DURATION_RE = re.compile(
     r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|secs|second|seconds|m|min|mins|minute|minutes|h|hour|hours|"
     r"d|day|days|w|week|weeks)\s*$",
-    re.I,
+    re.IGNORECASE,
 )
 _UNIT_SECONDS = {
     "s": 1, "sec": 1, "secs": 1, "second": 1, "seconds": 1,
@@ -55,7 +55,7 @@ _UNIT_SECONDS = {
 }
 
 
-def parse_duration(text: str | int | float | timedelta) -> timedelta:
+def parse_duration(text: str | float | timedelta) -> timedelta:
     """Parse ``"2 days"``, ``"36h"``, ``"10m"``, ``"1 week"`` (or a number of days) into a timedelta."""
     if isinstance(text, timedelta):
         return text
@@ -155,7 +155,7 @@ class PreprocessConfig(_Strict):
         return v
 
 
-_ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\))\s*$", re.I)
+_ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\))\s*$", re.IGNORECASE)
 
 
 class ModelConfig(_Strict):
@@ -293,7 +293,7 @@ class AlertsConfig(_Strict):
     )
 
 
-_EVERY_RE = re.compile(r"^\s*every\s+(\d+)\s*([smhd])\s*$", re.I)
+_EVERY_RE = re.compile(r"^\s*every\s+(\d+)\s*([smhd])\s*$", re.IGNORECASE)
 
 
 def parse_trigger(text: str) -> tuple[str, Any]:

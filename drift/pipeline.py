@@ -11,7 +11,7 @@ from typing import Any
 from drift.check import CheckOutcome, run_check
 from drift.config import Config
 
-__all__ = ["CheckOutcome", "run_check", "run_ingest", "run_deliver", "run_digest"]
+__all__ = ["CheckOutcome", "run_check", "run_deliver", "run_digest", "run_ingest"]
 
 
 def run_ingest(cfg: Config, store: Any, *, sources: list[str] | None = None,
