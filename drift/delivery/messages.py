@@ -156,13 +156,15 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
         out.append(("Last period received", fmt(detail.get("last_period") or drv.get("last_period"))))
     if action == "data-late" and drv.get("next_due") is not None:
         out.append(("Next value was due", fmt(drv["next_due"])))
-    for a in ctx.get("alarms") or []:
+    # the statistics behind a relationship verdict; a feed or driver-worth notice has its own numbers
+    evidence = action in ("refit", "watch")
+    for a in (ctx.get("alarms") or []) if evidence else []:
         if not isinstance(a, Mapping):
             continue
         lvl = f" (level {fmt(a.get('level'))})" if a.get("level") is not None else ""
-        out.append((f"Alarm: {fmt(a.get('test'))} on {fmt(a.get('date'))}",
+        out.append((f"Alarm: {_test_label(a)} on {fmt(a.get('date'))}",
                      f"statistic {fmt(a.get('statistic'))} crossed {fmt(a.get('threshold'))}{lvl}"))
-    for t in (ctx.get("tests") or [])[:_MAX_TESTS]:
+    for t in ((ctx.get("tests") or []) if evidence else [])[:_MAX_TESTS]:
         if not isinstance(t, Mapping):
             continue
         parts = [f"statistic {fmt(t.get('statistic'))}"]
@@ -173,7 +175,7 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
             parts.append(f"threshold {fmt(t.get('threshold'))}{lvl}")
         if t.get("date"):
             parts.append(f"dated {fmt(t.get('date'))}")
-        out.append((f"Test: {fmt(t.get('test'))}", ", ".join(parts)))
+        out.append((f"Test: {_test_label(t)}", ", ".join(parts)))
     acc = ctx.get("accuracy") or {}
     model_acc, base_acc = acc.get("model") or {}, acc.get("baseline") or {}
     for k, label in (("mae", "MAE"), ("rmse", "RMSE"), ("mase", "MASE"), ("bias", "Bias")):
@@ -235,11 +237,20 @@ def render(notice: Mapping[str, Any], *, images: Mapping[str, str] | None = None
     return RenderedMessage(subject=ctx["subject"], text=text, html=html)
 
 
+def _test_label(t: Mapping[str, Any]) -> str:
+    """A test's name, with the driver it watches when it watches one."""
+    return fmt(t.get("test")) + (f" ({fmt(t.get('driver'))})" if t.get("driver") else "")
+
+
 def render_page(notices: Sequence[Mapping[str, Any]], *, as_of: str, run_id: Any,
                 fmt_: str) -> str:
     """A page listing one run's alerts (``fmt_``: ``"md"`` or ``"html"``), for the folder sink."""
     if fmt_ not in ("md", "html"):
         raise ValueError(f"fmt_ must be 'md' or 'html', got {fmt_!r}")
     items = [_context(n, {}, ()) for n in notices]
-    return _env.get_template(f"alert_page.{fmt_}").render(
+    page = _env.get_template(f"alert_page.{fmt_}").render(
         items=items, as_of=as_of, run_id=run_id, footer=FOOTER)
+    if fmt_ == "md":
+        # quotes need no escaping in Markdown (< > & stay escaped: the page may be rendered as HTML)
+        page = page.replace("&#39;", "'").replace("&#34;", '"')
+    return page
