@@ -300,7 +300,12 @@ def _screen(group: list[_Ctx]) -> None:
                 if fc_idx >= 0:
                     c.alarms.append({"test": name, "date": date_, "statistic": rstat, "threshold": crit,
                                      "level": 0.05})
-                    retro_flag.append((name, date_))
+                # only a variance change, which the mean- and score-based monitors do not see, makes a
+                # retrospective test a reason to watch, and only beyond its 1% bound: these tests are
+                # re-run on every check, so their 5% crossings would pile up on stable models
+                strong = int(np.atleast_1d(rc.first_crossing.get(0.01, -1))[i]) if name == "cusum-squares" else -1
+                if strong >= 0:
+                    retro_flag.append((name, d.periods[strong - o].date().isoformat()))
             c.charts["cusum"] = {
                 "path": _list(np.atleast_2d(cus.path)[i, sl]),
                 "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
@@ -326,8 +331,10 @@ def _screen(group: list[_Ctx]) -> None:
         else:
             warn = [a for a in c.alarms if a.get("warning")]
             if warn or retro_flag:
-                what = (f"{warn[0]['test']} passed its {wl:.0%} warning boundary on {warn[0]['date']}" if warn
-                        else f"the {retro_flag[0][0]} test crossed its 5% bound on {retro_flag[0][1]}")
+                what = (f"{_test_words(warn[0]['test'], warn[0].get('driver'))} passed its warning boundary "
+                        f"on {warn[0]['date']}" if warn
+                        else f"the residual variance changed (CUSUM of squares beyond its 1% bound on "
+                        f"{retro_flag[0][1]})")
                 c.actions.append(Action("watch", severity="watch", reason=(
                     f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
                     f"{chk.level:.0%} level. Keep the model, look again next week.")))

@@ -11,8 +11,10 @@ changes (Page-type CUSUM by default) on the recursive residuals, plus one score 
 recursive residuals weighted by the driver's orthogonalised column: its coefficient's fluctuation process,
 which has power against changes the residual mean does not show). Each runs at ``level / (number of
 monitors)`` (Bonferroni, floored at the tables' 0.5%), so the chance that a stable model is ever told to
-refit within the horizon is at most ``level``. Retrospective tests (CUSUM and CUSUM of squares on
-the monitored residuals, the tracking signal) and monitoring at ``warn_level`` only give ``watch``. Change
+refit within the horizon is at most ``level``. Monitoring at ``warn_level`` and the CUSUM of squares of
+the monitored residuals beyond its 1% bound (a variance change) only give ``watch``; the retrospective CUSUM
+and CUSUM of squares at 5% are reported but raise nothing alone (re-run on every check, their crossings
+would accumulate on stable models). Change
 points and the sup-F search only *date* a break that the monitors found; they never raise one alone.
 ``drop-driver`` and ``relag`` have their own out-of-sample tests; ``data-late`` is a fact about the feed,
 not a test.
