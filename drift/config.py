@@ -171,6 +171,11 @@ class ModelConfig(_Strict):
     unit: str = "units"
     monitor_start: date | None = None
 
+    @field_validator("frequency", mode="before")
+    @classmethod
+    def _freq_case(cls, v: Any) -> Any:
+        return v.strip().upper() if isinstance(v, str) else v
+
     @field_validator("errors")
     @classmethod
     def _errors(cls, v: str) -> str:
