@@ -326,6 +326,14 @@ def _screen(group: list[_Ctx]) -> None:
         c.charts["_ref_coef"] = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
         c.charts["_fe"] = fe
         # verdict on the relationship
+        span = d.n - d.n_ref
+        if alarm_idx is None and span > horizon * d.n_ref:
+            end = d.periods[min(d.n - 1, d.n_ref + int(np.ceil(horizon * d.n_ref)) - 1)].date().isoformat()
+            c.actions.append(Action("watch", severity="watch", reason=(
+                f"The monitoring horizon ended on {end} ({horizon:g} times the {d.n_ref}-period reference): "
+                f"the monitors no longer watch the newest data, and their false-alarm guarantee covers only "
+                f"the horizon. Refit on recent data and move the reference period forward (or raise "
+                f"check.horizon, up to 6).")))
         if alarm_idx is not None:
             _refit_action(c, alarm_idx)
         else:

@@ -289,3 +289,14 @@ def test_run_check_end_to_end_through_the_store(tmp_path, sqlite_store):
     # end of day - 2) cannot see them and ends one period earlier
     earlier = run_check(cfg, sqlite_store, as_of=day - timedelta(days=2), deliver=False)
     assert earlier.models[0]["last_period"] == periods[-2].date().isoformat()
+
+
+def test_horizon_passed_is_said(tmp_path) -> None:
+    # invented scenario (simulation): a short reference and a long monitoring span beyond horizon 0.5
+    cfg = config(tmp_path)
+    cfg = cfg.model_copy(update={"check": cfg.check.model_copy(update={"horizon": 0.5})})
+    periods, values = simulate(Scenario(seed=904, n_mon=104))
+    moment = end_moment(periods)
+    (p,), _ = analyse(cfg, cfg.models, known_by(observations(periods, values), moment), moment)
+    assert p["verdict"] == "watch"
+    assert any(a["action"] == "watch" and "horizon ended" in a["reason"] for a in p["actions"])
