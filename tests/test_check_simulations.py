@@ -300,3 +300,22 @@ def test_horizon_passed_is_said(tmp_path) -> None:
     (p,), _ = analyse(cfg, cfg.models, known_by(observations(periods, values), moment), moment)
     assert p["verdict"] == "watch"
     assert any(a["action"] == "watch" and "horizon ended" in a["reason"] for a in p["actions"])
+
+
+@pytest.mark.slow
+def test_refit_false_alarm_rate_over_the_whole_horizon(tmp_path) -> None:
+    # simulation: healthy models observed over exactly the monitoring horizon (78 weeks = 0.5 x 156), so
+    # the whole false-alarm budget can be spent; the refit rate must stay within the binomial 99% upper
+    # quantile of the 5% level (scipy.stats.binom), all monitors together (Bonferroni over 4)
+    from scipy import stats
+
+    cfg = config(tmp_path)
+    cfg = cfg.model_copy(update={"check": cfg.check.model_copy(update={"horizon": 0.5})})
+    n = 60
+    refits = 0
+    for seed in range(n):
+        periods, values = simulate(Scenario(seed=5000 + seed, n_mon=78))
+        moment = end_moment(periods)
+        (p,), _ = analyse(cfg, cfg.models, known_by(observations(periods, values), moment), moment)
+        refits += p["verdict"] == "refit"
+    assert refits <= stats.binom.ppf(0.99, n, 0.05)
