@@ -212,13 +212,17 @@ def demo(out: str) -> None:
 @cli.command()
 @config_opt
 @click.option("--log-file", default=None, type=click.Path(dir_okay=False), help="Also log to this rotating file.")
-def daemon(config: str, log_file: str | None) -> None:
+@click.option("--log-level", "daemon_level", default=None,
+              type=click.Choice(["debug", "info", "warning", "error"], case_sensitive=False),
+              help="Log level of the daemon (default info).")
+def daemon(config: str, log_file: str | None, daemon_level: str | None) -> None:
     """Run ingest, check, digest and outbox retry on the config's schedule until stopped."""
     def go() -> None:
         from drift.scheduler import run_daemon
 
         cfg = _load(config)
-        sys.exit(run_daemon(cfg, log_file=log_file))
+        level = getattr(logging, daemon_level.upper()) if daemon_level else None
+        sys.exit(run_daemon(cfg, log_file=log_file, log_level=level))
 
     _run(go)
 

@@ -588,8 +588,6 @@ def setup_logging(log_file: str | Path | None = None, level: int = logging.INFO)
                                                              backupCount=LOG_BACKUPS, encoding="utf-8"))
     for h in handlers:
         h.setFormatter(fmt)
-    # --log-level on the command line can only make the daemon more talkative than INFO
-    level = min(level, logging.getLogger().getEffectiveLevel())
     for name, lvl in (("drift", level), ("apscheduler", logging.WARNING)):
         lg = logging.getLogger(name)
         lg.setLevel(lvl)
@@ -612,7 +610,7 @@ def run_daemon(cfg: Config, *, jobs: Mapping[str, JobFunc] | None = None,
                clock: Callable[[], datetime] | None = None, log_file: str | Path | None = None,
                stop_event: threading.Event | None = None, stop_grace: float = STOP_GRACE_SECONDS,
                lock_heartbeat: float = HEARTBEAT_SECONDS,
-               lock_stale_after: float = STALE_AFTER_SECONDS) -> int:
+               lock_stale_after: float = STALE_AFTER_SECONDS, log_level: int | None = None) -> int:
     """Run the daemon until SIGTERM/SIGINT (main thread only) or ``stop_event``; return the exit code.
 
     Returns
@@ -621,7 +619,7 @@ def run_daemon(cfg: Config, *, jobs: Mapping[str, JobFunc] | None = None,
         :data:`EXIT_OK` (0) after a clean stop, :data:`EXIT_LOCKED` (3) when another daemon holds the store
         or took the lock over, :data:`EXIT_ERROR` (1) when the store cannot be used or startup failed.
     """
-    handlers = setup_logging(log_file)
+    handlers = setup_logging(log_file, level=log_level) if log_level is not None else setup_logging(log_file)
     stop = stop_event if stop_event is not None else threading.Event()
     restore = _install_signal_handlers(stop, stop_grace)
     try:
