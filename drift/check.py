@@ -151,6 +151,12 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     empty = obs.iloc[0:0]
     for m in models:
         try:
+            absent = [s for s in m.series if s not in by_series]
+            if absent:
+                raise InsufficientDataError(
+                    f"model '{m.name}'", 1, 0, f"no observations of {', '.join(repr(a) for a in absent)} are in "
+                    "the store as of this date; check the source and the series name (drift ingest reports "
+                    "what it stored)")
             frames = [by_series[s] for s in dict.fromkeys(m.series) if s in by_series]
             mobs = pd.concat(frames, ignore_index=True) if frames else empty
             d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
@@ -209,7 +215,7 @@ def _screen(group: list[_Ctx]) -> None:
     lv = max(chk.level / len(specs), MIN_LEVEL)
     wl = max(chk.warn_level / len(specs), MIN_LEVEL)
     weights = None
-    if n_drv:
+    if n_drv and np.any(m < Y.shape[1]):
         slots = np.full((len(group), n_drv), -1)
         for i, c in enumerate(group):
             slots[i, : len(c.design.driver_columns)] = list(c.design.driver_columns.values())
@@ -221,11 +227,13 @@ def _screen(group: list[_Ctx]) -> None:
     dof = np.maximum(0.5 / logvar, MIN_DOF)
     mons, warns = [], []
     for _name, det, j in specs:
+        if j is not None and weights is None:
+            mons.append(None)
+            warns.append(None)
+            continue
         wj = None if j is None else weights[:, j]  # type: ignore[index]
-        mons.append(engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=lv, weights=wj,
-                                   scale_dof=dof))
-        warns.append(engine.monitor(Y, Xs, m, horizon=horizon, detector=det, level=wl, weights=wj,
-                                    scale_dof=dof))
+        mons.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=lv, weights=wj, scale_dof=dof))
+        warns.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=wl, weights=wj, scale_dof=dof))
     # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals
     W = rf.resid.copy()
     cols = np.arange(W.shape[1])[None, :]
@@ -255,8 +263,10 @@ def _screen(group: list[_Ctx]) -> None:
         actual = np.where(mon_mask, d.y, np.nan)
         c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
                                 "baseline": _list(np.where(mon_mask, base, np.nan))}
-        ref_scale = np.nanmean(np.abs(d.y[: d.n_ref] - base[: d.n_ref])) if d.n_ref > 2 else None
-        ref_scale = float(ref_scale) if ref_scale is not None and np.isfinite(ref_scale) and ref_scale > 0 else None
+        # MASE scale: in-sample mean absolute seasonal-naive error on the reference period
+        naive_err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
+        naive_err = naive_err[np.isfinite(naive_err)]
+        ref_scale = float(naive_err.mean()) if naive_err.size and naive_err.mean() > 0 else None
         c.accuracy = {"model": _accuracy(np.where(mon_mask, d.y - fc, np.nan)[-chk.recent_window:], ref_scale),
                       "baseline": _accuracy((actual - base)[-chk.recent_window:], ref_scale),
                       "window": int(min(chk.recent_window, int(mon_mask.sum())))}
@@ -268,7 +278,7 @@ def _screen(group: list[_Ctx]) -> None:
         alarm_idx = None
         drivers_i = list(d.driver_columns)
         for (name, _det, j), r, rw in zip(specs, mons, warns):
-            if j is not None and j >= len(drivers_i):
+            if (j is not None and j >= len(drivers_i)) or r is None or rw is None:
                 continue
             extra = {} if j is None else {"driver": drivers_i[j]}
             ai = int(np.atleast_1d(r.alarm_index)[i])
@@ -348,6 +358,16 @@ def _screen(group: list[_Ctx]) -> None:
                     f"{chk.level:.0%} level. Keep the model, look again next week.")))
 
 
+
+
+def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
+    """engine.monitor, or None when no model of the batch can be monitored yet (e.g. no data after the
+    reference period): the batch then simply has no monitoring evidence."""
+    try:
+        return engine.monitor(Y, X, m, **kw)
+    except InsufficientDataError as exc:
+        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
+        return None
 
 
 def _refit_action(c: _Ctx, alarm_idx: int) -> None:
@@ -639,8 +659,15 @@ def _lag_drift(c: _Ctx) -> None:
         rx = _resid(xv)
         j = d.driver_columns[s]
         ry = d.y - fitted + d.X[:, j] * b_ref[j]
-        lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
-        lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
+        try:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
+                lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
+        except (DriftError, np.linalg.LinAlgError) as exc:
+            log.info("model %s: no lag profile for %s: %s", m.name, s, exc)
+            continue
+        if not (np.isfinite(lp_ref.ccf).any() and np.isfinite(lp_rec.ccf).any()):
+            continue  # a constant driver has no cross-correlation
         cur = d.lags.get(s, dr.lag)
         profiles[s] = {"lags": list(range(max_lag + 1)), "reference": _list(lp_ref.ccf),
                        "recent": _list(lp_rec.ccf), "band_reference": _num(lp_ref.band),

@@ -114,7 +114,8 @@ def _fit_ar_aic(x: FloatArray, max_ar: int) -> tuple[FloatArray, IntArray]:
             Zp = Z[:, :, :p]
             A = np.einsum("mti,mtj->mij", Zp, Zp) + np.eye(p) * 1e-12 * np.einsum("mt,mt->m", yv, yv)[:, None, None]
             c = np.einsum("mti,mt->mi", Zp, yv)
-            coef = np.linalg.solve(A, c[:, :, None])[:, :, 0]
+            # pseudo-inverse: a constant (or all-zero) series gives A = 0 and coefficients 0, not an error
+            coef = np.einsum("mij,mj->mi", np.linalg.pinv(A, hermitian=True), c)
             r = yv - np.einsum("mti,mi->mt", Zp, coef)
             rss = np.einsum("mt,mt->m", r, r)
         with np.errstate(divide="ignore"):
