@@ -225,7 +225,8 @@ def _screen(group: list[_Ctx]) -> None:
                      for c in group], float)
     logvar = 0.5 / np.maximum(n_ok - ds[0].k, 1.0) + np.array([c.scale_logvar for c in group])
     dof = np.maximum(0.5 / logvar, MIN_DOF)
-    mons, warns = [], []
+    mons: list[Any] = []
+    warns: list[Any] = []
     for _name, det, j in specs:
         if j is not None and weights is None:
             mons.append(None)
