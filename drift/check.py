@@ -153,10 +153,10 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
         try:
             absent = [s for s in m.series if s not in by_series]
             if absent:
-                raise InsufficientDataError(
-                    f"model '{m.name}'", 1, 0, f"no observations of {', '.join(repr(a) for a in absent)} are in "
-                    "the store as of this date; check the source and the series name (drift ingest reports "
-                    "what it stored)")
+                raise DriftError(
+                    f"model '{m.name}': no observations of {', '.join(repr(a) for a in absent)} are in the "
+                    "store as of this date; check the source and the series names (drift ingest reports what "
+                    "it stored)")
             frames = [by_series[s] for s in dict.fromkeys(m.series) if s in by_series]
             mobs = pd.concat(frames, ignore_index=True) if frames else empty
             d = build_design(cfg, m, mobs, pd.Timestamp(as_of))

@@ -102,6 +102,9 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
         failed = False
         for s in summaries:
             click.echo(s.describe())
+            src = next((x for x in cfg.sources if x.name == s.source), None)
+            if s.files == 0 and src is not None and src.kind != "sql":
+                click.echo(f"  no file matches '{src.path}' (relative to {cfg.base_dir})", err=True)
             for f, msg in s.failed_files:
                 failed = True
                 click.echo(f"  not read: {msg if msg.startswith(f) else f + ': ' + msg}", err=True)
@@ -135,8 +138,6 @@ def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool
             click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
         else:
             click.echo(format_table(outcome))
-        for name, err in outcome.errors.items():
-            log.warning("model %s not checked: %s", name, err)
 
     _run(go)
 

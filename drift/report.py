@@ -117,7 +117,8 @@ def _safe(name: str) -> str:
 
 def format_table(outcome: CheckOutcome) -> str:
     """Plain-text summary per model for the terminal."""
-    lines = [f"drift check as of {outcome.as_of.isoformat()}: {len(outcome.models)} model(s)"]
+    n_all = len(outcome.models) + len(outcome.errors)
+    lines = [f"drift check as of {outcome.as_of.isoformat()}: {n_all} model(s), {len(outcome.models)} checked"]
     for m in outcome.models:
         lines.append("")
         lines.append(f"{m['name']}  →  {WORDS.get(m['verdict'], m['verdict']).upper()}")
