@@ -60,3 +60,31 @@ def test_size_and_power_against_an_orthogonal_slope_change() -> None:
         else:
             assert score > 0.95  # the coefficient monitor sees the change
             assert resid < 0.2  # the residual monitor barely does
+
+
+@pytest.mark.slow
+def test_size_with_autocorrelated_drivers_and_many_columns() -> None:
+    # simulation: AR(1) drivers (phi 0.5) next to a trend and 6 Fourier terms, m = 156, horizon 0.5 fully
+    # observed; the effect monitors (information time) stay within nominal + 3 Monte Carlo s.e.
+    rng = np.random.default_rng(11)
+    M, m, level = 1500, 156, 0.05
+    T = m + 78
+    t = np.arange(T)
+
+    def ar(phi: float = 0.5) -> np.ndarray:
+        e = rng.normal(0, 3.0, (M, T + 10))
+        v = np.zeros((M, T + 10))
+        for i in range(1, T + 10):
+            v[:, i] = phi * v[:, i - 1] + e[:, i]
+        return 20 + v[:, 10:]
+
+    x1, x2 = ar(), ar()
+    base = [np.ones(T), t / m] + [f(2 * np.pi * j * t / 52.18) for j in (1, 2, 3) for f in (np.sin, np.cos)]
+    X = np.concatenate([np.broadcast_to(np.stack(base, 1), (M, T, len(base))), x1[:, :, None], x2[:, :, None]], 2)
+    y = 100 + 0.3 * t + 8 * np.sin(2 * np.pi * t / 52.18) + 2 * x1 + 1.5 * x2 + rng.normal(size=(M, T))
+    k = X.shape[2]
+    W = score_weights(X, m, np.tile([k - 2, k - 1], (M, 1)))
+    se = np.sqrt(level * (1 - level) / M)
+    for j in range(2):
+        r = monitor(y, X, m, horizon=0.5, detector="page", level=level, weights=W[:, j])
+        assert np.mean(r.alarm_index >= 0) <= level + 3 * se
