@@ -21,6 +21,7 @@ from the YAML, and never appear in a log line or an error message (errors name t
 
 from __future__ import annotations
 
+import base64
 import email.policy
 import logging
 import os
@@ -116,10 +117,13 @@ class EmailSender(Channel):
         ident = _msgid_safe(msg.key)
         pre_text, pre_html = notice.get("text"), notice.get("html")
         if isinstance(pre_text, str) and isinstance(pre_html, str):
-            # a message rendered by its producer (the digest): sent as it is
-            pngs: dict[str, bytes] = {}
-            cids: dict[str, str] = {}
-            body = RenderedMessage(subject=msg.subject, text=pre_text, html=pre_html)
+            # a message rendered by its producer (the digest): its embedded data: images become inline
+            # attachments (many mail clients block data: URIs in e-mail)
+            html, pngs = _inline_data_images(pre_html)
+            cids = {kind: f"{kind}.{ident[:16]}@{MSGID_DOMAIN}" for kind in pngs}
+            for kind, cid in cids.items():
+                html = html.replace(f'src="cid:{kind}"', f'src="cid:{cid}"')
+            body = RenderedMessage(subject=msg.subject, text=pre_text, html=html)
         else:
             pngs, notes = self._charts(notice)
             cids = {kind: f"{kind}.{ident[:16]}@{MSGID_DOMAIN}" for kind in pngs}
@@ -252,3 +256,19 @@ def _quiet_close(smtp: smtplib.SMTP) -> None:
             smtp.close()
         except OSError:
             pass
+
+
+_DATA_IMG = re.compile(r'src="data:image/png;base64,([A-Za-z0-9+/=\s]+)"')
+
+
+def _inline_data_images(html: str) -> tuple[str, dict[str, bytes]]:
+    """Replace ``src="data:image/png;base64,..."`` by ``cid:`` references; return the HTML and the PNGs
+    keyed by a placeholder kind (``img0``, ``img1``, ...)."""
+    pngs: dict[str, bytes] = {}
+
+    def swap(mt: re.Match[str]) -> str:
+        kind = f"img{len(pngs)}"
+        pngs[kind] = base64.b64decode(mt.group(1))
+        return f'src="cid:{kind}"'
+
+    return _DATA_IMG.sub(swap, html), pngs

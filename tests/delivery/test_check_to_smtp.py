@@ -81,3 +81,26 @@ def test_smtp_outage_loses_nothing_and_sends_once(tmp_path: Path, smtp_server: A
         assert _subjects(smtp_server) == first  # none twice
     finally:
         store.dispose()
+
+
+def test_digest_by_email_carries_its_charts_as_inline_parts(tmp_path: Path, smtp_server: Any) -> None:
+    from drift.pipeline import run_digest
+
+    cfg = _demo_with_email(tmp_path, smtp_server.port)
+    store = open_store(cfg.store_url())
+    try:
+        run_ingest(cfg, store, progress=False)
+        run_check(cfg, store, as_of=AS_OF)
+        n = len(smtp_server.messages)
+        run_digest(cfg, store, send=True)
+        run_deliver(cfg, store)
+        assert len(smtp_server.messages) == n + 1
+        msg = email.message_from_bytes(smtp_server.messages[-1].content)
+        html = next(p for p in msg.walk() if p.get_content_type() == "text/html").get_payload(decode=True)
+        images = [p for p in msg.walk() if p.get_content_type() == "image/png"]
+        assert b"data:image" not in html and b'src="cid:' in html
+        assert images and all(f"<{p['Content-ID'].strip('<>')}>" for p in images)
+        cids = {p["Content-ID"].strip("<>") for p in images}
+        assert all(c.encode() in html for c in cids)
+    finally:
+        store.dispose()

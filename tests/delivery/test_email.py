@@ -259,3 +259,18 @@ def test_real_chart_renderer_inline_images(tmp_path: Path, store: Any, smtp_serv
     assert cids
     parts = {p["Content-ID"].strip("<>"): p for p in msg.walk() if p["Content-ID"]}
     assert all(parts[c].get_content().startswith(b"\x89PNG") for c in cids)
+
+
+def test_digest_data_images_become_inline_parts() -> None:
+    # common practice, no source: e-mail clients block data: URIs, so the digest's images go as cid parts
+    import base64
+
+    from drift.delivery.email import _inline_data_images
+
+    png = b"\x89PNG\r\n\x1a\n" + b"0" * 20
+    b64 = base64.b64encode(png).decode()
+    html = "".join(f'<img alt="c{i}" src="data:image/png;base64,{b64}">' for i in range(12))
+    out, pngs = _inline_data_images(html)
+    assert "data:image" not in out and len(pngs) == 12
+    assert out.count('src="cid:img1"') == 1 and out.count('src="cid:img11"') == 1
+    assert all(v == png for v in pngs.values())
