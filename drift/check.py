@@ -235,6 +235,19 @@ def _screen(group: list[_Ctx]) -> None:
         wj = None if j is None else weights[:, j]  # type: ignore[index]
         mons.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=lv, weights=wj, scale_dof=dof))
         warns.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=wl, weights=wj, scale_dof=dof))
+    # Trigg's tracking signal on the as-deployed one-step errors of the monitored span (reported for the
+    # demand planners who read it; it raises nothing: at a fixed time, not over the horizon)
+    trigg = None
+    fe_all = np.where(np.arange(Y.shape[1])[None, :] >= m[:, None], rf.forecast_error, np.nan)
+    ref_err = np.where(np.arange(Y.shape[1])[None, :] < m[:, None], np.abs(rf.forecast_error), np.nan)
+    finite_ref = np.isfinite(ref_err)
+    mad0 = np.where(finite_ref.any(axis=1), np.sum(np.where(finite_ref, ref_err, 0.0), axis=1)
+                    / np.maximum(finite_ref.sum(axis=1), 1), np.nan)
+    if np.isfinite(fe_all).sum(axis=1).min() >= 2 and np.all(np.isfinite(mad0) & (mad0 > 0)):
+        try:
+            trigg = engine.trigg_signal(fe_all, 0.1, level=0.01, mad0=mad0)
+        except (DriftError, ValueError) as exc:
+            log.info("tracking signal skipped: %s", exc)
     # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals
     W = rf.resid.copy()
     cols = np.arange(W.shape[1])[None, :]
@@ -297,6 +310,14 @@ def _screen(group: list[_Ctx]) -> None:
                 c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
                                  "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
                                  "threshold": 1.0, "level": wl, "warning": True})
+        if trigg is not None:
+            sig = np.atleast_2d(trigg.signal)[i, sl]
+            last_i = np.flatnonzero(np.isfinite(sig))
+            fs = int(np.atleast_1d(trigg.first_signal)[i]) - o
+            if last_i.size:
+                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
+                                "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,
+                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
         # retrospective CUSUM family
         retro_flag = []
         if cus is not None and cusq is not None and enough[i]:
