@@ -41,13 +41,13 @@ from drift.exceptions import ConfigError, InputError
 from drift.ingest.csv import read_csv
 from drift.ingest.parquet import read_parquet
 from drift.ingest.sql import EPOCH, read_sql, sql_label
-from drift.ingest.validate import RawTable, SeriesRules, Validated, validate
+from drift.ingest.validate import FileBytes, RawTable, SeriesRules, Validated, read_file, validate
 from drift.store import Store, batches, observations, quarantine
 
 log = logging.getLogger(__name__)
 
 #: file readers by source kind (the SQL reader takes a ``since`` instead of a path)
-READERS: dict[str, Callable[[Path, SourceConfig], RawTable]] = {"csv": read_csv, "parquet": read_parquet}
+READERS: dict[str, Callable[[Path, SourceConfig, FileBytes | None], RawTable]] = {"csv": read_csv, "parquet": read_parquet}
 #: rows per executemany call
 INSERT_CHUNK = 20_000
 #: auto progress shows a bar from this many files, or for a batch of this many cells
@@ -189,12 +189,13 @@ def _ingest(cfg: Config, store: Store, source: SourceConfig, now: datetime, rule
     task = bar.task(f"{source.name}", len(files), show=len(files) >= PROGRESS_FILES)
     for path in files:
         try:
-            skipped = _already_ingested(store, source, path)
+            file = read_file(path)  # read once: hashed for the check below, then parsed
+            skipped = _already_ingested(store, source, file.digest)
             if skipped is not None:
                 log.info("source %s: %s already ingested with this content, skipped", source.name, path)
                 total = total + IngestSummary(source.name, files=1, known=skipped, skipped=1)
                 continue
-            raw = reader(path, source)
+            raw = reader(path, source, file)
             total = total + _ingest_batch(store, source, raw, now, rules, bar)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)
@@ -225,24 +226,8 @@ def _as_utc(ts: pd.Timestamp) -> datetime:
     return ts.to_pydatetime()
 
 
-def _file_hash(path: Path) -> str | None:
-    import hashlib
-
-    h = hashlib.sha256()
-    try:
-        with path.open("rb") as fh:
-            for block in iter(lambda: fh.read(1 << 20), b""):
-                h.update(block)
-    except OSError:
-        return None  # the reader reports it
-    return h.hexdigest()
-
-
-def _already_ingested(store: Store, source: SourceConfig, path: Path) -> int | None:
+def _already_ingested(store: Store, source: SourceConfig, digest: str) -> int | None:
     """Values of the earlier successful batch with this file content, or None when there is none."""
-    digest = _file_hash(path)
-    if digest is None:
-        return None
     b = batches
     q = (sa.select(b.c.stored, b.c.known, b.c.revised)
          .where(b.c.source == source.name, b.c.content_hash == digest, b.c.status == "ok")
@@ -393,13 +378,13 @@ def _copy_rows(conn: Any, table: sa.Table, columns: list[str], cols: list[np.nda
     dbapi = conn.connection.dbapi_connection
     quoted = ", ".join(conn.dialect.identifier_preparer.quote(c) for c in columns)
     n = len(cols[0]) if cols else 0
-    with dbapi.cursor() as cur:
-        with cur.copy(f"COPY {conn.dialect.identifier_preparer.format_table(table)} ({quoted}) FROM STDIN") as cp:
-            for i in range(0, n, INSERT_CHUNK):
-                rows = list(zip(*(c[i:i + INSERT_CHUNK].tolist() for c in cols), strict=True))
-                for r in rows:
-                    cp.write_row(r)
-                on_chunk(len(rows))
+    target = conn.dialect.identifier_preparer.format_table(table)
+    with dbapi.cursor() as cur, cur.copy(f"COPY {target} ({quoted}) FROM STDIN") as cp:
+        for i in range(0, n, INSERT_CHUNK):
+            rows = list(zip(*(c[i:i + INSERT_CHUNK].tolist() for c in cols), strict=True))
+            for r in rows:
+                cp.write_row(r)
+            on_chunk(len(rows))
 
 
 def _observation_columns(new: pd.DataFrame, source: str, batch_id: int, now: datetime) -> dict[str, np.ndarray]:

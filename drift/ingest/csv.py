@@ -10,7 +10,6 @@ make the whole file unreadable: nothing of it is written.
 from __future__ import annotations
 
 import csv as _csv
-import hashlib
 import io
 import logging
 from pathlib import Path
@@ -19,19 +18,20 @@ import pandas as pd
 
 from drift.config import SourceConfig
 from drift.exceptions import InputError
-from drift.ingest.validate import RawTable
+from drift.ingest.validate import FileBytes, RawTable, read_file
 
 log = logging.getLogger(__name__)
 
 _BOM = b"\xef\xbb\xbf"
 
 
-def read_csv(path: Path, source: SourceConfig) -> RawTable:
+def read_csv(path: Path, source: SourceConfig, file: FileBytes | None = None) -> RawTable:
     """Read one CSV file of a source.
 
     Parameters
     ----------
     path : the file.
+    file : its bytes when already read (:func:`drift.ingest.validate.read_file`); read here otherwise.
     source : the source (``delimiter`` is used here; layout is checked by validation).
 
     Returns
@@ -48,13 +48,8 @@ def read_csv(path: Path, source: SourceConfig) -> RawTable:
     import pyarrow.csv as pacsv
 
     label = str(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise InputError("file not found", file=label) from None
-    except OSError as exc:
-        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
-    digest = hashlib.sha256(data).hexdigest()
+    file = file or read_file(path)
+    data, digest = file.data, file.digest
     data = data.removeprefix(_BOM)
     try:
         text = data.decode("utf-8")

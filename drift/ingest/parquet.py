@@ -7,7 +7,6 @@ numbered from 1 (the first data row). An unreadable or truncated file raises :cl
 
 from __future__ import annotations
 
-import hashlib
 import io
 import logging
 from pathlib import Path
@@ -16,17 +15,18 @@ import numpy as np
 
 from drift.config import SourceConfig
 from drift.exceptions import InputError
-from drift.ingest.validate import RawTable
+from drift.ingest.validate import FileBytes, RawTable, read_file
 
 log = logging.getLogger(__name__)
 
 
-def read_parquet(path: Path, source: SourceConfig) -> RawTable:
+def read_parquet(path: Path, source: SourceConfig, file: FileBytes | None = None) -> RawTable:
     """Read one Parquet file of a source.
 
     Parameters
     ----------
     path : the file.
+    file : its bytes when already read (:func:`drift.ingest.validate.read_file`); read here otherwise.
     source : the source (its layout is checked by validation).
 
     Returns
@@ -43,13 +43,8 @@ def read_parquet(path: Path, source: SourceConfig) -> RawTable:
     import pyarrow.parquet as pq
 
     label = str(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise InputError("file not found", file=label) from None
-    except OSError as exc:
-        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
-    digest = hashlib.sha256(data).hexdigest()
+    file = file or read_file(path)
+    data, digest = file.data, file.digest
     try:
         table = pq.read_table(io.BytesIO(data))
     except (pa.ArrowException, OSError, ValueError) as exc:

@@ -30,10 +30,12 @@ over the (rare) bad records.
 
 from __future__ import annotations
 
+import hashlib
 import logging
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -108,6 +110,31 @@ class SeriesRules:
         if freq is None:
             freq = source.frequency
         return SeriesRule(freq, anchor, self._delays.get(series, source.delay))
+
+
+@dataclass(frozen=True)
+class FileBytes:
+    """A source file read once: its bytes and their SHA-256 (for the already-ingested check)."""
+
+    data: bytes
+    digest: str
+
+
+def read_file(path: Path) -> FileBytes:
+    """Read a whole source file.
+
+    Raises
+    ------
+    InputError : naming the file when it is missing or unreadable.
+    """
+    label = str(path)
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise InputError("file not found", file=label) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
+    return FileBytes(data=data, digest=hashlib.sha256(data).hexdigest())
 
 
 @dataclass(frozen=True)
