@@ -9,6 +9,8 @@ from __future__ import annotations
 import json
 import logging
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import date, datetime, timezone
 from pathlib import Path
 from typing import Any, NoReturn
@@ -39,10 +41,17 @@ def _load(config: str) -> Any:
     return load_config(config)
 
 
-def _store(cfg: Any) -> Any:
+@contextmanager
+def _opened(config: str) -> Iterator[tuple[Any, Any]]:
+    """The loaded config and its open store, disposed of afterwards."""
     from drift.store import open_store
 
-    return open_store(cfg.store_url())
+    cfg = _load(config)
+    store = open_store(cfg.store_url())
+    try:
+        yield cfg, store
+    finally:
+        store.dispose()
 
 
 def _day(value: str | None, flag: str) -> date | None:
@@ -93,12 +102,8 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
     def go() -> None:
         from drift.pipeline import run_ingest
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             summaries = run_ingest(cfg, store, sources=list(sources) or None)
-        finally:
-            store.dispose()
         failed = False
         for s in summaries:
             click.echo(s.describe())
@@ -128,12 +133,8 @@ def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool
         from drift.pipeline import run_check
         from drift.report import format_table
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver)
-        finally:
-            store.dispose()
         if as_json:
             click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
         else:
@@ -155,12 +156,8 @@ def deliver(config: str) -> None:
     def go() -> None:
         from drift.pipeline import run_deliver
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             report = run_deliver(cfg, store)
-        finally:
-            store.dispose()
         click.echo(report.describe() if hasattr(report, "describe") else str(report))
 
     _run(go)
@@ -177,15 +174,11 @@ def digest(config: str, since: str | None, send: bool) -> None:
     def go() -> None:
         from drift.pipeline import run_deliver, run_digest
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             moment = datetime.combine(day, datetime.min.time(), tzinfo=timezone.utc) if day else None
             dg = run_digest(cfg, store, since=moment, send=send)
             if send:
                 run_deliver(cfg, store)
-        finally:
-            store.dispose()
         click.echo(f"digest written to {dg.path}")
 
     _run(go)
@@ -236,12 +229,8 @@ def status(config: str, as_json: bool) -> None:
     def go() -> None:
         from drift.status import collect_status, format_status
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             st = collect_status(cfg, store)
-        finally:
-            store.dispose()
         click.echo(json.dumps(_strict(st), default=str) if as_json else format_status(st))
 
     _run(go)
@@ -264,13 +253,9 @@ def shock(config: str, when: str, models: tuple[str, ...], as_of: str | None, as
     def go() -> None:
         from drift.shock import format_shock, run_shock
 
-        cfg = _load(config)
-        store = _store(cfg)
-        try:
+        with _opened(config) as (cfg, store):
             res = run_shock(cfg, store, day, models=list(models) or None, as_of=aday,
                             out=Path(out) if out else None)
-        finally:
-            store.dispose()
         click.echo(json.dumps(_strict(res), allow_nan=False) if as_json else format_shock(res))
 
     _run(go)
