@@ -348,6 +348,7 @@ def _screen(group: list[_Ctx]) -> None:
         if roll is not None:
             coef_roll = np.atleast_3d(roll.coef)[i, sl]
             se_roll = np.atleast_3d(roll.se)[i, sl]
+            c.charts["_roll_coef"] = coef_roll  # the full model's rolling fit, reused for its forecasts
             c.charts["coefficients"] = {}
             ref_coef = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
             for s, j in d.driver_columns.items():
@@ -564,7 +565,11 @@ def _drivers_and_worth(c: _Ctx) -> None:
     names = list(d.driver_columns)
     window = chk.rolling_window or chk.recent_window
     nested_fe: dict[str, np.ndarray] = {}
-    fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window)[0]
+    roll_coef = c.charts.pop("_roll_coef", None)
+    if roll_coef is not None and window < n:  # the screening pass already fitted this rolling window
+        fe_full = _one_step_errors(c.y[None], c.X[None], roll_coef[None])[0]
+    else:
+        fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window)[0]
     if names:
         Xn = np.stack([np.delete(c.X, d.driver_columns[s], axis=1) for s in names])
         Yn = np.broadcast_to(c.y, (len(names), n))
@@ -635,7 +640,12 @@ def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int) -> np.nd
         roll = engine.rolling_coefficients(Y, X, window)
     except InsufficientDataError:
         return out
-    coef = np.asarray(roll.coef).reshape(M, n, k)
+    return _one_step_errors(Y, X, np.asarray(roll.coef).reshape(M, n, k))
+
+
+def _one_step_errors(Y: np.ndarray, X: np.ndarray, coef: np.ndarray) -> np.ndarray:
+    """``y_t - x_t' b_{t-1}`` from coefficient paths ``coef`` (M, n, k) (row t fitted on data up to t)."""
+    out = np.full(Y.shape, np.nan)
     with np.errstate(invalid="ignore"):
         out[:, 1:] = Y[:, 1:] - np.einsum("mtk,mtk->mt", X[:, 1:], coef[:, :-1])
     return out
