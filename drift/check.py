@@ -128,6 +128,7 @@ class _Ctx:
     X: np.ndarray = None  # type: ignore[assignment]
     error_model: str | None = None
     scale_logvar: float = 0.0
+    n_ref_ok: int = 0  # complete rows in the reference period (after prewhitening)
     actions: list[Action] = field(default_factory=list)
     alarms: list[dict[str, Any]] = field(default_factory=list)
     tests: list[dict[str, Any]] = field(default_factory=list)
@@ -148,7 +149,6 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     errors: dict[str, str] = {}
     # split the observations by series once: every later per-model filter then works on a small frame
     by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
-    empty = obs.iloc[0:0]
     for m in models:
         try:
             absent = [s for s in m.series if s not in by_series]
@@ -157,16 +157,15 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
                     f"model '{m.name}': no observations of {', '.join(repr(a) for a in absent)} are in the "
                     "store as of this date; check the source and the series names (drift ingest reports what "
                     "it stored)")
-            frames = [by_series[s] for s in dict.fromkeys(m.series) if s in by_series]
-            mobs = pd.concat(frames, ignore_index=True) if frames else empty
+            mobs = pd.concat([by_series[s] for s in dict.fromkeys(m.series)], ignore_index=True)
             d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
             c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
             c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
+            c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
             need = d.k + 3
-            if np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)) < need:
-                raise InsufficientDataError(f"model '{m.name}': reference fit", need, int(
-                    np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1))),
-                    f"{d.k} regressors ({', '.join(d.columns)})")
+            if c.n_ref_ok < need:
+                raise InsufficientDataError(f"model '{m.name}': reference fit", need, c.n_ref_ok,
+                                            f"{d.k} regressors ({', '.join(d.columns)})")
             ctxs.append(c)
         except DriftError as exc:
             errors[m.name] = str(exc)
@@ -221,8 +220,7 @@ def _screen(group: list[_Ctx]) -> None:
             slots[i, : len(c.design.driver_columns)] = list(c.design.driver_columns.values())
         weights = engine.score_weights(Xs, m, slots)
     # scale estimated on the reference rows (and the error model's extra uncertainty)
-    n_ok = np.array([np.sum(np.isfinite(c.y[: c.design.n_ref]) & np.isfinite(c.X[: c.design.n_ref]).all(axis=1))
-                     for c in group], float)
+    n_ok = np.array([c.n_ref_ok for c in group], float)
     logvar = 0.5 / np.maximum(n_ok - ds[0].k, 1.0) + np.array([c.scale_logvar for c in group])
     dof = np.maximum(0.5 / logvar, MIN_DOF)
     mons: list[Any] = []
