@@ -83,21 +83,13 @@ def period_index(model: ModelConfig, start: pd.Timestamp, end: pd.Timestamp) -> 
     """Period starts from ``start`` to ``end`` inclusive, on the model's frequency."""
     f = model.frequency
     first = period_start(start, f, week_anchor=week_anchor(model))
-    out = []
-    t = first
-    while t <= end:
-        out.append(t)
-        t = next_period(t, f)
-    return pd.DatetimeIndex(out)
+    step = {"D": "D", "W": "7D", "M": "MS", "Q": "QS"}[f]  # ``first`` is a period start: on the grid
+    return pd.date_range(first, pd.Timestamp(end), freq=step)
 
 
 def _origins(periods: pd.DatetimeIndex, horizon: int, freq: str) -> pd.DatetimeIndex:
     """Forecast origin (UTC) of each target period for an h-step forecast."""
-    if horizon == 1:
-        org = periods
-    else:
-        org = pd.DatetimeIndex([next_period(p, freq, -(horizon - 1)) for p in periods])
-    return org.tz_localize("UTC")
+    return _shift(periods, freq, horizon - 1).tz_localize("UTC")
 
 
 def _shift(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
@@ -107,7 +99,7 @@ def _shift(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
         step = pd.Timedelta(days=1 if freq == "D" else 7)
         return periods - lag * step
     months = lag * (1 if freq == "M" else 3)
-    return pd.DatetimeIndex([p - pd.DateOffset(months=months) for p in periods])
+    return pd.DatetimeIndex(periods) - pd.DateOffset(months=months)  # period starts are first days
 
 
 _SHIFT = np.int64(2**32)  # period code * 2^32 + seconds: one sortable int64 key per (period, time)
