@@ -19,11 +19,11 @@ import pandas as pd
 from scipy import stats
 
 from drift import engine
-from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig
+from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig, next_period, period_length, period_start
 from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import Design, _ns, build_design, next_due
+from drift.panel import Design, as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
 from drift.replay import h_step_errors
 from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
 
@@ -465,9 +465,9 @@ def _freshness(c: _Ctx) -> None:
     m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
     # numpy views per series: period and available_at as int64 ns (first vintage of each period shown)
     ser = known["series"].to_numpy()
-    per_ns = _ns(known["period"])
-    at_ns = _ns(known["available_at"])
-    start_ns = int(_ns(d.periods[max(0, d.n - 26):][:1])[0])
+    per_ns = as_ns(known["period"])
+    at_ns = as_ns(known["available_at"])
+    start_ns = int(as_ns(d.periods[max(0, d.n - 26):][:1])[0])
     feeds: dict[str, Any] = {}
     limit = c.cfg.check.feed_limit
     for s in m.series:
@@ -507,17 +507,14 @@ def _freshness(c: _Ctx) -> None:
 def _forward_feed(c: _Ctx, dr: Any, ser: np.ndarray, per_ns: np.ndarray, feeds: dict[str, Any]) -> None:
     """A forecast or planned driver is late when the forecast of the current period had to be made
     without it: no forecast (or plan) of the period it needs was stored by the check's moment."""
-    from drift.config import period_start
-    from drift.panel import _shift, week_anchor
-
     m = c.model
     moment = pd.Timestamp(c.as_of) - pd.Timedelta(microseconds=1)
     cur = period_start(moment.tz_convert("UTC").tz_localize(None), m.frequency, week_anchor=week_anchor(m))
-    need = _shift(pd.DatetimeIndex([cur]), m.frequency, dr.lag)[0]
+    need = shift_periods(pd.DatetimeIndex([cur]), m.frequency, dr.lag)[0]
     rows = np.flatnonzero(ser == dr.series)
     have = per_ns[rows]
     last = pd.Timestamp(int(have.max())) if have.size else None
-    late = not bool(np.any(have == int(_ns(pd.DatetimeIndex([need]))[0])))
+    late = not bool(np.any(have == int(as_ns(pd.DatetimeIndex([need]))[0])))
     kind = "forecast" if dr.form == "forecast" else "plan"
     feeds[dr.series] = {"periods": [], "available_at": [], "next_due": cur.tz_localize("UTC").isoformat(),
                         "late": late, "last_period": last.date().isoformat() if last is not None else None,
@@ -536,8 +533,6 @@ def _forward_feed(c: _Ctx, dr: Any, ser: np.ndarray, per_ns: np.ndarray, feeds: 
 
 def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:
     """How many periods after ``last`` should have arrived by ``as_of``."""
-    from drift.config import next_period
-
     n = 0
     p = last
     while True:
@@ -675,8 +670,6 @@ def _lag_drift(c: _Ctx) -> None:
         return
     profiles: dict[str, Any] = {}
     obs = c.obs
-    from drift.panel import latest_values
-
     for dr in m.drivers:
         s = dr.series
         if dr.form != "lagged" or s not in d.driver_columns or s in c.late:
@@ -750,8 +743,6 @@ def _lag_drift(c: _Ctx) -> None:
 
 
 def _min_lag(c: _Ctx, dr: Any) -> int:
-    from drift.config import period_length
-
     delay = c.cfg.driver_delay(c.model, dr)
     step = period_length(c.model.frequency)
     q, r = divmod(delay, step)

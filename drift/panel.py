@@ -89,10 +89,11 @@ def period_index(model: ModelConfig, start: pd.Timestamp, end: pd.Timestamp) -> 
 
 def _origins(periods: pd.DatetimeIndex, horizon: int, freq: str) -> pd.DatetimeIndex:
     """Forecast origin (UTC) of each target period for an h-step forecast."""
-    return _shift(periods, freq, horizon - 1).tz_localize("UTC")
+    return shift_periods(periods, freq, horizon - 1).tz_localize("UTC")
 
 
-def _shift(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
+def shift_periods(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
+    """Period starts ``lag`` periods earlier (later for a negative lag)."""
     if lag == 0:
         return periods
     if freq in ("D", "W"):
@@ -105,7 +106,7 @@ def _shift(periods: pd.DatetimeIndex, freq: str, lag: int) -> pd.DatetimeIndex:
 _SHIFT = np.int64(2**32)  # period code * 2^32 + seconds: one sortable int64 key per (period, time)
 
 
-def _ns(values: Any) -> np.ndarray:
+def as_ns(values: Any) -> np.ndarray:
     """datetime-like values -> int64 nanoseconds (UTC for aware ones; NaT -> min int64)."""
     idx = pd.DatetimeIndex(values)
     if idx.tz is not None:
@@ -142,24 +143,24 @@ def values_as_of(vintages: pd.DataFrame, periods: pd.DatetimeIndex, origins: pd.
     if vintages.empty or n == 0:
         return out
     v = vintages
-    usable = _ns(v["available_at"])
+    usable = as_ns(v["available_at"])
     has_issue = form == "forecast" and bool(v["issued_at"].notna().any())
     if has_issue:
         # a forecast is usable from its issue (and not before the store says it was available)
-        issued = _ns(v["issued_at"].fillna(v["available_at"]))
+        issued = as_ns(v["issued_at"].fillna(v["available_at"]))
         usable = np.maximum(issued, usable)
-    vp = _ns(v["period"])
+    vp = as_ns(v["period"])
     uniq = np.unique(vp)
     vcode = np.searchsorted(uniq, vp)
-    rp = _ns(periods)
+    rp = as_ns(periods)
     rcode = np.searchsorted(uniq, rp)
     found = (rcode < uniq.size) & (uniq[np.minimum(rcode, uniq.size - 1)] == rp)
-    base = int(min(usable.min(), _ns(origins).min())) - 10**9
+    base = int(min(usable.min(), as_ns(origins).min())) - 10**9
     vkey = _keys(vcode, usable, base, up=True)
     order = np.argsort(vkey, kind="stable")
     vkey_s = vkey[order]
     vals = v["value"].to_numpy(dtype=float)[order]
-    rkey = _keys(rcode, _ns(origins), base, up=False)
+    rkey = _keys(rcode, as_ns(origins), base, up=False)
     pos = np.searchsorted(vkey_s, rkey, side="right") - 1
     ok = found & (pos >= 0)
     ok[ok] &= (vkey_s[pos[ok]] // _SHIFT) == rcode[ok]
@@ -187,14 +188,14 @@ def latest_values(vintages: pd.DataFrame, periods: pd.DatetimeIndex) -> np.ndarr
     out = np.full(len(periods), np.nan)
     if vintages.empty or len(periods) == 0:
         return out
-    vp = _ns(vintages["period"])
-    at = _ns(vintages["available_at"])
+    vp = as_ns(vintages["period"])
+    at = as_ns(vintages["available_at"])
     order = np.lexsort((np.arange(len(vp)), at, vp))  # by period, then time, then row order
     vp_s = vp[order]
     last = np.r_[vp_s[1:] != vp_s[:-1], True]  # last row of each period
     per = vp_s[last]
     val = vintages["value"].to_numpy(dtype=float)[order][last]
-    rp = _ns(periods)
+    rp = as_ns(periods)
     k = np.searchsorted(per, rp)
     hit = (k < per.size) & (per[np.minimum(k, per.size - 1)] == rp)
     out[hit] = val[k[hit]]
@@ -331,7 +332,7 @@ def build_design(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: pd.T
             continue
         lag = int(lags.get(d.series, d.lag)) if lags else d.lag
         vint = by_series.get(d.series, obs.iloc[0:0])
-        x = values_as_of(vint, _shift(periods, f, lag), origins, d.form)
+        x = values_as_of(vint, shift_periods(periods, f, lag), origins, d.form)
         if stl:
             x = x - _stl_profile(x, n_ref, s, spos, snpos)  # type: ignore[arg-type]
         cols.append(x[:, None])
@@ -340,7 +341,7 @@ def build_design(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: pd.T
         used_lags[d.series] = lag
         k += 1
     for j in model.target_lags:
-        x = values_as_of(tgt, _shift(periods, f, j), origins, "lagged")
+        x = values_as_of(tgt, shift_periods(periods, f, j), origins, "lagged")
         cols.append(x[:, None])
         names.append(f"{model.target}[L{j}]")
         k += 1
