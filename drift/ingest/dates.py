@@ -75,7 +75,8 @@ def describe_range() -> str:
     return f"{EARLIEST:%Y-%m-%d} to {LATEST:%Y-%m-%d}"
 
 
-def _text(v: object) -> str:
+def cell_text(v: object) -> str:
+    """A raw cell as text ('' for a null), as it is shown in messages and quarantine records."""
     if v is None or v is pd.NA or v is pd.NaT:
         return ""
     if isinstance(v, (pd.Timestamp, datetime)):
@@ -163,7 +164,7 @@ def parse_times(values: Sequence[object]) -> tuple[np.ndarray, np.ndarray]:
         if isinstance(v, (pd.Timestamp, datetime, date, np.datetime64)):
             _store(out, problem, i, v, utc=True)
             continue
-        t = _text(v).strip()
+        t = cell_text(v).strip()
         if _is_number(v) or not _ISO_START.match(t):
             problem[i] = Problem.NOT_A_DATE
             continue
@@ -207,7 +208,7 @@ def parse_periods(values: Sequence[object], first_rows: Sequence[int], fmt: str 
             if isinstance(v, (pd.Timestamp, datetime, date, np.datetime64)):
                 _store(out, problem, i, v, utc=False)
             else:
-                texts.append(_text(v).strip())
+                texts.append(cell_text(v).strip())
                 idx.append(i)
         _parse_vectorised(texts, idx, fmt, out, problem, utc=False, strptime_fmt=fmt)
         return out, problem
@@ -219,7 +220,7 @@ def parse_periods(values: Sequence[object], first_rows: Sequence[int], fmt: str 
         if isinstance(v, (pd.Timestamp, datetime, date, np.datetime64)):
             _store(out, problem, i, v, utc=False)
             continue
-        t = _text(v).strip()
+        t = cell_text(v).strip()
         if _is_number(v) or (_NUMBER.match(t) and not _ISO_DIGITS.match(t)):
             numbers.append(i)
             problem[i] = Problem.NUMBER
@@ -243,7 +244,7 @@ def parse_periods(values: Sequence[object], first_rows: Sequence[int], fmt: str 
     if numbers and len(numbers) == n:
         i = min(numbers, key=lambda k: first_rows[k])
         raise InputError(
-            f"the periods are plain numbers, such as '{_text(values[i]).strip()}' (spreadsheet serial day "
+            f"the periods are plain numbers, such as '{cell_text(values[i]).strip()}' (spreadsheet serial day "
             f"numbers?); drift does not guess what they mean: set period_format: {SERIAL_FORMAT} on source "
             f"'{source}' to read them as days since {SERIAL_EPOCH:%Y-%m-%d}, or write the periods as ISO dates "
             "(2024-03-04). Nothing of this file was stored", file=label, row=int(first_rows[i]), column=column)
@@ -260,7 +261,7 @@ def _safe_date(y: int, m: int, d: int) -> datetime | None:
 
 
 def _serial(v: object, i: int, out: np.ndarray, problem: np.ndarray) -> None:
-    t = _text(v).strip()
+    t = cell_text(v).strip()
     try:
         x = float(v) if _is_number(v) else float(t)  # type: ignore[arg-type]
     except ValueError:

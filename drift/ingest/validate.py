@@ -150,12 +150,7 @@ class Validated:
 
 # ----------------------------------------------------------------------------------------- helpers
 
-def _text(v: object) -> str:
-    if v is None or v is pd.NA or v is pd.NaT:
-        return ""
-    if isinstance(v, (pd.Timestamp, datetime)):
-        return v.isoformat()
-    return str(v)
+_text = dates.cell_text
 
 
 def _empty_mask(values: np.ndarray) -> np.ndarray:
