@@ -104,16 +104,21 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
 
         with _opened(config) as (cfg, store):
             summaries = run_ingest(cfg, store, sources=list(sources) or None)
-        failed = False
+        refused = unavailable = False
         for s in summaries:
             click.echo(s.describe())
             src = next((x for x in cfg.sources if x.name == s.source), None)
             if s.files == 0 and src is not None and src.kind != "sql":
                 click.echo(f"  no file matches '{src.path}' (relative to {cfg.base_dir})", err=True)
             for f, msg in s.failed_files:
-                failed = True
+                if f in s.unavailable:
+                    unavailable = True
+                else:
+                    refused = True
                 click.echo(f"  not read: {msg if msg.startswith(f) else f + ': ' + msg}", err=True)
-        if failed:
+        if refused:
+            sys.exit(EXIT_CONFIG)
+        if unavailable:
             sys.exit(EXIT_RUNTIME)
 
     _run(go)

@@ -113,6 +113,10 @@ class SourceConfig(_Strict):
                 raise ValueError("a sql source needs 'query' (it may use the bound parameter :since)")
         if (self.series_column is None) != (self.value_column is None):
             raise ValueError("long format needs both 'series_column' and 'value_column'")
+        if self.period_format is not None and self.period_format != "excel" and "%" not in self.period_format:
+            raise ValueError(f"period_format '{self.period_format}' has no date codes; use codes such as "
+                             "'%d/%m/%Y' (day first) or '%m/%d/%Y' (month first), or 'excel' for spreadsheet "
+                             "serial day numbers")
         return self
 
     @property

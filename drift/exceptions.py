@@ -50,14 +50,19 @@ class ConfigError(DriftError):
 
 
 class InputError(DriftError):
-    """A source (file or query) that cannot be read as a whole; nothing from it was written."""
+    """A source (file or query) that cannot be read as a whole; nothing from it was written.
+
+    ``unavailable`` is True when the source could not be reached (a query that failed to run, a file the
+    system would not read) rather than refused for its content: the CLI exits 1 for those, 2 for the rest.
+    """
 
     def __init__(self, message: str, *, file: str | None = None, row: int | None = None,
-                 column: str | None = None) -> None:
+                 column: str | None = None, unavailable: bool = False) -> None:
         self.message = message
         self.file = file
         self.row = row
         self.column = column
+        self.unavailable = unavailable
         super().__init__(str(self))
 
     def __str__(self) -> str:

@@ -69,6 +69,8 @@ class IngestSummary:
     quarantined : quarantine records written by this ingest (already quarantined ones are not repeated).
     failed_files : (file, message) of every batch that could not be read; nothing of it was written.
     skipped : files whose exact content this source had already ingested (counted as known).
+    unavailable : the labels among ``failed_files`` that could not be reached (a query that failed to run, a
+        file the system would not read) rather than refused for their content.
     """
 
     source: str
@@ -79,6 +81,7 @@ class IngestSummary:
     quarantined: int = 0
     failed_files: list[tuple[str, str]] = field(default_factory=list)
     skipped: int = 0
+    unavailable: list[str] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain dict (JSON-ready) of the fields."""
@@ -102,7 +105,8 @@ class IngestSummary:
                        known=self.known + other.known, revised=self.revised + other.revised,
                        quarantined=self.quarantined + other.quarantined,
                        failed_files=[*self.failed_files, *other.failed_files],
-                       skipped=self.skipped + other.skipped)
+                       skipped=self.skipped + other.skipped,
+                       unavailable=[*self.unavailable, *other.unavailable])
 
 
 def ingest_all(cfg: Config, store: Store, *, sources: list[str] | None = None, now: datetime | None = None,
@@ -179,7 +183,7 @@ def _ingest(cfg: Config, store: Store, source: SourceConfig, now: datetime, rule
             return total + _ingest_batch(store, source, raw, now, rules, bar)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)
-            return total + IngestSummary(source.name, files=1, failed_files=[(sql_label(source), str(exc))])
+            return total + _failed(source, sql_label(source), exc)
     files = cfg.source_files(source)
     if not files:
         log.warning("source %s: no file matches %s", source.name, source.path)
@@ -199,10 +203,15 @@ def _ingest(cfg: Config, store: Store, source: SourceConfig, now: datetime, rule
             total = total + _ingest_batch(store, source, raw, now, rules, bar)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)
-            total = total + IngestSummary(source.name, files=1, failed_files=[(str(path), str(exc))])
+            total = total + _failed(source, str(path), exc)
         finally:
             bar.advance(task)
     return total
+
+
+def _failed(source: SourceConfig, label: str, exc: InputError) -> IngestSummary:
+    return IngestSummary(source.name, files=1, failed_files=[(label, str(exc))],
+                         unavailable=[label] if exc.unavailable else [])
 
 
 def _since(store: Store, source: SourceConfig) -> datetime:

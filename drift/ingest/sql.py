@@ -98,7 +98,7 @@ def read_sql(source: SourceConfig, since: datetime) -> RawTable:
     except sa.exc.SQLAlchemyError as exc:
         first = str(getattr(exc, "orig", None) or exc).splitlines()[0]
         raise InputError(f"the query failed on {redact(url)}: {exc.__class__.__name__}: {first}",
-                         file=label) from None
+                         file=label, unavailable=True) from None
     finally:
         engine.dispose()
     dup = {n for n in names if names.count(n) > 1}

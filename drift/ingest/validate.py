@@ -18,7 +18,8 @@ and SQL the first data row is row 1.
 What is quarantined (and where the record points)
 -------------------------------------------------
 Whole-row problems - one record per data row, pointing at the period / available / issued column:
-an empty or unparseable period, an unparseable available or issued time. None of the row's values is
+an empty or unparseable period, an unparseable available or issued time, a date outside the range drift
+stores (how dates are read, and when a whole batch is refused instead: :mod:`drift.ingest.dates`). None of the row's values is
 stored. A period that is not a period start of the series' frequency (or, with ``period_label: end``,
 not a period end) - one record per row and frequency, naming the series concerned. Cell problems - one
 record per cell, pointing at the value's column: non-numeric and non-finite values, an empty series name,
@@ -42,6 +43,7 @@ import pandas as pd
 
 from drift.config import Config, SourceConfig, next_period, period_start
 from drift.exceptions import InputError
+from drift.ingest import dates
 
 log = logging.getLogger(__name__)
 
@@ -133,7 +135,7 @@ def read_file(path: Path) -> FileBytes:
     except FileNotFoundError:
         raise InputError("file not found", file=label) from None
     except OSError as exc:
-        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label) from None
+        raise InputError(f"cannot read the file: {exc.strerror or exc}", file=label, unavailable=True) from None
     return FileBytes(data=data, digest=hashlib.sha256(data).hexdigest())
 
 
@@ -148,12 +150,7 @@ class Validated:
 
 # ----------------------------------------------------------------------------------------- helpers
 
-def _text(v: object) -> str:
-    if v is None or v is pd.NA or v is pd.NaT:
-        return ""
-    if isinstance(v, (pd.Timestamp, datetime)):
-        return v.isoformat()
-    return str(v)
+_text = dates.cell_text
 
 
 def _empty_mask(values: np.ndarray) -> np.ndarray:
@@ -180,89 +177,50 @@ def _names(names: list[str]) -> str:
     return ", ".join(quoted[:-1]) + " and " + quoted[-1]
 
 
-def _parse_unique_dates(values: np.ndarray, fmt: str | None, *, utc: bool) -> dict[object, pd.Timestamp]:
-    """Parse the distinct raw values of a date column; unparseable values map to NaT.
-
-    Naive results are wall-clock dates (periods) or, with ``utc``, UTC times; aware ones are converted to
-    UTC (``utc``) or reduced to their local wall date (periods).
-    """
-    out: dict[object, pd.Timestamp] = {}
-    uniq = pd.unique(pd.Series(values, dtype=object))
-    pending: list[object] = []
-    for v in uniq:
-        if isinstance(v, (pd.Timestamp, datetime, date, np.datetime64)):
-            ts = pd.Timestamp(v)
-            out[v] = _fix_tz(ts, utc)
-        else:
-            pending.append(v)
-    if not pending:
-        return out
-    texts = pd.Index([_text(v).strip() for v in pending], dtype=object)
-    try:
-        parsed = pd.to_datetime(texts, format=fmt or "ISO8601", errors="coerce", utc=utc)
-        parsed_list = list(parsed)
-    except (ValueError, TypeError, OverflowError):
-        parsed_list = [_parse_one(t, fmt, utc) for t in texts]
-    for v, t, ts in zip(pending, texts, parsed_list, strict=True):
-        if pd.isna(ts) and fmt is None and t:
-            ts = _parse_one(t, fmt, utc)
-        out[v] = ts if pd.isna(ts) else _fix_tz(pd.Timestamp(ts), utc)
-    return out
-
-
-def _parse_one(text: str, fmt: str | None, utc: bool) -> pd.Timestamp:
-    try:
-        if fmt is not None:
-            return pd.Timestamp(datetime.strptime(text, fmt))
-        try:
-            return pd.Timestamp(text)
-        except ValueError:
-            # quarter / month spellings such as 2024Q1 or 2024-03 name a period, whose start we take
-            return pd.Period(text).start_time
-    except (ValueError, TypeError, OverflowError):
-        return pd.NaT  # type: ignore[return-value]
-
-
-def _fix_tz(ts: pd.Timestamp, utc: bool) -> pd.Timestamp:
-    if ts is pd.NaT or pd.isna(ts):
-        return ts
-    if utc:
-        return ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
-    return ts.tz_localize(None) if ts.tzinfo is not None else ts
-
-
-def _parse_row_dates(raw: RawTable, column: str, fmt: str | None, *, utc: bool
+def _parse_row_dates(raw: RawTable, column: str, fmt: str | None, *, utc: bool, source: SourceConfig
                      ) -> tuple[pd.DatetimeIndex, np.ndarray, np.ndarray]:
-    """(parsed values per data row, empty mask, bad mask) for one date column.
+    """(parsed values per data row, empty mask, :class:`~drift.ingest.dates.Problem` code per row).
 
     Periods come back naive (wall dates); available / issued times (``utc``) tz-aware UTC. Distinct raw
-    values are parsed once.
+    values are parsed once (see :mod:`drift.ingest.dates`).
     """
     col = raw.frame[column]
     empty = _column_empty(raw, column)
+    n = len(col)
     if pd.api.types.is_datetime64_any_dtype(col.dtype):
         idx = pd.DatetimeIndex(col)
-        if utc:
-            idx = idx.tz_localize("UTC") if idx.tz is None else idx.tz_convert("UTC")
-        elif idx.tz is not None:
-            idx = idx.tz_localize(None)
-        parsed = idx.as_unit("ns")
+        if idx.tz is not None:
+            idx = idx.tz_convert("UTC").tz_localize(None) if utc else idx.tz_localize(None)
+        far = np.asarray((idx < dates.EARLIEST) | (idx > dates.LATEST), dtype=bool) & ~empty
+        ns = np.where(far | empty, np.iinfo(np.int64).min, idx.as_unit("ns").asi8)
+        problem = np.where(far, dates.Problem.OUT_OF_RANGE, dates.Problem.OK).astype(np.int8)
     else:
         values = col.to_numpy(dtype=object)
         codes, uniq = pd.factorize(pd.Series(values[~empty], dtype=object), use_na_sentinel=True)
-        mapping = _parse_unique_dates(np.asarray(uniq, dtype=object), fmt, utc=utc)
-        tz = "UTC" if utc else None
-        u_parsed = pd.DatetimeIndex([mapping.get(v, pd.NaT) for v in uniq], tz=tz).as_unit("ns")
-        ns = np.full(len(values), np.iinfo(np.int64).min, dtype=np.int64)  # NaT
+        rows_present = raw.first_row + np.nonzero(~empty)[0]
+        first_rows = np.full(len(uniq), 0, dtype=np.int64)
         ok = codes >= 0
-        picked = np.full(len(codes), np.iinfo(np.int64).min, dtype=np.int64)
-        picked[ok] = u_parsed.asi8[codes[ok]]
-        ns[~empty] = picked
-        parsed = pd.DatetimeIndex(ns.view("datetime64[ns]"))
+        u_first, first_pos = np.unique(codes[ok], return_index=True)
+        first_rows[u_first] = rows_present[ok][first_pos]
+        uvals = list(np.asarray(uniq, dtype=object))
         if utc:
-            parsed = parsed.tz_localize("UTC")
-    bad = np.asarray(parsed.isna(), dtype=bool) & ~empty
-    return parsed, empty, bad
+            u_ns, u_problem = dates.parse_times(uvals)
+        else:
+            u_ns, u_problem = dates.parse_periods(uvals, first_rows, fmt, label=raw.label, column=column,
+                                                  source=source.name)
+        ns = np.full(n, np.iinfo(np.int64).min, dtype=np.int64)
+        problem = np.zeros(n, dtype=np.int8)
+        picked = np.full(len(codes), np.iinfo(np.int64).min, dtype=np.int64)
+        picked_p = np.full(len(codes), dates.Problem.NOT_A_DATE, dtype=np.int8)
+        picked[ok] = u_ns[codes[ok]]
+        picked_p[ok] = u_problem[codes[ok]]
+        ns[~empty] = picked
+        problem[~empty] = picked_p
+    parsed = pd.DatetimeIndex(ns.view("datetime64[ns]"))
+    if utc:
+        parsed = parsed.tz_localize("UTC")
+    problem[empty] = dates.Problem.OK
+    return parsed, empty, problem
 
 
 # ----------------------------------------------------------------------------------------- validate
@@ -304,14 +262,16 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
 
     # ---- row-level: period, available, issued
     period_raw = frame[pc].to_numpy()
-    period_idx, period_empty, period_bad = _parse_row_dates(raw, pc, source.period_format, utc=False)
+    period_idx, period_empty, period_problem = _parse_row_dates(raw, pc, source.period_format, utc=False,
+                                                                source=source)
     periods = period_idx.to_numpy()
     avail = issued = None
-    avail_bad = issued_bad = np.zeros(n, dtype=bool)
+    no_problem = np.zeros(n, dtype=np.int8)
+    avail_problem = issued_problem = no_problem
     if source.available_column is not None:
-        avail, _, avail_bad = _parse_row_dates(raw, source.available_column, None, utc=True)
+        avail, _, avail_problem = _parse_row_dates(raw, source.available_column, None, utc=True, source=source)
     if source.issued_column is not None:
-        issued, _, issued_bad = _parse_row_dates(raw, source.issued_column, None, utc=True)
+        issued, _, issued_problem = _parse_row_dates(raw, source.issued_column, None, utc=True, source=source)
 
     # ---- cells (long table of non-empty value cells)
     if source.long_format:
@@ -353,18 +313,18 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
     has_value = np.zeros(n, dtype=bool)
     has_value[cell_row] = True
     row_fail = np.zeros(n, dtype=bool)
-    for mask, col, what in (
-        (period_empty & has_value, pc, None),
-        (period_bad & has_value, pc, "period"),
-        (avail_bad & has_value, source.available_column, "available"),
-        (issued_bad & has_value, source.issued_column, "issued"),
+    for mask, col, what, problem in (
+        (period_empty & has_value, pc, None, no_problem),
+        ((period_problem != 0) & has_value, pc, "period", period_problem),
+        ((avail_problem != 0) & has_value, source.available_column, "available", avail_problem),
+        ((issued_problem != 0) & has_value, source.issued_column, "issued", issued_problem),
     ):
         mask = mask & ~row_fail
         if not mask.any():
             continue
         idx = np.nonzero(mask)[0]
         colvals = frame[col].to_numpy()[idx]
-        reasons = [_row_reason(what, _text(v), source) for v in colvals]
+        reasons = [_row_reason(what, _text(v), source, int(p)) for v, p in zip(colvals, problem[idx], strict=True)]
         qrecords.append(pd.DataFrame({"row": rows[idx], "column": col,
                                       "raw_value": [_text(v) for v in colvals], "reason": reasons}))
         row_fail |= mask
@@ -484,10 +444,16 @@ def _day(ts: pd.Timestamp) -> str:
     return ts.strftime("%Y-%m-%d")
 
 
-def _row_reason(what: str | None, text: str, source: SourceConfig) -> str:
+def _row_reason(what: str | None, text: str, source: SourceConfig, problem: int = 0) -> str:
     if what is None:
         return "the period is empty, so the row's values cannot be placed in time"
+    if problem == dates.Problem.OUT_OF_RANGE:
+        return (f"{what if what == 'period' else what + ' time'} '{text}' is outside the range of dates drift "
+                f"stores ({dates.describe_range()}); none of the row's values was stored")
     if what == "period":
+        if problem == dates.Problem.NUMBER:
+            return (f"period '{text}' is a number, not a date (a spreadsheet serial day number? set "
+                    f"period_format: {dates.SERIAL_FORMAT}); none of the row's values was stored")
         hint = (f"in the format '{source.period_format}'" if source.period_format else
                 "(write ISO dates such as 2024-03-04, or set 'period_format')")
         return f"period '{text}' is not a date {hint}; none of the row's values was stored"
