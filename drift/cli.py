@@ -171,12 +171,31 @@ def _strict(obj: Any) -> Any:
 
 @cli.command()
 @config_opt
-def deliver(config: str) -> None:
+@click.option("--resend", "resend", multiple=True, type=int, metavar="ID",
+              help="Queue this uncertain outbox row again and send it (repeatable; see drift status).")
+@click.option("--accept", "accept", multiple=True, type=int, metavar="ID",
+              help="Record this uncertain outbox row as delivered (repeatable).")
+def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> None:
     """Send whatever is pending in the outbox now (failed sends stay pending and are retried later)."""
     def go() -> None:
+        from drift.delivery.outbox import not_uncertain, resolve_uncertain
         from drift.pipeline import run_deliver
 
         with _opened(config) as (cfg, store):
+            both = sorted(set(resend) & set(accept))
+            if both:
+                _fail(EXIT_CONFIG, f"outbox row {', '.join(map(str, both))}: give each row to --resend or "
+                                   "--accept, not both")
+            wrong = not_uncertain(store, [*resend, *accept])
+            if wrong:
+                _fail(EXIT_CONFIG, "only uncertain outbox rows can be resent or accepted; "
+                      + "; ".join(f"row {i} is {st}" for i, st in sorted(wrong.items())))
+            if accept:
+                n = resolve_uncertain(store, list(accept), resend=False)
+                click.echo(f"{n} uncertain notice{'s' if n != 1 else ''} recorded as delivered")
+            if resend:
+                n = resolve_uncertain(store, list(resend), resend=True)
+                click.echo(f"{n} uncertain notice{'s' if n != 1 else ''} queued again")
             report = run_deliver(cfg, store)
         click.echo(report.describe() if hasattr(report, "describe") else str(report))
 

@@ -322,6 +322,16 @@ class WebhookChannel(_Strict):
     timeout: float = Field(10.0, gt=0)
     headers_env: dict[str, str] = Field(default_factory=dict)
 
+    @field_validator("url")
+    @classmethod
+    def _http_only(cls, v: str) -> str:
+        from urllib.parse import urlsplit
+
+        parts = urlsplit(v)
+        if parts.scheme.lower() not in ("http", "https") or not parts.netloc:
+            raise ValueError("a webhook url must be an http:// or https:// address with a host")
+        return v
+
 
 Channel = Annotated[EmailChannel | FolderChannel | WebhookChannel, Field(discriminator="kind")]
 

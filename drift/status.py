@@ -152,6 +152,31 @@ def _t(x: datetime | None) -> str:
     return "-" if x is None else x.strftime("%Y-%m-%d %H:%M %Z").strip()
 
 
+def _outbox_lines(ob: dict[str, Any]) -> list[str]:
+    """The outbox section: counts, the pending backlog, and every row waiting on an operator."""
+    counts = ob.get("counts") or {}
+    n_unc = len(ob["uncertain"])
+    head = f"outbox: {ob['pending']} pending" + (f" (oldest {_t(ob['oldest_pending'])})" if ob["oldest_pending"]
+                                                  else "")
+    head += f", {n_unc} uncertain, {counts.get('sent', 0)} sent"
+    if counts.get("sending"):
+        head += f", {counts['sending']} being sent"
+    if ob["dead"]:
+        head += f", {len(ob['dead'])} given up"
+    lines = [head]
+    if ob["last_error"]:
+        lines.append(f"  last error: {ob['last_error'][:200]}")
+    if n_unc:
+        lines.append(f"  {n_unc} notice{'s' if n_unc != 1 else ''} may have been delivered or not (the connection "
+                     "failed after the message went out): never re-sent automatically; ask the recipients, then "
+                     "`drift deliver --resend ID` or `--accept ID`")
+    for st in _OPERATOR_STATUSES:
+        for r in ob[st]:
+            lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"
+                         + (f": {r['last_error'][:120]}" if r["last_error"] else ""))
+    return lines
+
+
 def format_status(status: dict[str, Any]) -> str:
     """Plain-text rendering of :func:`collect_status` for a terminal."""
     lines = []
@@ -174,16 +199,8 @@ def format_status(status: dict[str, Any]) -> str:
             lines.append(f"           {j['error'][:200]}")
         elif j.get("failed_models"):
             lines.append(f"           {j['failed_models']} model(s) could not be checked")
-    ob = status["outbox"]
     lines.append("")
-    lines.append(f"outbox: {ob['pending']} pending" + (f", oldest {_t(ob['oldest_pending'])}"
-                                                       if ob["oldest_pending"] else ""))
-    if ob["last_error"]:
-        lines.append(f"  last error: {ob['last_error'][:200]}")
-    for st in _OPERATOR_STATUSES:
-        for r in ob[st]:
-            lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"
-                         + (f": {r['last_error'][:120]}" if r["last_error"] else ""))
+    lines += _outbox_lines(status["outbox"])
     feeds = status["stale_feeds"]
     lines.append("")
     lines.append(f"late feeds: {len(feeds)}" if feeds else "late feeds: none")
