@@ -6,6 +6,7 @@ it for a terminal. Both only read the store.
 
 from __future__ import annotations
 
+import json
 from datetime import datetime
 from typing import Any
 
@@ -35,7 +36,8 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
     - ``now``, ``timezone`` (the schedule's zone name)
     - ``jobs``: name -> {``schedule`` (text or None), ``last_run`` (started_at), ``finished_at``,
       ``outcome`` (runs.status), ``duration`` (seconds), ``error``, ``next_run`` (aware, in the schedule zone)}
-      for ingest, check, digest, retry
+      for ingest, check, digest, retry; the check's also ``failed_models`` (how many models its last run
+      could not check, None when unknown)
     - ``outbox``: {``pending`` (count), ``oldest_pending`` (created_at), ``last_error`` (newest error of a
       pending row), ``counts`` (per status), ``uncertain`` and ``dead`` (rows: id, channel, subject,
       attempts, last_error, created_at)}
@@ -72,6 +74,8 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
             "error": last["error"] if last else None,
             "next_run": nxt,
         }
+        if name == "check":
+            jobs[name]["failed_models"] = _failed_models(last)
     lock = read_lock(store, "daemon")
     if lock is not None:
         lock["stale"] = is_stale(lock, now=now, stale_after=STALE_AFTER_SECONDS)
@@ -84,6 +88,17 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
         "open_alerts": _open_alerts(store),
         "lock": lock,
     }
+
+
+def _failed_models(run: dict[str, Any] | None) -> int | None:
+    """How many models a check run could not check (its detail's ``failed``); None when not recorded."""
+    if run is None or not run.get("detail"):
+        return None
+    try:
+        n = json.loads(run["detail"]).get("failed")
+    except (ValueError, AttributeError):
+        return None
+    return int(n) if isinstance(n, int) else None
 
 
 def _outbox(store: Store) -> dict[str, Any]:
@@ -137,6 +152,31 @@ def _t(x: datetime | None) -> str:
     return "-" if x is None else x.strftime("%Y-%m-%d %H:%M %Z").strip()
 
 
+def _outbox_lines(ob: dict[str, Any]) -> list[str]:
+    """The outbox section: counts, the pending backlog, and every row waiting on an operator."""
+    counts = ob.get("counts") or {}
+    n_unc = len(ob["uncertain"])
+    head = f"outbox: {ob['pending']} pending" + (f" (oldest {_t(ob['oldest_pending'])})" if ob["oldest_pending"]
+                                                  else "")
+    head += f", {n_unc} uncertain, {counts.get('sent', 0)} sent"
+    if counts.get("sending"):
+        head += f", {counts['sending']} being sent"
+    if ob["dead"]:
+        head += f", {len(ob['dead'])} given up"
+    lines = [head]
+    if ob["last_error"]:
+        lines.append(f"  last error: {ob['last_error'][:200]}")
+    if n_unc:
+        lines.append(f"  {n_unc} notice{'s' if n_unc != 1 else ''} may have been delivered or not (the connection "
+                     "failed after the message went out): never re-sent automatically; ask the recipients, then "
+                     "`drift deliver --resend ID` or `--accept ID`")
+    for st in _OPERATOR_STATUSES:
+        for r in ob[st]:
+            lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"
+                         + (f": {r['last_error'][:120]}" if r["last_error"] else ""))
+    return lines
+
+
 def format_status(status: dict[str, Any]) -> str:
     """Plain-text rendering of :func:`collect_status` for a terminal."""
     lines = []
@@ -157,16 +197,10 @@ def format_status(status: dict[str, Any]) -> str:
                      f"{(j['outcome'] or '-'):<10} {took:>8}  {_t(j['next_run'])}")
         if j["outcome"] not in (None, "ok", "running") and j["error"]:
             lines.append(f"           {j['error'][:200]}")
-    ob = status["outbox"]
+        elif j.get("failed_models"):
+            lines.append(f"           {j['failed_models']} model(s) could not be checked")
     lines.append("")
-    lines.append(f"outbox: {ob['pending']} pending" + (f", oldest {_t(ob['oldest_pending'])}"
-                                                       if ob["oldest_pending"] else ""))
-    if ob["last_error"]:
-        lines.append(f"  last error: {ob['last_error'][:200]}")
-    for st in _OPERATOR_STATUSES:
-        for r in ob[st]:
-            lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"
-                         + (f": {r['last_error'][:120]}" if r["last_error"] else ""))
+    lines += _outbox_lines(status["outbox"])
     feeds = status["stale_feeds"]
     lines.append("")
     lines.append(f"late feeds: {len(feeds)}" if feeds else "late feeds: none")

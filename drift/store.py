@@ -23,7 +23,8 @@ import logging
 import math
 import os
 import socket
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import date, datetime, timezone
 from typing import Any
@@ -280,35 +281,94 @@ def utcnow() -> datetime:
     return datetime.now(timezone.utc)
 
 
-def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
-    cur = dbapi_conn.cursor()
-    cur.execute("PRAGMA journal_mode=WAL")
-    cur.execute("PRAGMA synchronous=NORMAL")
-    cur.execute("PRAGMA foreign_keys=ON")
-    cur.execute("PRAGMA busy_timeout=30000")
-    cur.close()
+#: seconds a SQLite write waits for another process's write lock before failing (``?timeout=`` in the URL)
+SQLITE_BUSY_TIMEOUT = 30.0
+#: seconds to wait for a PostgreSQL server to accept a connection (``?connect_timeout=`` in the URL)
+PG_CONNECT_TIMEOUT = 10
+#: how drift's sessions are named in ``pg_stat_activity`` (``?application_name=`` in the URL overrides it)
+PG_APPLICATION_NAME = "drift"
+#: SQLite error texts that mean "another connection holds the lock" (SQLITE_BUSY / SQLITE_LOCKED)
+_SQLITE_BUSY_TEXTS = ("database is locked", "database table is locked", "database schema is locked")
+
+
+def _sqlite_connect(busy_ms: int) -> Any:
+    """The ``connect`` hook of a SQLite engine: WAL, foreign keys, the busy timeout, and no implicit
+    transactions from the driver (drift emits BEGIN itself, see :func:`_sqlite_begin`)."""
+
+    def hook(dbapi_conn: Any, _record: Any) -> None:
+        dbapi_conn.isolation_level = None  # the sqlite3 module must not open transactions behind our back
+        cur = dbapi_conn.cursor()
+        cur.execute(f"PRAGMA busy_timeout={int(busy_ms)}")
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute("PRAGMA synchronous=NORMAL")
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.close()
+
+    return hook
+
+
+def _sqlite_begin(conn: Connection) -> None:
+    """``BEGIN IMMEDIATE`` for a write transaction (:meth:`Store.begin`), plain ``BEGIN`` for reads.
+
+    A write transaction takes SQLite's write lock when it starts, so its reads and writes see one state
+    and a concurrent writer makes it wait (up to the busy timeout) instead of failing half-way with
+    SQLITE_BUSY when a read transaction tries to become a write one.
+    """
+    write = conn.get_execution_options().get("drift_write", False)
+    conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
 
 
 @dataclass
 class Store:
-    """A connected store. Create with :func:`open_store`."""
+    """A connected store. Create with :func:`open_store`.
+
+    :meth:`begin` and :meth:`connect` turn the two database failures an operator has to act on into a
+    :class:`~drift.exceptions.StoreError` naming the store: a SQLite file whose write lock another process
+    held for longer than the busy timeout, and a connection lost mid-step (server restarted, session
+    terminated). Every other database error passes through unchanged.
+    """
 
     engine: Engine
     url: str
+    busy_timeout: float = SQLITE_BUSY_TIMEOUT
 
     @property
     def dialect(self) -> str:
         return self.engine.dialect.name
 
-    def begin(self) -> Any:
-        """A transaction (context manager yielding a Connection)."""
-        return self.engine.begin()
+    @property
+    def name(self) -> str:
+        """The store as shown to people: the SQLite file, or the server URL without its password."""
+        return describe_store(self.url)
 
-    def connect(self) -> Any:
-        return self.engine.connect()
+    @contextmanager
+    def begin(self) -> Iterator[Connection]:
+        """A write transaction (context manager yielding a Connection; commits on success)."""
+        with self._translated():
+            with self.engine.connect() as conn:
+                conn.execution_options(drift_write=True)
+                with conn.begin():
+                    yield conn
+
+    @contextmanager
+    def connect(self) -> Iterator[Connection]:
+        """A connection for reading (its transaction is rolled back on exit unless committed)."""
+        with self._translated():
+            with self.engine.connect() as conn:
+                yield conn
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+    @contextmanager
+    def _translated(self) -> Iterator[None]:
+        try:
+            yield
+        except sa.exc.DBAPIError as exc:
+            err = store_failure(self, exc)
+            if err is None:
+                raise
+            raise err from exc
 
     # ---------------------------------------------------------------- observations
     def latest_vintages(self, conn: Connection, series: Iterable[str]) -> pd.DataFrame:
@@ -601,42 +661,71 @@ def _chunks(seq: list[Any], n: int) -> Iterable[list[Any]]:
 def open_store(url: str, *, create: bool = True) -> Store:
     """Connect to the store at ``url``, creating the schema if needed and checking its version.
 
+    A SQLite file is created owner-only (mode 0600; SQLite gives its ``-wal`` and ``-shm`` files the same
+    mode). URL options: SQLite ``?timeout=SECONDS`` (how long a write waits for another process's write
+    lock, default :data:`SQLITE_BUSY_TIMEOUT`); PostgreSQL ``connect_timeout`` and ``application_name``
+    (defaults :data:`PG_CONNECT_TIMEOUT`, :data:`PG_APPLICATION_NAME`).
+
     Raises
     ------
     StoreError
-        when the database cannot be reached.
+        when the database cannot be reached, or stays locked by another process beyond the timeout.
     SchemaVersionError
         when the store was written by a newer drift (its schema version is higher than ours).
     """
-    kwargs: dict[str, Any] = {"future": True}
-    if url.startswith("sqlite"):
-        path = url.split(":///", 1)[-1]
-        if path and path != ":memory:":
+    try:
+        parsed = sa.engine.make_url(url)
+    except sa.exc.ArgumentError as exc:
+        raise StoreError(f"cannot use store URL {_redact(url)}: {exc}") from None
+    kwargs: dict[str, Any] = {}
+    busy = SQLITE_BUSY_TIMEOUT
+    if parsed.get_backend_name() == "sqlite":
+        raw = parsed.query.get("timeout")
+        if raw is not None:
+            try:
+                busy = float(raw if isinstance(raw, str) else raw[0])
+            except ValueError:
+                raise StoreError(f"store URL {_redact(url)}: timeout must be a number of seconds, "
+                                 f"got {raw!r}") from None
+            if not (busy >= 0 and math.isfinite(busy)):
+                raise StoreError(f"store URL {_redact(url)}: timeout must be a non-negative number of seconds")
+        path = parsed.database
+        if path and path != ":memory:" and not path.startswith("file:"):
             parent = os.path.dirname(path)
             if parent and not os.path.isdir(parent):
                 raise StoreError(f"cannot open the SQLite store {path}: folder {parent} does not exist")
-        kwargs["connect_args"] = {"timeout": 30}
+            _create_owner_only(path)
+        kwargs["connect_args"] = {"timeout": busy}
     else:
         kwargs["pool_pre_ping"] = True
+        if parsed.get_backend_name() == "postgresql":
+            args: dict[str, Any] = {}
+            if "application_name" not in parsed.query:
+                args["application_name"] = PG_APPLICATION_NAME
+            if "connect_timeout" not in parsed.query:
+                args["connect_timeout"] = PG_CONNECT_TIMEOUT
+            kwargs["connect_args"] = args
     try:
         engine = sa.create_engine(url, **kwargs)
     except (sa.exc.ArgumentError, ModuleNotFoundError) as exc:
         raise StoreError(f"cannot use store URL {_redact(url)}: {exc}") from None
     if engine.dialect.name == "sqlite":
-        sa.event.listen(engine, "connect", _sqlite_pragmas)
+        sa.event.listen(engine, "connect", _sqlite_connect(int(busy * 1000)))
+        sa.event.listen(engine, "begin", _sqlite_begin)
+    store = Store(engine=engine, url=url, busy_timeout=busy)
     try:
-        with engine.begin() as conn:
-            insp = sa.inspect(conn)
-            has_meta = insp.has_table("meta")
-            version = None
-            if has_meta:
-                row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
-                version = int(row[0]) if row else None
-            if version is not None and version > SCHEMA_VERSION:
-                raise SchemaVersionError(
-                    f"the store at {_redact(url)} has schema version {version}, newer than this drift "
-                    f"understands ({SCHEMA_VERSION}); upgrade drift before using this store")
-            if create:
+        # read first: an up-to-date store needs no write lock to open (status works during a long ingest)
+        with store.connect() as conn:
+            version = _schema_version(conn)
+            complete = version is not None and set(metadata.tables) <= set(sa.inspect(conn).get_table_names())
+        if version is not None and version > SCHEMA_VERSION:
+            raise SchemaVersionError(
+                f"the store at {_redact(url)} has schema version {version}, newer than this drift "
+                f"understands ({SCHEMA_VERSION}); upgrade drift before using this store")
+        older = version is not None and version < SCHEMA_VERSION
+        if create and (not complete or older):
+            with store.begin() as conn:
+                version = _schema_version(conn)
                 if version is not None and version < SCHEMA_VERSION:
                     migrate(conn, url)
                 metadata.create_all(conn)
@@ -649,7 +738,51 @@ def open_store(url: str, *, create: bool = True) -> Store:
         engine.dispose()
         raise StoreError(f"cannot open the store at {_redact(url)}: {exc.__class__.__name__}: "
                          f"{str(exc).splitlines()[0]}") from None
-    return Store(engine=engine, url=url)
+    return store
+
+
+def _schema_version(conn: Connection) -> int | None:
+    if not sa.inspect(conn).has_table("meta"):
+        return None
+    row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
+    return int(row[0]) if row else None
+
+
+def _create_owner_only(path: str) -> None:
+    """Create an empty SQLite file readable and writable by its owner only, unless it exists."""
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        return
+    except OSError as exc:
+        raise StoreError(f"cannot create the SQLite store {path}: {exc.strerror}") from None
+    os.close(fd)
+
+
+def describe_store(url: str) -> str:
+    """How a store is named in messages: ``the SQLite store /path/drift.db`` or the URL without password."""
+    try:
+        parsed = sa.engine.make_url(url)
+    except Exception:  # noqa: BLE001 - best effort for messages only
+        return "the store"
+    if parsed.get_backend_name() == "sqlite":
+        return f"the SQLite store {parsed.database or ':memory:'}"
+    return f"the store at {_redact(url)}"
+
+
+def store_failure(store: Store, exc: sa.exc.DBAPIError) -> StoreError | None:
+    """A :class:`StoreError` for a database error an operator must act on (held lock, lost connection),
+    or None for any other error (which is then raised as it is)."""
+    first = (str(getattr(exc, "orig", None) or exc).strip().splitlines() or [""])[0][:300]
+    if exc.connection_invalidated:
+        return StoreError(f"the connection to {store.name} was lost during this step ({first}); the step's "
+                          "open transaction was rolled back and the next run reconnects")
+    if store.dialect == "sqlite" and isinstance(exc, sa.exc.OperationalError) and any(
+            t in first.lower() for t in _SQLITE_BUSY_TEXTS):
+        return StoreError(f"{store.name} is locked by another process: its write lock stayed taken for more "
+                          f"than {store.busy_timeout:g} s (the busy timeout; '?timeout=SECONDS' in the store "
+                          "URL sets it). This step was not written; run it again when the other process is done")
+    return None
 
 
 

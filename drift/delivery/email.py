@@ -4,16 +4,30 @@ The message is ``multipart/alternative`` with a plain-text part and a ``multipar
 holds the charts as inline PNG images (``cid:`` references). Its ``Message-ID`` is
 ``<KEY@drift>`` with the outbox idempotency key (characters not allowed there become dots; the raw key is
 also in ``X-Drift-Key``). A row whose notice already carries ``text`` and ``html`` strings (the digest)
-is sent with those bodies as they are.
+is sent with those bodies as they are. User strings (model and series names, reasons) only reach headers
+through the ``Subject``, which is folded to one line with control characters removed, so a name holding a
+line break cannot add a header or a recipient; recipients come from the config alone.
 
-Which failures mean "not delivered" and which mean "unknown" (see :mod:`drift.delivery.outbox`):
+Which failures mean "not delivered" and which mean "unknown" (see :mod:`drift.delivery.outbox`). The
+session is driven step by step (greeting, EHLO, [STARTTLS, AUTH], MAIL, RCPT, DATA, the data, the final
+reply) so every failure is placed before or after the moment the server could have taken the message:
 
-- cannot connect, TLS or login fails, a credential variable is missing -> ChannelUnavailable (retried later,
-  the channel's other rows wait);
-- the server refuses MAIL/RCPT/DATA with a reply code, or drops the connection before the message data
-  was sent -> DeliveryError (retried later);
-- the connection drops or times out *while the message data is sent or its reply awaited* ->
-  DeliveryUncertain (the server may have accepted it; not re-sent automatically).
+===================================================  ===========================================
+what happened                                        outcome
+===================================================  ===========================================
+cannot connect; greeting not 220; EHLO and HELO      ChannelUnavailable: retried later, the
+refused; TLS or login fails; a credential variable   channel's other rows wait for the next round
+is missing; a ``421`` reply at any step; the
+connection drops or times out before the data
+MAIL, RCPT (every recipient), the DATA command or    DeliveryError: retried later
+the final reply refused with another 4xx/5xx code;
+the data could not be written out in full
+the connection drops or times out after the whole    DeliveryUncertain: the server may have
+message was written, before the final reply          accepted it; never re-sent automatically
+===================================================  ===========================================
+
+A refusal after the data (a 4xx/5xx final reply) is certain: the server answered that it did not take
+the message. Only silence after the data is uncertain.
 
 Credentials are read from the variables named by ``username_env`` / ``password_env`` at send time, never
 from the YAML, and never appear in a log line or an error message (errors name the variable only).
@@ -51,6 +65,14 @@ ChartRenderer = Callable[..., Mapping[str, bytes]]
 #: domain part of the Message-ID and of the image Content-IDs
 MSGID_DOMAIN = "drift"
 _NOT_ATOM = re.compile(r"[^A-Za-z0-9!#$%&'*+/=?^_`{|}~.-]+")
+#: control characters (line breaks included) replaced by a space in a header value
+_CONTROL = re.compile(r"[\x00-\x1f\x7f\u0085\u2028\u2029]+")
+#: longest subject kept (characters); longer ones are cut with an ellipsis
+MAX_SUBJECT = 250
+#: the reply that means "service not available, closing the connection": the server, not the message
+_CLOSING = 421
+#: a line starting with a dot is sent with one more (RFC 5321 section 4.5.2, transparency)
+_LEADING_DOT = re.compile(rb"(?m)^\.")
 
 
 def tls_context() -> ssl.SSLContext:
@@ -129,7 +151,7 @@ class EmailSender(Channel):
             cids = {kind: f"{kind}.{ident[:16]}@{MSGID_DOMAIN}" for kind in pngs}
             body = render(notice, images={k: f"cid:{c}" for k, c in cids.items()}, notes=notes)
         em = EmailMessage()
-        em["Subject"] = msg.subject or body.subject
+        em["Subject"] = header_text(msg.subject or body.subject)
         em["From"] = self.spec.sender
         em["To"] = ", ".join(self.spec.to)
         em["Date"] = formatdate(localtime=False, usegmt=True)
@@ -149,23 +171,42 @@ class EmailSender(Channel):
     # ------------------------------------------------------------------ sending
     def _connect(self) -> smtplib.SMTP:
         s = self.spec
+        where = f"the SMTP server {s.host}:{s.port} ({s.security})"
         try:
             if s.security == "ssl":
                 smtp: smtplib.SMTP = smtplib.SMTP_SSL(s.host, s.port, timeout=s.timeout, context=tls_context())
             else:
                 smtp = smtplib.SMTP(s.host, s.port, timeout=s.timeout)
-            try:
-                smtp.ehlo()
-                if s.security == "starttls":
-                    smtp.starttls(context=tls_context())
-                    smtp.ehlo()
-            except BaseException:
-                _quiet_close(smtp)
-                raise
+        except smtplib.SMTPConnectError as exc:
+            raise ChannelUnavailable(f"{where} refused the connection: {exc.smtp_code} "
+                                     f"{_text(exc.smtp_error)}") from None
         except (OSError, smtplib.SMTPException) as exc:
-            raise ChannelUnavailable(f"cannot reach the SMTP server {s.host}:{s.port} ({s.security}): "
-                                     f"{exc.__class__.__name__}: {exc}") from None
+            raise ChannelUnavailable(f"cannot reach {where}: {exc.__class__.__name__}: {exc}") from None
+        try:
+            self._hello(smtp, where)
+            if s.security == "starttls":
+                smtp.starttls(context=tls_context())
+                self._hello(smtp, where)
+        except ChannelUnavailable:
+            _quiet_close(smtp)
+            raise
+        except (OSError, smtplib.SMTPException) as exc:
+            _quiet_close(smtp)
+            raise ChannelUnavailable(f"cannot reach {where}: {exc.__class__.__name__}: {exc}") from None
         return smtp
+
+    @staticmethod
+    def _hello(smtp: smtplib.SMTP, where: str) -> None:
+        """EHLO, falling back to HELO (RFC 5321 section 3.2) unless the server is closing (421)."""
+        code, resp = smtp.ehlo()
+        if code == 250:
+            return
+        if code != _CLOSING:
+            code2, resp2 = smtp.helo()
+            if code2 == 250:
+                return
+            code, resp = code2, resp2
+        raise ChannelUnavailable(f"{where} refused EHLO/HELO: {code} {_text(resp)}")
 
     def _login(self, smtp: smtplib.SMTP) -> None:
         user = _env(self.spec.username_env, "user name")
@@ -186,55 +227,84 @@ class EmailSender(Channel):
             raise ChannelUnavailable(f"SMTP login to {self.spec.host} failed: {exc.__class__.__name__}") from None
 
     def send(self, msg: OutboxMessage) -> None:
-        em = self.build(msg)
+        try:
+            em = self.build(msg)
+            data = em.as_bytes(policy=email.policy.SMTP)  # CRLF line ends, as the wire wants them
+        except Exception as exc:  # nothing was sent: a message that cannot be built is certainly not delivered
+            log.exception("e-mail %s could not be composed", msg.key[:12])
+            raise DeliveryError(f"the message could not be composed ({exc.__class__.__name__}); nothing was "
+                                "sent") from None
         # read the credentials before connecting, so a missing variable is reported as such
         _env(self.spec.username_env, "user name")
         _env(self.spec.password_env, "password")
         smtp = self._connect()
         try:
             self._login(smtp)
-            self._transfer(smtp, em)
+            self._transfer(smtp, data)
         finally:
             _quiet_close(smtp)
         log.info("e-mail %s sent to %d recipient(s) via %s", msg.key[:12], len(self.spec.to), self.name)
 
-    def _transfer(self, smtp: smtplib.SMTP, em: EmailMessage) -> None:
-        """MAIL, RCPT, DATA step by step, so a failure can be placed before or after the data went out."""
+    def _transfer(self, smtp: smtplib.SMTP, data: bytes) -> None:
+        """MAIL, RCPT, DATA, the data and the final reply, each failure placed before or after the data
+        went out (the table in the module docstring)."""
         host = self.spec.host
+
+        def refused(step: str, code: int, resp: Any) -> DeliveryError:
+            text = f"SMTP server {host} refused {step}: {code} {_text(resp)}"
+            return ChannelUnavailable(text) if code == _CLOSING else DeliveryError(text)
+
         try:
             code, resp = smtp.mail(self.spec.sender)
             if code != 250:
-                raise DeliveryError(f"SMTP server {host} refused the sender: {code} {_text(resp)}")
+                raise refused("the sender (MAIL)", code, resp)
             accepted = 0
             refusals = []
             for rcpt in self.spec.to:
                 code, resp = smtp.rcpt(rcpt)
                 if code in (250, 251):
                     accepted += 1
+                elif code == _CLOSING:
+                    raise refused(f"the recipient {rcpt} (RCPT)", code, resp)
                 else:
                     refusals.append(f"{rcpt}: {code} {_text(resp)}")
             if accepted == 0:
                 raise DeliveryError(f"SMTP server {host} refused every recipient ({'; '.join(refusals)})")
             if refusals:
                 log.warning("SMTP server %s refused some recipients: %s", host, "; ".join(refusals))
+            code, resp = smtp.docmd("data")
+            if code != 354:
+                raise refused("to take the message (DATA)", code, resp)
         except (smtplib.SMTPServerDisconnected, OSError) as exc:
-            raise DeliveryError(f"SMTP server {host} closed the connection before the message was sent: "
-                                f"{exc.__class__.__name__}: {exc}") from None
+            raise ChannelUnavailable(f"SMTP server {host} closed the connection or stopped answering before the "
+                                     f"message was sent: {exc.__class__.__name__}: {exc}") from None
         except smtplib.SMTPException as exc:
             raise DeliveryError(f"SMTP server {host}: {exc.__class__.__name__}: {exc}") from None
+        body = _LEADING_DOT.sub(b"..", data)
+        if not body.endswith(b"\r\n"):
+            body += b"\r\n"
         try:
-            # bytes go to the wire as they are: CRLF line ends (smtplib fixes them for str only)
-            code, resp = smtp.data(em.as_bytes(policy=email.policy.SMTP))
-        except smtplib.SMTPDataError as exc:
-            raise DeliveryError(f"SMTP server {host} refused the message: {exc.smtp_code} "
-                                f"{_text(exc.smtp_error)}") from None
+            smtp.send(body + b".\r\n")
         except (smtplib.SMTPServerDisconnected, OSError) as exc:
-            raise DeliveryUncertain(f"SMTP server {host} dropped the connection while the message was being "
-                                    f"sent ({exc.__class__.__name__}); it may have been delivered") from None
+            # the end-of-data mark is the last thing written, so the server cannot have taken the message
+            raise DeliveryError(f"SMTP server {host}: the connection failed while the message was being written "
+                                f"({exc.__class__.__name__}); it was not complete, so not delivered") from None
+        try:
+            code, resp = smtp.getreply()
+        except (smtplib.SMTPServerDisconnected, OSError) as exc:
+            raise DeliveryUncertain(f"SMTP server {host} did not answer after the whole message was sent "
+                                    f"({exc.__class__.__name__}); it may have been delivered") from None
         except smtplib.SMTPException as exc:
-            raise DeliveryError(f"SMTP server {host}: {exc.__class__.__name__}: {exc}") from None
+            raise DeliveryUncertain(f"SMTP server {host} gave an unreadable answer after the whole message was "
+                                    f"sent ({exc.__class__.__name__}); it may have been delivered") from None
         if code != 250:
-            raise DeliveryError(f"SMTP server {host} refused the message: {code} {_text(resp)}")
+            raise refused("the message after its data", code, resp)
+
+
+def header_text(value: Any) -> str:
+    """A header value made safe: one line, no control characters, at most :data:`MAX_SUBJECT` characters."""
+    text = " ".join(_CONTROL.sub(" ", str(value)).split())
+    return text if len(text) <= MAX_SUBJECT else text[:MAX_SUBJECT - 1].rstrip() + "…"
 
 
 def _msgid_safe(key: str) -> str:

@@ -33,6 +33,8 @@ The rule that guarantees "never twice"
       sink, which checks the key in its file under a lock before appending) put back to ``pending`` and
       sent again — the channel itself drops the duplicate; for every other channel (e-mail, webhook)
       marked ``uncertain``. While the lease runs it is left alone: another process may be sending it.
+    - after an uncertain send, the channel's other rows wait for the next round (a receiver that stopped
+      answering would make them uncertain too);
     - ``uncertain`` rows are reported by :func:`outbox_summary` (for ``drift status``) and stay so until
       an operator calls :func:`resolve_uncertain` (re-send, or accept as delivered).
 
@@ -379,6 +381,7 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
                 uncertain += 1
                 errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
                 log.warning("outbox row %s (%s): delivery uncertain, not re-sent: %s", msg.id, msg.channel, exc)
+                down.add(msg.channel)  # the receiver stopped answering: its other rows wait for the next round
                 continue
             except DeliveryError as exc:
                 _mark_failed(store, msg.id, str(exc), now + backoff(cfg, msg.attempts))
@@ -444,6 +447,17 @@ def outbox_summary(store: Store) -> OutboxSummary:
         from datetime import timezone
         nxt = nxt.replace(tzinfo=timezone.utc)
     return OutboxSummary(counts=counts, uncertain=tuple(dict(r._mapping) for r in unc), next_attempt_at=nxt)
+
+
+def not_uncertain(store: Store, ids: Sequence[int]) -> dict[int, str]:
+    """Of the given outbox row ids, those that are not ``uncertain``, with their status (``no such row``)."""
+    wanted = sorted(set(int(i) for i in ids))
+    if not wanted:
+        return {}
+    with store.connect() as conn:
+        found = {int(i): str(st) for i, st in conn.execute(
+            sa.select(outbox.c.id, outbox.c.status).where(outbox.c.id.in_(wanted)))}
+    return {i: found.get(i, "no such row") for i in wanted if found.get(i) != "uncertain"}
 
 
 def resolve_uncertain(store: Store, ids: Sequence[int], *, resend: bool, now: datetime | None = None) -> int:

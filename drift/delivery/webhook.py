@@ -8,6 +8,11 @@ a missing variable is a ChannelUnavailable naming the variable).
 Outcomes: 2xx -> sent. Non-2xx -> DeliveryError with the status code (the receiver answered, so it did
 not take the notice). Connection refused / name not resolved -> ChannelUnavailable. A timeout or a reset
 after the request may have gone out -> DeliveryUncertain (not re-sent automatically).
+
+Only ``http://`` and ``https://`` URLs are accepted (checked when the config is loaded, and again here).
+Redirects are never followed: a 3xx answer is a DeliveryError naming the ``Location`` (set ``url`` to the
+final address). Following one would send the notice and its token headers to an address the config does
+not name, possibly over another scheme, and would turn the POST into a GET on 301/302/303.
 """
 
 from __future__ import annotations
@@ -16,6 +21,7 @@ import json
 import os
 import socket
 import urllib.error
+import urllib.parse
 import urllib.request
 from typing import Any
 
@@ -32,6 +38,19 @@ from drift.delivery.outbox import (
 
 #: bytes of a non-2xx response body quoted in the error
 _ERROR_BODY = 200
+#: URL schemes a webhook may use
+SCHEMES = ("http", "https")
+
+
+class _NoRedirect(urllib.request.HTTPRedirectHandler):
+    """Never follow a redirect: urllib then raises the 3xx answer as an HTTPError."""
+
+    def redirect_request(self, req: Any, fp: Any, code: int, msg: str, headers: Any, newurl: str) -> None:
+        return None
+
+
+#: an opener without redirect handling (proxies from the environment still apply)
+_OPENER = urllib.request.build_opener(_NoRedirect)
 
 
 @register_channel
@@ -44,7 +63,7 @@ class WebhookSender(Channel):
     def __init__(self, cfg: Config, spec: WebhookChannel, name: str) -> None:
         super().__init__(cfg, spec, name)
         self.spec: WebhookChannel = spec
-        if not spec.url.lower().startswith(("http://", "https://")):
+        if urllib.parse.urlsplit(spec.url).scheme.lower() not in SCHEMES:
             raise ValueError(f"webhook channel {name!r}: url must start with http:// or https://")
 
     def body(self, msg: OutboxMessage) -> dict[str, Any]:
@@ -69,9 +88,14 @@ class WebhookSender(Channel):
         data = json.dumps(self.body(msg), default=str).encode("utf-8")
         req = urllib.request.Request(self.spec.url, data=data, headers=headers, method="POST")
         try:
-            with urllib.request.urlopen(req, timeout=self.spec.timeout) as resp:
+            with _OPENER.open(req, timeout=self.spec.timeout) as resp:
                 status = resp.status
         except urllib.error.HTTPError as exc:
+            if 300 <= exc.code < 400:
+                where = exc.headers.get("Location", "?") if exc.headers else "?"
+                raise DeliveryError(f"webhook {self.name} answered HTTP {exc.code}, a redirect to {where[:200]}; "
+                                    "redirects are not followed: set the channel's url to the final "
+                                    "address") from None
             snippet = exc.read(_ERROR_BODY).decode("utf-8", "replace") if exc.fp else ""
             raise DeliveryError(f"webhook {self.name} answered HTTP {exc.code}: {snippet.strip()}") from None
         except urllib.error.URLError as exc:

@@ -40,6 +40,11 @@ LEVELS = (0.10, 0.05, 0.01)
 # Numerical tolerances (not statistical constants):
 # singular values below _RANK_RTOL * largest (on unit-norm columns) count as zero (collinearity);
 _RANK_RTOL = 1e-10
+# sup_f: an eigenvalue of a candidate's Schur complement below _EIG_EPS * n * machine epsilon counts as
+# zero (a regime that cannot estimate the tested coefficients). In orthonormal coordinates the eigenvalues
+# lie in [0, 1/4] and the suffix sums that form them carry rounding of about n * eps, so this threshold sits
+# a hundred times above the rounding and far below any regime that carries information.
+_EIG_EPS = 100.0
 # a residual sum of squares below _RSS_RTOL * the restricted RSS counts as an exact (noise-free) fit.
 _RSS_RTOL = 1e-13
 # cap on elements of the (models x time x q x k) cumulative arrays held at once by sup_f
@@ -144,6 +149,7 @@ class _Fit:
     rss: FloatArray  # (M,)
     rank: IntArray  # (M,)
     basis: FloatArray  # (M, n, k) orthonormal basis of the column space (zeroed beyond rank)
+    factor: FloatArray | None = None  # (M, k, k) R with X = basis @ R on the usable rows (full rank)
 
 
 def _masked_ols(y: FloatArray, X: FloatArray, mask: BoolArray) -> _Fit:
@@ -159,7 +165,7 @@ def _masked_ols(y: FloatArray, X: FloatArray, mask: BoolArray) -> _Fit:
     coef = np.einsum("mkj,mk->mj", Vt, uty / np.where(keep, s, 1.0))
     resid = np.where(mask, ym - np.einsum("mnk,mk->mn", U, uty), 0.0)
     rss = np.einsum("mn,mn->m", resid, resid)
-    return _Fit(coef=coef, resid=resid, rss=rss, rank=keep.sum(axis=-1), basis=U)
+    return _Fit(coef=coef, resid=resid, rss=rss, rank=keep.sum(axis=-1), basis=U, factor=s[:, :, None] * Vt)
 
 
 def _f_ratio(num: FloatArray, df1: Any, den: FloatArray, df2: Any, total: FloatArray) -> FloatArray:
@@ -388,19 +394,28 @@ def _candidates(mask: BoolArray, trim: float, k: int) -> tuple[BoolArray, IntArr
 
 
 def _sup_f_path(y: FloatArray, X: FloatArray, mask: BoolArray, cols: list[int],
-                cand: BoolArray) -> tuple[FloatArray, FloatArray, FloatArray, IntArray]:
-    """F path (M, n) for a break in the ``cols`` coefficients at each candidate row (NaN elsewhere).
+                cand: BoolArray) -> tuple[FloatArray, FloatArray, FloatArray, IntArray, IntArray]:
+    """F path (M, n) for a break in the ``cols`` coefficients at each candidate row (NaN elsewhere), and
+    the number of candidate rows per model where a regime cannot estimate the tested coefficients.
 
     Frisch-Waugh form: with e the full-sample residuals, U an orthonormal basis of the regressors and
-    W_m = X[:, cols] * 1(t >= m), the RSS reduction from adding W_m is g'D^{-1}g, g = W_m'e,
+    W_m = Z * 1(t >= m), the RSS reduction from adding W_m is g'D^{-1}g, g = W_m'e,
     D = W_m'W_m - (W_m'U)(U'W_m); all three are suffix sums, so the path costs O(n q k) per model.
+    Z spans the tested columns in the orthonormal coordinates: X[:, cols] = U R[:, cols], and Z = U Q_z
+    with Q_z an orthonormal basis of R[:, cols] (the F statistic depends only on the span of W_m). Working
+    there rather than on the raw columns keeps D well scaled for ill-conditioned designs (e.g. Longley's),
+    where forming D from collinear columns cancelled most of its digits.
     """
     M, n, k = X.shape
     q = len(cols)
     Xs = _unit_columns(X)
     full = _masked_ols(y, Xs, mask)
-    Z = Xs[:, :, cols]
+    Rz = full.factor[:, :, cols]  # type: ignore[index]
+    Qz, _ = np.linalg.qr(Rz)  # (M, k, q)
+    Z = np.einsum("mnk,mkq->mnq", full.basis, Qz)
     out = np.full((M, n), np.nan)
+    singular = np.zeros(M, dtype=np.int64)
+    tol = _EIG_EPS * np.finfo(float).eps * mask.sum(axis=1)[:, None, None]
     step = max(1, _CHUNK_ELEMENTS // max(1, n * q * (k + q)))
     for a in range(0, M, step):  # chunks of models, to bound memory (not a per-model loop)
         sl = slice(a, min(M, a + step))
@@ -410,18 +425,18 @@ def _sup_f_path(y: FloatArray, X: FloatArray, mask: BoolArray, cols: list[int],
         g = np.cumsum((z * e[:, :, None])[:, ::-1], axis=1)[:, ::-1]
         D = A - np.einsum("mtqk,mtpk->mtqp", C, C)
         lam, vec = np.linalg.eigh(D)
-        scale = np.trace(A[:, 0], axis1=-2, axis2=-1)[:, None, None]
-        good = lam > _RANK_RTOL * np.where(scale > 0, scale, 1.0)
+        good = lam > tol[sl]
         proj = np.einsum("mtqp,mtq->mtp", vec, g)
         with np.errstate(divide="ignore", invalid="ignore"):
             quad = np.where(good, proj**2 / np.where(good, lam, 1.0), 0.0).sum(axis=-1)
-        full_rank = good.all(axis=-1) & cand[sl]
+        estimable = good.all(axis=-1)
         S = full.rss[sl][:, None]
         df2 = (mask[sl].sum(axis=1) - k - q)[:, None]
         F = _f_ratio(quad, q, S - quad, np.where(df2 > 0, df2, 1), np.broadcast_to(S, quad.shape))
-        ok = full_rank & (df2 > 0) & (full.rank[sl] == k)[:, None]
+        ok = estimable & cand[sl] & (df2 > 0) & (full.rank[sl] == k)[:, None]
         out[sl] = np.where(ok, F, np.nan)
-    return out, full.rss, full.coef, full.rank
+        singular[sl] = np.sum(cand[sl] & ~estimable & (full.rank[sl] == k)[:, None], axis=1)
+    return out, full.rss, full.coef, full.rank, singular
 
 
 def sup_f(y: object, X: object, trim: float = 0.15, *,
@@ -447,7 +462,11 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
         coefficients); ``critical_values`` on the same scale (Andrews 1993/2003 Table 1 for q <= 5 and
         trim 0.15, otherwise the simulated table); ``pvalue``: approximate asymptotic p-value from the
         simulated table; ``break_index``: argmax of the F path (-1 where none); ``f_path`` (F scale);
-        ``ave_f``, ``exp_f`` with p-values and critical values (chi-square scale).
+        ``ave_f``, ``exp_f`` with p-values and critical values (chi-square scale). ``params`` records
+        the number of candidate dates (``candidates``) and how many of them were left out because a
+        regime cannot estimate the tested coefficients (``singular_candidates``: exact collinearity within
+        a regime, e.g. a dummy that is zero on one side; never an ill-conditioned but valid design). The
+        sup, ave and exp statistics run over the others.
 
     Raises
     ------
@@ -484,11 +503,12 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
     if not cand.any():
         raise InsufficientDataError(f"sup-F break test (trim {tr}: each regime needs max(ceil(trim*n), k+1) rows)",
                                     int(2 * (k + 1)), int(nn.max()))
-    F, _, _, rank = _sup_f_path(ya, Xa, mask, cols, cand)
+    F, _, _, rank, singular = _sup_f_path(ya, Xa, mask, cols, cand)
     has = ~np.all(np.isnan(F), axis=1)
     if not has.any():
         raise InsufficientDataError("sup-F break test (regressors must have full rank in each regime)", k,
-                                    int(rank.max()), hint="regressors are collinear or constant in a regime")
+                                    int(rank.max()), hint=f"regressors are collinear or constant in a regime "
+                                    f"({int(singular.max())} candidate dates with a singular regime)")
     W = q * F
     finite_w = np.where(np.isnan(W), -np.inf, W)
     idx = np.argmax(finite_w, axis=1)
@@ -510,7 +530,9 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
         alternative="the tested coefficients change once at an unknown date",
         method="Andrews sup-Wald break test (Andrews 1993)",
         params={"trim": tr, "test_columns": tuple(cols), "q": q, "k": k, "scale": "chi2",
-                "min_segment": _squeeze(lo, batched)},
+                "min_segment": _squeeze(lo, batched),
+                "candidates": _squeeze(cand.sum(axis=1), batched),
+                "singular_candidates": _squeeze(singular, batched)},
         break_index=_squeeze(bidx, batched),
         f_path=_squeeze(F, batched),
         ave_f=_squeeze(ave, batched), ave_pvalue=_squeeze(p_ave, batched),

@@ -16,8 +16,11 @@ detector, chosen by a short name from :data:`DETECTORS`:
 ``"csw"``
     Chu, Stinchcombe & White (1996): signal at the first n > m with
     :math:`|S_n| \\ge \\sqrt{n\\,[a^2 + \\ln(n/m)]}`. The paper's monitor is exactly this recursive-residual
-    CUSUM. ``horizon=None`` uses the infinite-horizon a^2 (:mod:`drift.engine.tables.csw`; conservative
-    over any finite span); a finite ``horizon`` uses the simulated finite-horizon a^2.
+    CUSUM, with the sum started at the first monitored residual. ``horizon=None`` uses the
+    infinite-horizon constant of that process, :math:`a^2 = -2\\ln\\alpha` (its crossing probability is
+    exactly :math:`\\exp(-a^2/2)`, :mod:`drift.engine.tables.csw`; the paper's 7.8147 at 5% belongs to a
+    sum started with the history sample and gives 2.0% here); conservative over any finite span. A finite
+    ``horizon`` uses the simulated finite-horizon a^2.
 ``"mosum"``
     Moving sum of the last ``L = round(window * m)`` monitored residuals, boundary
     :math:`c\\sqrt{L}` (constant), in the spirit of Leisch, Hornik & Kuan (2000) and Zeileis et al.
@@ -102,7 +105,8 @@ class MonitorResult(TestResult):
     Attributes
     ----------
     statistic : max over the monitored span of ``|path| / boundary`` (>= 1 means an alarm).
-    pvalue : csw: infinite-horizon p-value (closed form) or the simulated finite-horizon one; mosum/page:
+    pvalue : csw: infinite-horizon p-value ``exp(-A/2)``, A the largest a^2 at which the path touches the
+        boundary, or the simulated finite-horizon one; mosum/page:
         simulated, interpolated in the horizon and clipped to [0.005, 0.5]. NaN for degenerate models.
     path : (M, T) detector path aligned to the input index, NaN before ``m`` (csw: S_n; mosum: window
         sum; page: max_j |S_n - S_j|; all in units of sigma-hat).
@@ -286,7 +290,7 @@ def _csw(S: FloatArray, m: IntArray, horizon: float | None, level: float, params
         a2 = np.full(M, csw_table.lookup(level))
         with np.errstate(invalid="ignore"):
             pval = np.where(np.isfinite(A), csw_table.crossing_probability(np.nan_to_num(A)), np.nan)
-        params["calibration"] = "infinite horizon (CSW 1996 eq. 3.5)"
+        params["calibration"] = "infinite horizon, monitored residuals only: P(alarm) = exp(-a^2/2)"
         params["scale_dof"] = None  # the closed form has no estimated-scale version
         end = np.full(M, T)
     else:
@@ -413,7 +417,8 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     horizon : monitoring horizon as the ratio ``(T_max - m) / m``. mosum/page: None means the span of the
         data, ``(T - m)/m`` per model; values beyond the simulated table (6) raise ValueError, values
         below its first entry (0.25) use that entry (conservative). csw: None means the infinite-horizon
-        constant of the paper (and its closed-form p-value); a finite value uses the simulated
+        constant ``a^2 = -2 ln(level)`` of the monitored-only CUSUM (and its closed-form p-value
+        ``exp(-a^2/2)``, see :mod:`drift.engine.tables.csw`); a finite value uses the simulated
         finite-horizon a^2 (beyond the table: falls back to the infinite-horizon constant). The boundary
         is NaN beyond a finite horizon: no alarm is raised there.
     detector : one of ``DETECTORS``: "csw", "mosum", "page".

@@ -274,3 +274,48 @@ def test_digest_data_images_become_inline_parts() -> None:
     assert "data:image" not in out and len(pngs) == 12
     assert out.count('src="cid:img1"') == 1 and out.count('src="cid:img11"') == 1
     assert all(v == png for v in pngs.values())
+
+
+def test_hostile_model_name_cannot_inject_headers_or_markup(tmp_path: Path, store: Any,
+                                                            smtp_server: SmtpServer) -> None:
+    """A model named with a line break and markup (common practice, no source: header injection and HTML
+    injection): the recipients are the configured ones only, the subject stays one line, the HTML part shows
+    the name as text."""
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    evil = "k0<img src=x onerror=alert(1)>\r\nBcc: thief@example.test\r\nX-Evil: 1"
+    process_alerts(cfg, store, outcome(payload(evil, [action("refit")])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert rep.sent == 1, rep.describe()
+    [m] = smtp_server.messages
+    assert m.rcpt_tos == ["owner@example.test", "team@example.test"]
+    msg = parse(m.content)
+    assert msg["Bcc"] is None and msg["X-Evil"] is None
+    subject = msg["Subject"]
+    assert "\n" not in subject and "\r" not in subject and "Bcc: thief@example.test" in subject
+    html = msg.get_body(preferencelist=("html",)).get_content()
+    assert "<img src=x" not in html and "&lt;img src=x onerror=alert(1)&gt;" in html
+    raw_headers = m.content.split(b"\r\n\r\n", 1)[0]
+    assert not any(line.lower().startswith((b"bcc:", b"x-evil:")) for line in raw_headers.split(b"\r\n"))
+
+
+def test_header_text_is_one_bounded_line() -> None:
+    from drift.delivery.email import MAX_SUBJECT, header_text
+
+    assert header_text("a\r\nb\tc\x00d\u2028e") == "a b c d e"
+    long = header_text("x" * 1000)
+    assert len(long) == MAX_SUBJECT and long.endswith("…")
+
+
+def test_message_that_cannot_be_built_is_not_sent_and_stays_pending(tmp_path: Path, store: Any,
+                                                                    smtp_server: SmtpServer,
+                                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+
+    def broken(self: Any, msg: Any) -> Any:
+        raise ValueError("cannot compose")
+
+    monkeypatch.setattr(EmailSender, "build", broken)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert (rep.failed, rep.uncertain) == (1, 0) and "could not be composed" in rep.errors[0].error
+    assert rows(store)[0].status == "pending" and smtp_server.messages == []

@@ -88,3 +88,75 @@ def test_escaped_names_on_pages(cfg: Any, store: Any, tmp_path: Path) -> None:
     assert "<script>" not in html and "&lt;script&gt;" in html
     # the JSON line keeps the name as it is (it is data, not markup)
     assert lines(tmp_path / "alerts-out" / "alerts.jsonl")[0]["model"] == "<script>alert(1)</script>"
+
+
+def _insert_row(store: Any, notice: dict[str, Any], key: str = "k" * 64, channel: str = "files") -> None:
+    with store.begin() as conn:
+        conn.execute(outbox_t.insert().values(alert=None, channel=channel, idempotency_key=key, subject="s",
+                                              payload=json.dumps({"key": key, **notice}), status="pending",
+                                              attempts=0, next_attempt_at=T0, created_at=T0))
+
+
+def _tree(root: Path) -> set[str]:
+    return {str(p.relative_to(root)) for p in root.rglob("*")}
+
+
+@pytest.mark.parametrize("as_of, run_id", [("../../x", "../../../y"), ("/tmp/abs", "/etc/passwd"),
+                                           ("..", ".."), ("a/../../b", "c\\..\\d")])
+def test_names_from_notices_cannot_leave_the_folder(cfg: Any, store: Any, tmp_path: Path, as_of: str,
+                                                    run_id: str) -> None:
+    # common practice, no source: path traversal through values that become file names
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    before = _tree(tmp_path)
+    _insert_row(store, {"model": "../../m", "as_of": as_of, "run_id": run_id, "event": "opened"})
+    assert deliver_pending(cfg, store, now=T0).sent == 1
+    new = _tree(tmp_path) - before
+    assert new and all(p.startswith("alerts-out") for p in new), new
+    folder = tmp_path / "alerts-out"
+    assert all(p.parent == folder for p in folder.iterdir())
+    assert not any((outside).iterdir()) and not Path("/tmp/abs").exists()
+
+
+def test_symlinks_in_the_folder_are_not_followed(cfg: Any, store: Any, tmp_path: Path) -> None:
+    folder = tmp_path / "alerts-out"
+    folder.mkdir()
+    victim = tmp_path / "victim.txt"
+    victim.write_text("precious\n")
+    (folder / "alerts.jsonl").symlink_to(victim)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0)
+    assert rep.failed == 1 and "symbolic link" in rep.errors[0].error
+    assert victim.read_text() == "precious\n"
+    with store.connect() as conn:
+        assert [r.status for r in conn.execute(sa.select(outbox_t.c.status))] == ["pending"]
+    # the lock file planted as a link is refused too (it would be created or truncated through the link)
+    (folder / "alerts.jsonl").unlink()
+    (folder / "alerts.jsonl.lock").unlink()
+    (folder / "alerts.jsonl.lock").symlink_to(victim)
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=1))
+    assert rep.failed == 1 and victim.read_text() == "precious\n"
+    # a page planted as a link is replaced by a file, the link's target untouched
+    (folder / "alerts.jsonl.lock").unlink()
+    (folder / "run-2025-12-29-1.html").symlink_to(victim)
+    assert deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=3)).sent == 1
+    page = folder / "run-2025-12-29-1.html"
+    assert not page.is_symlink() and "k000" in page.read_text() and victim.read_text() == "precious\n"
+
+
+def test_files_are_owner_only(cfg: Any, store: Any, tmp_path: Path) -> None:
+    import os
+    import stat
+
+    old = os.umask(0o022)
+    try:
+        process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+        assert deliver_pending(cfg, store, now=T0).sent == 1
+    finally:
+        os.umask(old)
+    folder = tmp_path / "alerts-out"
+    assert stat.S_IMODE(folder.stat().st_mode) == 0o700
+    files = list(folder.iterdir())
+    assert {p.name for p in files} >= {"alerts.jsonl", "alerts.jsonl.lock", "run-2025-12-29-1.md",
+                                       "run-2025-12-29-1.html"}
+    assert {p.name: stat.S_IMODE(p.stat().st_mode) for p in files} == {p.name: 0o600 for p in files}

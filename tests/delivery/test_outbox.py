@@ -134,3 +134,39 @@ def test_claim_is_exclusive(tmp_path: Path, store: Any) -> None:
 def test_naive_now_rejected(tmp_path: Path, store: Any) -> None:
     with pytest.raises(ValueError, match="now"):
         deliver_pending(make_cfg(tmp_path, []), store, now=dt.datetime(2025, 1, 1))
+
+
+def test_cli_resend_and_accept_uncertain_rows(tmp_path: Path) -> None:
+    """`drift deliver --resend ID / --accept ID`: an operator's decision on uncertain rows (other rows refused,
+    exit 2, nothing changed)."""
+    from click.testing import CliRunner
+
+    from drift.cli import cli
+    from drift.store import open_store
+
+    (tmp_path / "drift.yaml").write_text(
+        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
+        encoding="utf-8")
+    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
+    try:
+        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
+        process_alerts(cfg, st, outcome(payload("k000", [action("refit")]), payload("k001", [action("refit")])),
+                       now=T0)
+        with st.begin() as conn:
+            conn.execute(outbox_t.update().values(status="uncertain", last_error="may have been delivered"))
+        run = CliRunner().invoke
+        cfg_file = str(tmp_path / "drift.yaml")
+        res = run(cli, ["deliver", "--config", cfg_file, "--resend", "1", "--accept", "7"])
+        assert res.exit_code == 2 and "row 7 is no such row" in res.output
+        assert outbox_summary(st).counts["uncertain"] == 2  # nothing changed
+        res = run(cli, ["deliver", "--config", cfg_file, "--resend", "1", "--accept", "2"])
+        assert res.exit_code == 0, res.output
+        assert "1 uncertain notice recorded as delivered" in res.output and "1 uncertain notice queued again" in res.output
+        counts = outbox_summary(st).counts
+        assert (counts["uncertain"], counts["sent"]) == (0, 2)
+        lines = (tmp_path / "out" / "alerts.jsonl").read_text(encoding="utf-8").splitlines()
+        assert len(lines) == 1  # only the resent row was written; the accepted one was not sent again
+        res = run(cli, ["deliver", "--config", cfg_file, "--accept", "2"])
+        assert res.exit_code == 2 and "row 2 is sent" in res.output
+    finally:
+        st.dispose()

@@ -60,3 +60,60 @@ def test_closed_port_keeps_pending(tmp_path: Path, store: Any) -> None:
     process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
     rep = deliver_pending(cfg, store, now=T0)
     assert rep.failed == 1 and rep.pending == 1 and "cannot reach" in rep.errors[0].error
+
+
+class _Redirector:
+    """A loopback server answering every POST with a redirect to ``target``."""
+
+    def __init__(self, code: int, target: str) -> None:
+        import http.server
+        import threading
+
+        class Handler(http.server.BaseHTTPRequestHandler):
+            def do_POST(self) -> None:
+                self.rfile.read(int(self.headers.get("Content-Length") or 0))
+                self.send_response(code)
+                self.send_header("Location", target)
+                self.end_headers()
+
+            def log_message(self, *args: Any) -> None:
+                pass
+
+        self.server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.url = f"http://127.0.0.1:{self.server.server_address[1]}/hook"
+        self.thread = threading.Thread(target=self.server.serve_forever, daemon=True)
+        self.thread.start()
+
+    def close(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+
+
+@pytest.mark.parametrize("code", [301, 302, 307, 308])
+def test_redirects_are_not_followed(tmp_path: Path, store: Any, http_sink: HttpSink, code: int,
+                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    # common practice, no source: a redirect would carry the notice and its token elsewhere
+    monkeypatch.setenv("DRIFT_T_TOKEN", "Bearer t0ken")
+    for target in (http_sink.url, "ftp://127.0.0.1/x", "file:///etc/passwd"):
+        red = _Redirector(code, target)
+        try:
+            cfg = hook_cfg(tmp_path, red.url, headers_env={"Authorization": "DRIFT_T_TOKEN"})
+            process_alerts(cfg, store, outcome(payload(f"k{target[:3]}", [action("refit")])), now=T0)
+            rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(days=len(target)))
+        finally:
+            red.close()
+        assert rep.sent == 0 and rep.failed >= 1, rep.describe()
+        assert f"HTTP {code}" in rep.errors[0].error and "not followed" in rep.errors[0].error
+    assert http_sink.requests == []
+
+
+@pytest.mark.parametrize("url", ["ftp://127.0.0.1/hook", "file:///tmp/hook", "127.0.0.1:8080/hook", "http:///x"])
+def test_only_http_urls_in_the_config(tmp_path: Path, url: str) -> None:
+    from drift.config import load_config
+    from drift.exceptions import ConfigError
+
+    f = tmp_path / "drift.yaml"
+    f.write_text(f"alerts:\n  channels:\n    - kind: webhook\n      url: '{url}'\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"http:// or https://") as err:
+        load_config(f)
+    assert "alerts.channels" in str(err.value)

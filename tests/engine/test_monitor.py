@@ -21,12 +21,54 @@ def _design(rng: np.random.Generator, M: int, T: int, k: int = 3) -> np.ndarray:
 
 # ------------------------------------------------------------------------------------------- tables
 @pytest.mark.parametrize("level, a2", [(0.10, 6.2514), (0.05, 7.8147), (0.01, 11.345)])
-def test_csw_a_squared_from_defining_equation(level: float, a2: float) -> None:
-    # Chu, Stinchcombe & White (1996) eq. 3.5; values [C] in REFERENCES.md.
-    assert csw_table.a_squared(level) == pytest.approx(a2, abs=6e-4)
-    assert csw_table.A_SQUARED[level] == pytest.approx(a2, abs=1e-9)
+def test_csw_history_a_squared_from_defining_equation(level: float, a2: float) -> None:
+    # Chu, Stinchcombe & White (1996) eq. 3.5 (sum from the start of the history sample); values [C] in
+    # REFERENCES.md.
+    assert csw_table.a_squared_history(level) == pytest.approx(a2, abs=6e-4)
+    assert csw_table.A_SQUARED_HISTORY[level] == pytest.approx(a2, abs=1e-9)
     a = np.sqrt(a2)
     assert 2 * (1 - stats.norm.cdf(a) + a * stats.norm.pdf(a)) == pytest.approx(level, rel=2e-4)
+    # used for the monitored-only sum, this constant gives exp(-a^2/2): 2.0% at the nominal 5%
+    assert float(csw_table.crossing_probability(a2)) == pytest.approx(np.exp(-a2 / 2))
+
+
+@pytest.mark.parametrize("level, a2", [(0.10, 4.6052), (0.05, 5.9915), (0.01, 9.2103)])
+def test_csw_monitored_only_a_squared(level: float, a2: float) -> None:
+    # Robbins (1970) / Ville's maximal equality: P(ever crossing) = exp(-a^2/2) for the monitored-only
+    # sum, so a^2 = -2 ln(level) (closed form, computed here)
+    assert csw_table.A_SQUARED[level] == pytest.approx(-2 * np.log(level), abs=1e-4)
+    assert csw_table.a_squared(level) == pytest.approx(a2, abs=1e-4)
+    assert csw_table.lookup(level) == csw_table.A_SQUARED[level]
+    assert float(csw_table.crossing_probability(a2)) == pytest.approx(level, rel=1e-4)
+
+
+@pytest.mark.slow
+def test_csw_infinite_horizon_level_recovered_by_simulating_the_process() -> None:
+    # Monte Carlo (seeded): the process drift monitors, S(tau) a Brownian motion started at the first
+    # monitored residual, against the boundary sqrt((1 + tau)(a^2 + ln(1 + tau))), tau in (0, 1e5],
+    # sampled exactly on a geometric grid; between grid points the crossing probability of the Brownian
+    # bridge (exp(-2 d0 d1 / dt) per side, common practice, no source) is accounted for. The crossing
+    # rate at A_SQUARED[level] recovers the level; the history-sample constant 7.8147 gives about 2%.
+    rng = np.random.default_rng(20261110)
+    reps, steps = 12000, 800
+    a2 = np.array([csw_table.A_SQUARED[0.10], csw_table.A_SQUARED[0.05], csw_table.A_SQUARED[0.01],
+                   csw_table.A_SQUARED_HISTORY[0.05]])[:, None]
+    tau = np.geomspace(1e-4, 1e5, steps)
+    dt = np.diff(np.concatenate([[0.0], tau]))
+    x0, b0 = np.zeros(reps), np.sqrt(a2)
+    alive = np.ones((a2.size, reps), bool)
+    log_survive = np.zeros((a2.size, reps))
+    for i in range(steps):
+        x1 = x0 + rng.standard_normal(reps) * np.sqrt(dt[i])
+        b1 = np.sqrt((1 + tau[i]) * (a2 + np.log1p(tau[i])))
+        alive &= np.abs(x1) < b1
+        bridge = np.exp(-2 * (b0 - x0) * (b1 - x1) / dt[i]) + np.exp(-2 * (b0 + x0) * (b1 + x1) / dt[i])
+        log_survive += np.where(alive, np.log1p(-np.minimum(bridge, 1 - 1e-12)), 0.0)
+        x0, b0 = x1, b1
+    crossed = 1 - np.where(alive, np.exp(log_survive), 0.0).mean(axis=1)
+    for got, level in zip(crossed, (0.10, 0.05, 0.01, 0.0201)):
+        assert got == pytest.approx(level, abs=4 * np.sqrt(level * (1 - level) / reps)), (got, level)
+    assert float(csw_table.crossing_probability(csw_table.A_SQUARED_HISTORY[0.05])) == pytest.approx(0.0201, abs=1e-4)
 
 
 def test_finite_horizon_csw_is_below_infinite_horizon() -> None:
@@ -81,7 +123,8 @@ def test_recursive_residuals_match_statsmodels() -> None:
 
 
 def test_csw_path_boundary_and_pvalue_by_hand() -> None:
-    # CSW (1996): path = cumulative w / sigma-hat, boundary sqrt(n (a^2 + ln(n/m))); p from eq. 3.5.
+    # CSW (1996): path = cumulative w / sigma-hat, boundary sqrt(n (a^2 + ln(n/m))); the monitored-only sum
+    # has a^2 = -2 ln(0.05) and p = exp(-A/2) (Robbins 1970; see drift.engine.tables.csw)
     rng = np.random.default_rng(2)
     X = _design(rng, 1, 90)[0]
     y = X @ np.array([0.0, 1.0, 1.0]) + rng.standard_normal(90)
@@ -90,14 +133,14 @@ def test_csw_path_boundary_and_pvalue_by_hand() -> None:
     fit = reference_fit(y, X, m)
     S = np.cumsum(fit.w[0, m:] / fit.sigma[0])
     n = np.arange(m + 1, 91)
-    b = np.sqrt(n * (7.8147 + np.log(n / m)))
+    b = np.sqrt(n * (5.9915 + np.log(n / m)))
     np.testing.assert_allclose(r.path[m:], S)
     np.testing.assert_allclose(r.boundary[m:], b)
     assert np.all(np.isnan(r.path[:m])) and np.all(np.isnan(r.boundary[:m]))
     assert r.statistic == pytest.approx(np.max(np.abs(S) / b))
     A = np.max(S**2 / n - np.log(n / m))
-    assert r.pvalue == pytest.approx(float(csw_table.crossing_probability(A)))
-    assert r.critical_value == pytest.approx(7.8147)
+    assert r.pvalue == pytest.approx(np.exp(-A / 2))
+    assert r.critical_value == pytest.approx(5.9915)
 
 
 def test_batch_matches_per_model_loop() -> None:
