@@ -12,6 +12,7 @@ import os
 import subprocess
 import sys
 import textwrap
+from datetime import date, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -65,10 +66,16 @@ class LockHolder:
 
 
 def _demo(tmp_path: Path, timeout: float) -> Path:
-    cfg = generate(tmp_path)
+    """A small invented table (3 series x 104 weeks) and a config whose store waits ``timeout`` seconds."""
     db = tmp_path / "drift.db"
-    text = cfg.read_text(encoding="utf-8").replace("store: sqlite:///drift.db", f"store: sqlite:///{db}?timeout={timeout:g}")
-    cfg.write_text(text, encoding="utf-8")
+    (tmp_path / "data").mkdir()
+    lines = ["week,a,b,c"] + [f"{(date(2024, 1, 1) + timedelta(weeks=i)).isoformat()},{i},{2 * i},{3 * i}"
+                              for i in range(104)]
+    (tmp_path / "data" / "t.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    cfg = tmp_path / "drift.yaml"
+    cfg.write_text(f"store: sqlite:///{db}?timeout={timeout:g}\n"
+                   "sources:\n  - {name: t, kind: csv, path: data/t.csv, period_column: week}\nmodels: []\n",
+                   encoding="utf-8")
     open_store(f"sqlite:///{db}").dispose()  # the schema exists before the other process locks the file
     return cfg
 
