@@ -10,7 +10,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import MISSING, dataclass, field, fields
 from datetime import date, datetime, time, timedelta, timezone
 from typing import Any
 
@@ -25,7 +25,7 @@ from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import Design, as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
 from drift.replay import h_step_errors
-from drift.verdicts import Action, fmt_num, overall, pct_change, sort_actions
+from drift.verdicts import ERROR, Action, fmt_num, overall, pct_change, sort_actions
 
 log = logging.getLogger(__name__)
 
@@ -58,17 +58,55 @@ def _list(a: np.ndarray) -> list[float | None]:
 
 @dataclass
 class CheckOutcome:
-    """What one check run produced."""
+    """What one check run produced.
+
+    ``models`` holds the payloads of the models that were checked; ``errors`` maps each model that could
+    not be checked to its reason, and ``failed`` holds their entries in the JSON contract (verdict
+    ``error``, see :func:`error_entry`). ``order`` is the order of the models asked for.
+    """
 
     run_id: int | None
     as_of: date
     models: list[dict[str, Any]] = field(default_factory=list)
     errors: dict[str, str] = field(default_factory=dict)
+    failed: list[dict[str, Any]] = field(default_factory=list)
+    order: list[str] = field(default_factory=list)
+
+    def entries(self) -> list[dict[str, Any]]:
+        """Every model asked for, checked or not, in the order asked for (charts included)."""
+        failed = {e["name"]: e for e in self.failed}
+        failed.update({n: error_entry(None, r, self.as_of, name=n) for n, r in self.errors.items()
+                       if n not in failed})
+        rank = {n: i for i, n in enumerate(self.order)}
+        last = len(rank)
+        items = [*self.models, *failed.values()]
+        # stable: entries of names not in ``order`` keep their place after those that are
+        return sorted(items, key=lambda m: rank.get(m["name"], last))
 
     def as_json(self) -> dict[str, Any]:
-        """The JSON contract: charts left out."""
+        """The JSON contract: charts left out; a model that could not be checked has verdict ``error``
+        and its ``reason``; ``checked`` and ``failed`` count them."""
+        entries = self.entries()
+        n_failed = sum(1 for m in entries if m["verdict"] == ERROR)
         return {"as_of": self.as_of.isoformat(),
-                "models": [{k: v for k, v in m.items() if k != "charts"} for m in self.models]}
+                "models": [{k: v for k, v in m.items() if k != "charts"} for m in entries],
+                "checked": len(entries) - n_failed, "failed": n_failed}
+
+
+def error_entry(model: ModelConfig | None, reason: str, as_of: date, *, name: str | None = None) -> dict[str, Any]:
+    """The JSON entry of a model that could not be checked: the payload's keys, verdict ``error``, its
+    ``reason``, and no evidence (empty actions, alarms, tests, drivers and accuracy)."""
+    ref = model.reference if model is not None else None
+    return {
+        "name": model.name if model is not None else name, "verdict": ERROR, "as_of": as_of.isoformat(),
+        "target": model.target if model is not None else None,
+        "unit": model.unit if model is not None else None,
+        "frequency": model.frequency if model is not None else None,
+        "reference": {"start": ref.start.isoformat(), "end": ref.end.isoformat()} if ref is not None else None,
+        "monitor_start": None, "last_period": None, "error_model": None,
+        "actions": [], "alarms": [], "tests": [], "drivers": [], "accuracy": {},
+        "reason": reason,
+    }
 
 
 # ------------------------------------------------------------------------------------------------ helpers
@@ -143,50 +181,168 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     """Payloads for a chunk of models, from the observations known at ``as_of``.
 
     Returns (payloads, errors): a model whose data cannot support the check gets an error entry
-    (its reason) instead of a payload; the others are unaffected.
+    (its reason) instead of a payload; the others are unaffected. One model never fails another: data
+    problems are found per model before the batched screening (:func:`_validate`), a batch that still
+    fails is split until the model that fails it is alone (:func:`_screen_isolated`), and every later stage
+    runs per model. An unexpected exception (a bug, not a data problem) fails only its model: the reason
+    says so, the traceback goes to the log at debug level.
     """
     ctxs: list[_Ctx] = []
     errors: dict[str, str] = {}
     # split the observations by series once: every later per-model filter then works on a small frame
     by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+    day = (as_of - timedelta(microseconds=1)).date()
     for m in models:
         try:
-            absent = [s for s in m.series if s not in by_series]
-            if absent:
-                raise DriftError(
-                    f"model '{m.name}': no observations of {', '.join(repr(a) for a in absent)} are in the "
-                    "store as of this date; check the source and the series names (drift ingest reports what "
-                    "it stored)")
-            mobs = pd.concat([by_series[s] for s in dict.fromkeys(m.series)], ignore_index=True)
-            d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
-            c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
-            c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
-            c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
-            need = d.k + 3
-            if c.n_ref_ok < need:
-                raise InsufficientDataError(f"model '{m.name}': reference fit", need, c.n_ref_ok,
-                                            f"{d.k} regressors ({', '.join(d.columns)})")
-            ctxs.append(c)
-        except DriftError as exc:
-            errors[m.name] = str(exc)
-            log.warning("model %s skipped: %s", m.name, exc)
-    # batch by number of regressors
-    groups: dict[int, list[_Ctx]] = {}
+            ctxs.append(_prepare(cfg, m, by_series, as_of, day))
+        except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry
+            errors[m.name] = _failure(m.name, "preparing its data", exc)
+    # batch by number of regressors, and apart the models with nothing to monitor yet (their reference
+    # period runs to the newest data): a batch mixing them with monitored models cannot be monitored
+    groups: dict[tuple[int, bool], list[_Ctx]] = {}
     for c in ctxs:
-        groups.setdefault(c.design.k, []).append(c)
+        groups.setdefault((c.design.k, c.design.n > c.design.n_ref), []).append(c)
     for group in groups.values():
-        _screen(group)
+        _screen_isolated(group, errors)
     out = []
     for c in ctxs:
+        if c.model.name in errors:
+            continue
         try:
             _freshness(c)
             _drivers_and_worth(c)
             _lag_drift(c)
             out.append(_payload(c))
-        except DriftError as exc:
-            errors[c.model.name] = str(exc)
-            log.warning("model %s skipped: %s", c.model.name, exc)
+        except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry
+            errors[c.model.name] = _failure(c.model.name, "analysing it", exc)
     return out, errors
+
+
+def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as_of: datetime,
+             day: date) -> _Ctx:
+    """The model's design, prewhitened and validated (:func:`_validate`).
+
+    Raises
+    ------
+    DriftError : the model cannot be checked with these data; the message says why and what to do.
+    """
+    absent = [s for s in dict.fromkeys(m.series) if s not in by_series]
+    which = ", ".join(repr(a) for a in absent)
+    if absent and len(absent) == len(set(m.series)):
+        raise DriftError(
+            f"model '{m.name}': none of its series ({which}) has a value available by the end of "
+            f"{day.isoformat()} (UTC): the check date is before the data, or the series were never "
+            "ingested (drift ingest reports what it stored)")
+    if m.reference.end > day:
+        raise DriftError(
+            f"model '{m.name}': its reference period ends {m.reference.end.isoformat()}, after the check date "
+            f"{day.isoformat()}: the deployed model cannot have been fitted on it yet; set reference.end to "
+            "the last period the deployed model was fitted on, or check as of a later date")
+    if absent:
+        raise DriftError(
+            f"model '{m.name}': no observations of {which} are in the store as of {day.isoformat()}; "
+            "check the source and the series names (drift ingest reports what it stored)")
+    mobs = pd.concat([by_series[s] for s in dict.fromkeys(m.series)], ignore_index=True)
+    d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
+    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
+    c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
+    c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
+    _validate(c)
+    return c
+
+
+#: a column whose part orthogonal to the columns before it is below this fraction of its own size (on the
+#: usable reference rows) is taken as collinear with them: least squares in double precision cannot
+#: separate their effects (condition number beyond ~1e7; common practice, no source)
+COLLINEAR_RTOL = 1e-7
+
+
+def _validate(c: _Ctx) -> None:
+    """Data problems of one model, found before it is batched with others.
+
+    Raises
+    ------
+    InsufficientDataError : fewer usable reference rows than the fit needs (regressors + 3); the hint
+        says which series leave rows unusable.
+    DriftError : a constant target, or collinear regressors on the reference rows (named, with the
+        linear relation between them).
+    """
+    d, m = c.design, c.model
+    ref = slice(0, d.n_ref)
+    ok = np.isfinite(c.y[ref]) & np.isfinite(c.X[ref]).all(axis=1)
+    need = d.k + 3
+    if c.n_ref_ok < need:
+        raw_ok = {"target " + repr(m.target): np.isfinite(d.y[ref])}
+        raw_ok.update({d.columns[j]: np.isfinite(d.X[ref, j]) for j in range(d.k)})
+        gaps = sorted(((int((~v).sum()), name) for name, v in raw_ok.items() if (~v).any()), reverse=True)
+        where = ("; rows without a value: " + ", ".join(f"{name} {n}" for n, name in gaps[:4])) if gaps else ""
+        raise InsufficientDataError(
+            f"model '{m.name}': reference fit ({m.reference.start.isoformat()} to {m.reference.end.isoformat()}, "
+            f"{d.n_ref} periods)", need, c.n_ref_ok,
+            f"{d.k} regressors ({', '.join(d.columns)}){where}")
+    y_ok = d.y[ref][np.isfinite(d.y[ref])]
+    if y_ok.size and np.ptp(y_ok) == 0:
+        raise DriftError(
+            f"model '{m.name}': the target '{m.target}' is constant ({fmt_num(float(y_ok[0]))}) over the "
+            f"reference period: there is no variation for its drivers to explain; check the source")
+    Xr = d.X[ref][ok]
+    norms = np.linalg.norm(Xr, axis=0)
+    zero = [d.columns[j] for j in range(d.k) if norms[j] == 0]
+    if zero:
+        raise DriftError(
+            f"model '{m.name}': the column(s) {', '.join(zero)} are zero on every usable reference row: their "
+            "effect cannot be estimated; check the driver's series and lag")
+    r = np.abs(np.diag(np.linalg.qr(Xr / norms, mode="r")))
+    dep = np.flatnonzero(r < COLLINEAR_RTOL)
+    if dep.size:
+        j = int(dep[0])
+        indep = [i for i in range(j) if i not in set(dep.tolist())]
+        b, *_ = np.linalg.lstsq(Xr[:, indep], Xr[:, j], rcond=None)
+        terms = [f"{fmt_num(float(bi))} × {d.columns[i]}" for i, bi in zip(indep, b)
+                 if abs(bi) * norms[i] > 1e-6 * norms[j]]
+        raise DriftError(
+            f"model '{m.name}': the regressors are collinear on the {int(ok.sum())} usable reference rows: "
+            f"{d.columns[j]} = {' + '.join(terms) or '0'}; their effects cannot be told apart. Drop one of "
+            "these drivers (or change its lag), or check the source")
+
+
+def _failure(name: str, stage: str, exc: BaseException) -> str:
+    """The reason of a model's error entry; an unexpected exception is logged with its traceback."""
+    if isinstance(exc, DriftError):
+        log.info("model %s not checked: %s", name, exc)
+        return str(exc)
+    log.warning("model %s not checked: unexpected %s while %s: %s (traceback at --log-level debug)",
+                name, type(exc).__name__, stage, exc)
+    log.debug("traceback for model %s", name, exc_info=exc)
+    return (f"model '{name}': unexpected error while {stage} ({type(exc).__name__}: {exc}); the other models "
+            "are unaffected; the log at debug level has the details")
+
+
+def _reset(c: _Ctx) -> None:
+    """Forget what a failed screening pass left in the context (every accumulating field back to empty)."""
+    for f in fields(c):
+        if f.default_factory is not MISSING:  # type: ignore[misc]
+            setattr(c, f.name, f.default_factory())  # type: ignore[misc]
+
+
+def _screen_isolated(group: list[_Ctx], errors: dict[str, str]) -> None:
+    """:func:`_screen` on a batch; when the batch fails, split it in halves and retry, down to batches of
+    one, so only the model(s) that fail alone get an error entry (a one-model failure costs about
+    2·log2(batch) extra passes, not one per model)."""
+    try:
+        _screen(group)
+        return
+    except Exception as exc:  # noqa: BLE001 - isolated below
+        if len(group) == 1:
+            errors[group[0].model.name] = _failure(group[0].model.name, "screening it", exc)
+            return
+        log.info("screening a batch of %d models failed (%s: %s); splitting it to isolate the model",
+                 len(group), type(exc).__name__, exc)
+    half = len(group) // 2
+    for part in (group[:half], group[half:]):
+        for c in part:
+            _reset(c)
+        _screen_isolated(part, errors)
 
 
 def _screen(group: list[_Ctx]) -> None:
@@ -779,13 +935,17 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
               deliver: bool = True) -> CheckOutcome:
     """Check the models as of a date (default: today, UTC), save verdicts, process alerts and deliver.
 
+    A model that cannot be checked does not stop the run: it gets an error entry (``outcome.errors`` and
+    ``outcome.failed``). The run is recorded ``ok`` when every model was checked, ``partial`` when some
+    were not (its detail counts them: ``checked``, ``failed``, ``errors``).
+
     Raises
     ------
     ConfigError : an unknown model name.
     """
     day = as_of or datetime.now(timezone.utc).date()
     moment = as_of_moment(day)
-    chosen = [cfg.model(n) for n in models] if models else list(cfg.models)
+    chosen = [cfg.model(n) for n in dict.fromkeys(models)] if models else list(cfg.models)
     run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in chosen]})
     try:
         series = sorted({s for m in chosen for s in m.series})
@@ -793,13 +953,21 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         from drift.executor import run_chunks  # executor calls back into analyse
 
         payloads, errors = run_chunks(cfg, chosen, obs, moment)
-        outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors)
+        failed = [error_entry(m, errors[m.name], day) for m in chosen if m.name in errors]
+        outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors, failed=failed,
+                               order=[m.name for m in chosen])
         store.save_verdicts(run_id, day, payloads)
         if deliver:
             _alerts_and_delivery(cfg, store, outcome)
-        store.finish_run(run_id, "ok", detail={
-            "models": len(payloads), "errors": errors,
-            "verdicts": {p["name"]: p["verdict"] for p in payloads}})
+        detail = {"models": len(chosen), "checked": len(payloads), "failed": len(errors), "errors": errors,
+                  "verdicts": {p["name"]: p["verdict"] for p in payloads}}
+        if errors:
+            names = list(errors)
+            shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+            store.finish_run(run_id, "partial", detail=detail,
+                             error=f"{len(errors)} of {len(chosen)} model(s) could not be checked: {shown}")
+        else:
+            store.finish_run(run_id, "ok", detail=detail)
         return outcome
     except BaseException as exc:
         store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")

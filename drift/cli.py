@@ -1,7 +1,8 @@
 """Command line: parse, load config, call the library, map errors to exit codes and one-line messages.
 
 Exit codes: 0 the command ran (whatever the verdicts); 1 runtime failure; 2 usage or config error;
-3 another daemon holds the store.
+3 another daemon holds the store; 4 ``check`` ran but some models could not be checked (each has an
+entry with verdict ``error`` and its reason).
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from drift.exceptions import ConfigError, DriftError, LockError
 
 log = logging.getLogger("drift")
 
-EXIT_RUNTIME, EXIT_CONFIG, EXIT_LOCKED = 1, 2, 3
+EXIT_RUNTIME, EXIT_CONFIG, EXIT_LOCKED, EXIT_UNCHECKED = 1, 2, 3, 4
 
 
 def _fail(code: int, msg: str) -> NoReturn:
@@ -35,18 +36,22 @@ def _setup_logging(level: str) -> None:
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
 
 
-def _load(config: str) -> Any:
+def _load(config: str, need: tuple[str, ...] = ()) -> Any:
+    """The validated config; ``need``: sections ('sources', 'models') the command cannot do without."""
     from drift.config import load_config
 
-    return load_config(config)
+    cfg = load_config(config)
+    cfg.require(*need)
+    return cfg
 
 
 @contextmanager
-def _opened(config: str) -> Iterator[tuple[Any, Any]]:
-    """The loaded config and its open store, disposed of afterwards."""
+def _opened(config: str, need: tuple[str, ...] = ()) -> Iterator[tuple[Any, Any]]:
+    """The loaded config (checked for the sections in ``need`` before anything is opened or created) and
+    its open store, disposed of afterwards."""
     from drift.store import open_store
 
-    cfg = _load(config)
+    cfg = _load(config, need)
     store = open_store(cfg.store_url())
     try:
         yield cfg, store
@@ -55,12 +60,20 @@ def _opened(config: str) -> Iterator[tuple[Any, Any]]:
 
 
 def _day(value: str | None, flag: str) -> date | None:
+    """A date option: YYYY-MM-DD within the dates drift can compute with (:data:`drift.config.DATE_RANGE`)."""
+    from drift.config import DATE_RANGE
+
     if value is None:
         return None
     try:
-        return date.fromisoformat(value)
+        day = date.fromisoformat(value.strip())
     except ValueError:
         _fail(EXIT_CONFIG, f"{flag} expects a date as YYYY-MM-DD, got '{value}'")
+    lo, hi = DATE_RANGE
+    if not lo <= day <= hi:
+        _fail(EXIT_CONFIG, f"{flag} {day.isoformat()} is out of range: drift works with dates from "
+                           f"{lo.isoformat()} to {hi.isoformat()}")
+    return day
 
 
 def _run(fn: Any) -> Any:
@@ -102,7 +115,7 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
     def go() -> None:
         from drift.pipeline import run_ingest
 
-        with _opened(config) as (cfg, store):
+        with _opened(config, need=("sources",)) as (cfg, store):
             summaries = run_ingest(cfg, store, sources=list(sources) or None)
         refused = unavailable = False
         for s in summaries:
@@ -138,12 +151,14 @@ def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool
         from drift.pipeline import run_check
         from drift.report import format_table
 
-        with _opened(config) as (cfg, store):
+        with _opened(config, need=("models",)) as (cfg, store):
             outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver)
         if as_json:
             click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
         else:
             click.echo(format_table(outcome))
+        if outcome.errors:
+            sys.exit(EXIT_UNCHECKED)
 
     _run(go)
 
@@ -239,6 +254,8 @@ def daemon(config: str, log_file: str | None, daemon_level: str | None) -> None:
         from drift.scheduler import run_daemon
 
         cfg = _load(config)
+        cfg.require(*(sec for job, sec in (("ingest", "sources"), ("check", "models"))
+                      if getattr(cfg.schedule, job) is not None))
         level = getattr(logging, daemon_level.upper()) if daemon_level else None
         sys.exit(run_daemon(cfg, log_file=log_file, log_level=level))
 
@@ -277,7 +294,7 @@ def shock(config: str, when: str, models: tuple[str, ...], as_of: str | None, as
     def go() -> None:
         from drift.shock import format_shock, run_shock
 
-        with _opened(config) as (cfg, store):
+        with _opened(config, need=("models",)) as (cfg, store):
             res = run_shock(cfg, store, day, models=list(models) or None, as_of=aday,
                             out=Path(out) if out else None)
         click.echo(json.dumps(_strict(res), allow_nan=False) if as_json else format_shock(res))

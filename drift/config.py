@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import difflib
 import glob as _glob
+import math
 import os
 import re
 from datetime import date, timedelta
@@ -40,6 +41,18 @@ FREQUENCIES = ("D", "W", "M", "Q")
 SEASON_BY_FREQ = {"D": 7, "W": 52, "M": 12, "Q": 4}
 #: default largest lag scanned by the lag profile, per frequency
 MAX_LAG_BY_FREQ = {"D": 14, "W": 8, "M": 3, "Q": 2}
+#: the dates drift computes with (config dates, --as-of and friends): inside pandas' nanosecond timestamps
+#: (1677-09-22 .. 2262-04-11) with room for horizons and delays on either side
+DATE_RANGE = (date(1700, 1, 1), date(2200, 12, 31))
+
+
+def check_date(v: date) -> date:
+    """``v`` when it lies in :data:`DATE_RANGE`; ValueError naming the range otherwise."""
+    lo, hi = DATE_RANGE
+    if not lo <= v <= hi:
+        raise ValueError(f"{v.isoformat()} is out of range: drift works with dates from {lo.isoformat()} to "
+                         f"{hi.isoformat()}")
+    return v
 
 _DURATION_RE = re.compile(
     r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|secs|second|seconds|m|min|mins|minute|minutes|h|hour|hours|"
@@ -55,18 +68,36 @@ _UNIT_SECONDS = {
 }
 
 
+#: longest duration a config may give (delays, back-offs, timeouts)
+MAX_DURATION = timedelta(days=3660)
+#: longest lag, target lag or forecast horizon, in years of the model's periods
+MAX_SPAN_YEARS = 100
+
+
 def parse_duration(text: str | float | timedelta) -> timedelta:
-    """Parse ``"2 days"``, ``"36h"``, ``"10m"``, ``"1 week"`` (or a number of days) into a timedelta."""
+    """Parse ``"2 days"``, ``"36h"``, ``"10m"``, ``"1 week"`` (or a number of days) into a timedelta.
+
+    Raises
+    ------
+    ValueError
+        for text that is not a duration, and for a negative, non-finite or longer than
+        :data:`MAX_DURATION` one.
+    """
     if isinstance(text, timedelta):
-        return text
-    if isinstance(text, (int, float)) and not isinstance(text, bool):
-        return timedelta(days=float(text))
-    m = _DURATION_RE.match(str(text))
-    if not m:
-        raise ValueError(
-            f"'{text}' is not a duration; write a number and a unit, e.g. '2 days', '36 hours', '10m', '1 week'"
-        )
-    return timedelta(seconds=float(m.group(1)) * _UNIT_SECONDS[m.group(2).lower()])
+        seconds = text.total_seconds()
+    elif isinstance(text, (int, float)) and not isinstance(text, bool):
+        seconds = float(text) * 86400.0
+    else:
+        m = _DURATION_RE.match(str(text))
+        if not m:
+            raise ValueError(
+                f"'{text}' is not a duration; write a number and a unit, e.g. '2 days', '36 hours', '10m', '1 week'"
+            )
+        seconds = float(m.group(1)) * _UNIT_SECONDS[m.group(2).lower()]
+    if not math.isfinite(seconds) or seconds < 0 or seconds > MAX_DURATION.total_seconds():
+        raise ValueError(f"'{text}' is not a usable duration: it must be between 0 and "
+                         f"{MAX_DURATION.days} days")
+    return text if isinstance(text, timedelta) else timedelta(seconds=seconds)
 
 
 Duration = Annotated[timedelta, Field()]
@@ -138,6 +169,8 @@ class ReferenceConfig(_Strict):
     start: date
     end: date
 
+    _range = field_validator("start", "end")(lambda cls, v: check_date(v))
+
     @model_validator(mode="after")
     def _order(self) -> ReferenceConfig:
         if self.end <= self.start:
@@ -174,6 +207,11 @@ class ModelConfig(_Strict):
     horizon: int = Field(1, ge=1)
     unit: str = "units"
     monitor_start: date | None = None
+
+    @field_validator("monitor_start")
+    @classmethod
+    def _monitor_start(cls, v: date | None) -> date | None:
+        return None if v is None else check_date(v)
 
     @field_validator("frequency", mode="before")
     @classmethod
@@ -397,6 +435,18 @@ class Config(_Strict):
             raise ValueError(f"model names must be unique; repeated: {sorted(dup)}")
         return self
 
+    def require(self, *sections: str) -> None:
+        """Raise :class:`ConfigError` naming the first of ``sections`` ('sources', 'models') that is empty:
+        a command that needs it has nothing to do without it."""
+        what = {"sources": "where the data come from: a list of sources, each with name, kind, path (or url and "
+                           "query) and period_column",
+                "models": "what to check: a list of models, each with name, target, frequency, drivers and "
+                          "reference"}
+        for sec in sections:
+            if not getattr(self, sec):
+                raise ConfigError(f"the config has no {sec}: add '{sec}:' saying {what[sec]} (config/example.yaml "
+                                  f"shows one)", file=str(self.file) if self.file else None, key=sec)
+
     # ----- derived views (no state) -----
     def store_url(self) -> str:
         """The SQLAlchemy URL of the store; a relative SQLite path is taken relative to the config file."""
@@ -459,28 +509,120 @@ def _did_you_mean(word: str, options: list[str]) -> str:
     return f" (did you mean '{close[0]}'?)" if close else ""
 
 
-def _line_map(text: str) -> dict[tuple[Any, ...], int]:
-    """Map key paths (tuples of keys / list indices) to 1-based line numbers in the YAML text."""
-    out: dict[tuple[Any, ...], int] = {}
-    try:
-        root = yaml.compose(text)
-    except yaml.YAMLError:
-        return out
+#: largest config file read (bytes); a bigger one is refused before it is parsed
+MAX_CONFIG_BYTES = 16 * 2**20
+#: largest number of YAML nodes the config may expand to through its aliases (``*name`` repeats the node
+#: anchored ``&name``): a legitimate config with thousands of models stays far below; a nest of aliases
+#: that would expand to billions of nodes (an "alias bomb") is refused before anything walks it
+MAX_CONFIG_NODES = 2_000_000
 
-    def walk(node: Any, path: tuple[Any, ...]) -> None:
+
+def _parse_yaml(text: str, file: str) -> tuple[Any, dict[tuple[Any, ...], int]]:
+    """Safe-load the YAML text with limits; the data and the line of each key path.
+
+    Raises
+    ------
+    ConfigError : not YAML, nested too deeply, recursive aliases, an expansion beyond
+        :data:`MAX_CONFIG_NODES`, or a key repeated in one mapping.
+    """
+    loader = yaml.SafeLoader(text)
+    try:
+        root = _yaml_step(loader.get_single_node, file)
+        if root is None:
+            return None, {}
+        _expanded_size(root, file)
+        lines = _line_map(root, file)
+        return _yaml_step(lambda: loader.construct_document(root), file), lines
+    finally:
+        loader.dispose()
+
+
+def _yaml_step(step: Any, file: str) -> Any:
+    """``step()`` with PyYAML's errors (and a recursion too deep for it) as located ConfigErrors."""
+    try:
+        return step()
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        problem = getattr(exc, "problem", None) or str(exc)
+        raise ConfigError(f"not valid YAML: {problem}", file=file,
+                          line=mark.line + 1 if mark is not None else None) from None
+    except RecursionError:
+        raise ConfigError("not valid YAML for drift: nested too deeply", file=file) from None
+
+
+def _expanded_size(root: yaml.Node, file: str) -> int:
+    """Number of nodes the document has once every alias is expanded (iterative, memoised per node, so
+    it costs one pass over the distinct nodes however large the expansion)."""
+    size: dict[int, int] = {}
+    on_path: set[int] = set()
+    stack: list[tuple[yaml.Node, bool]] = [(root, False)]
+    while stack:
+        node, done = stack.pop()
+        key = id(node)
+        children = _children(node)
+        if done:
+            on_path.discard(key)
+            total = 1 + sum(size[id(ch)] for ch in children)
+            if total > MAX_CONFIG_NODES:
+                raise ConfigError(
+                    f"the config expands to more than {MAX_CONFIG_NODES:,} YAML nodes through its aliases "
+                    f"(*name repeating &name): refused; write the repeated parts out or use fewer aliases",
+                    file=file, line=node.start_mark.line + 1)
+            size[key] = total
+            continue
+        if key in size:
+            continue
+        if key in on_path:
+            raise ConfigError("the config refers to itself through an alias (an anchor used inside its own "
+                              "value): refused", file=file, line=node.start_mark.line + 1)
+        on_path.add(key)
+        stack.append((node, True))
+        for ch in children:
+            if id(ch) not in size:
+                if id(ch) in on_path:
+                    raise ConfigError("the config refers to itself through an alias (an anchor used inside its "
+                                      "own value): refused", file=file, line=ch.start_mark.line + 1)
+                stack.append((ch, False))
+    return size[id(root)]
+
+
+def _children(node: yaml.Node) -> list[yaml.Node]:
+    if isinstance(node, yaml.MappingNode):
+        return [x for kv in node.value for x in kv]
+    if isinstance(node, yaml.SequenceNode):
+        return list(node.value)
+    return []
+
+
+def _line_map(root: yaml.Node, file: str) -> dict[tuple[Any, ...], int]:
+    """Map key paths (tuples of keys / list indices) to 1-based line numbers; each node is visited once (a
+    node repeated through an alias keeps the path where it was first seen). A key written twice in one
+    mapping is an error: YAML loaders keep the last one and silently drop the first."""
+    out: dict[tuple[Any, ...], int] = {}
+    seen: set[int] = set()
+    stack: list[tuple[yaml.Node, tuple[Any, ...]]] = [(root, ())]
+    while stack:
+        node, path = stack.pop()
         out.setdefault(path, node.start_mark.line + 1)
+        if id(node) in seen:
+            continue
+        seen.add(id(node))
         if isinstance(node, yaml.MappingNode):
+            first: dict[Any, int] = {}
             for k, v in node.value:
-                key = k.value
-                out[path + (key,)] = k.start_mark.line + 1
-                walk(v, path + (key,))
-                out[path + (key,)] = k.start_mark.line + 1
+                key = k.value if isinstance(k, yaml.ScalarNode) else None
+                line = k.start_mark.line + 1
+                if key is not None and key != "<<":
+                    if key in first:
+                        where = _key_path(path + (key,))
+                        raise ConfigError(f"key '{key}' is written twice in the same mapping (lines {first[key]} "
+                                          f"and {line}); keep one", file=file, key=where, line=line)
+                    first[key] = line
+                    out[path + (key,)] = line
+                    stack.append((v, path + (key,)))
         elif isinstance(node, yaml.SequenceNode):
             for i, v in enumerate(node.value):
-                walk(v, path + (i,))
-
-    if root is not None:
-        walk(root, ())
+                stack.append((v, path + (i,)))
     return out
 
 
@@ -548,21 +690,20 @@ def load_config(path: str | os.PathLike[str], *, check_files: bool = False) -> C
     if not file.exists():
         raise ConfigError("config file not found", file=str(file))
     try:
-        text = file.read_text(encoding="utf-8")
+        if file.is_dir():
+            raise ConfigError("is a folder, not a config file", file=str(file))
+        if file.stat().st_size > MAX_CONFIG_BYTES:
+            raise ConfigError(f"the config file is larger than {MAX_CONFIG_BYTES // 2**20} MiB: refused",
+                              file=str(file))
+        text = file.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"cannot read the config file: {exc}", file=str(file)) from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        line = mark.line + 1 if mark is not None else None
-        problem = getattr(exc, "problem", None) or str(exc)
-        raise ConfigError(f"not valid YAML: {problem}", file=str(file), line=line) from None
-    if data is None:
-        data = {}
+    data, lines = _parse_yaml(text, str(file))
+    if data is None or data == {}:
+        raise ConfigError("the config file is empty: it needs 'sources' (where the data come from) and 'models' "
+                          "(what to check); config/example.yaml shows both", file=str(file))
     if not isinstance(data, dict):
         raise ConfigError("the config must be a mapping of keys (store, sources, models, ...)", file=str(file), line=1)
-    lines = _line_map(text)
     try:
         cfg = Config.model_validate({**data, "base_dir": file.resolve().parent, "file": file})
     except ValidationError as exc:
@@ -608,6 +749,15 @@ def _check_semantics(cfg: Config, lines: dict[tuple[Any, ...], int]) -> None:
     file = str(cfg.file) if cfg.file else None
     for i, m in enumerate(cfg.models):
         step = period_length(m.frequency)
+        most = int(MAX_SPAN_YEARS * 366 / step.days)
+        spans: list[tuple[tuple[Any, ...], int, str]] = [(("models", i, "horizon"), m.horizon, "horizon")]
+        spans += [(("models", i, "drivers", j, "lag"), d.lag, "lag") for j, d in enumerate(m.drivers)]
+        spans += [(("models", i, "target_lags"), x, "target lag") for x in m.target_lags]
+        for key, v, what in spans:
+            if v > most:
+                raise ConfigError(f"{what} {v} is more than {MAX_SPAN_YEARS} years of '{m.frequency}' periods "
+                                  f"(at most {most})", file=file, key=_key_path(key),
+                                  line=lines.get(key) or lines.get(key[:-1]))
         for j, d in enumerate(m.drivers):
             delay = d.delay or timedelta(0)
             if d.form == "lagged":

@@ -10,8 +10,10 @@ Contract
 - Same inputs, same output, whatever the executor: every executor runs the same chunks through the same
   function, and results are reassembled by model position, never by completion order.
 - A chunk that raises does not stop the run: each of its models gets an error entry
-  (``"<ExceptionType>: <message>"``), the traceback is logged, and the other chunks complete. Models that
-  ``analyse`` itself rejects (its own per-model errors) keep their own messages.
+  (``"<ExceptionType>: <message>"``), one line is logged at error level (the traceback at debug level), and
+  the other chunks complete. Models that ``analyse`` itself rejects (its own per-model errors) keep their
+  own messages; ``analyse`` isolates its models from each other, so a chunk fails as a whole only when its
+  worker does (a killed process, memory, a lost Dask worker).
 - Worker processes run their linear algebra single-threaded (``OMP_NUM_THREADS=1`` and friends, set before
   the workers start, plus ``threadpoolctl`` when it is installed), so ``w`` workers on ``w`` cores do not
   oversubscribe the machine. A variable the user has already set is left alone.
@@ -309,7 +311,9 @@ def _run_dask(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig
 def _log_failure(i: int, n: int, chunk: Sequence[ModelConfig], exc: BaseException) -> None:
     names = [m.name for m in chunk]
     shown = ", ".join(names[:5]) + (f", ... ({len(names)} models)" if len(names) > 5 else "")
-    log.error("chunk %d/%d failed (%s): %s: %s", i + 1, n, shown, type(exc).__name__, exc, exc_info=exc)
+    log.error("chunk %d/%d failed (%s): %s: %s; its models get error entries (traceback at debug level)",
+              i + 1, n, shown, type(exc).__name__, exc)
+    log.debug("traceback of chunk %d/%d", i + 1, n, exc_info=exc)
 
 
 def _assemble(models: Sequence[ModelConfig], chunks: list[list[ModelConfig]],

@@ -6,6 +6,7 @@ it for a terminal. Both only read the store.
 
 from __future__ import annotations
 
+import json
 from datetime import datetime
 from typing import Any
 
@@ -35,7 +36,8 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
     - ``now``, ``timezone`` (the schedule's zone name)
     - ``jobs``: name -> {``schedule`` (text or None), ``last_run`` (started_at), ``finished_at``,
       ``outcome`` (runs.status), ``duration`` (seconds), ``error``, ``next_run`` (aware, in the schedule zone)}
-      for ingest, check, digest, retry
+      for ingest, check, digest, retry; the check's also ``failed_models`` (how many models its last run
+      could not check, None when unknown)
     - ``outbox``: {``pending`` (count), ``oldest_pending`` (created_at), ``last_error`` (newest error of a
       pending row), ``counts`` (per status), ``uncertain`` and ``dead`` (rows: id, channel, subject,
       attempts, last_error, created_at)}
@@ -72,6 +74,8 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
             "error": last["error"] if last else None,
             "next_run": nxt,
         }
+        if name == "check":
+            jobs[name]["failed_models"] = _failed_models(last)
     lock = read_lock(store, "daemon")
     if lock is not None:
         lock["stale"] = is_stale(lock, now=now, stale_after=STALE_AFTER_SECONDS)
@@ -84,6 +88,17 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
         "open_alerts": _open_alerts(store),
         "lock": lock,
     }
+
+
+def _failed_models(run: dict[str, Any] | None) -> int | None:
+    """How many models a check run could not check (its detail's ``failed``); None when not recorded."""
+    if run is None or not run.get("detail"):
+        return None
+    try:
+        n = json.loads(run["detail"]).get("failed")
+    except (ValueError, AttributeError):
+        return None
+    return int(n) if isinstance(n, int) else None
 
 
 def _outbox(store: Store) -> dict[str, Any]:
@@ -182,6 +197,8 @@ def format_status(status: dict[str, Any]) -> str:
                      f"{(j['outcome'] or '-'):<10} {took:>8}  {_t(j['next_run'])}")
         if j["outcome"] not in (None, "ok", "running") and j["error"]:
             lines.append(f"           {j['error'][:200]}")
+        elif j.get("failed_models"):
+            lines.append(f"           {j['failed_models']} model(s) could not be checked")
     lines.append("")
     lines += _outbox_lines(status["outbox"])
     feeds = status["stale_feeds"]

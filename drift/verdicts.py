@@ -1,7 +1,8 @@
 """Turn test results into a small set of actions with plain-language reasons and the numbers behind them.
 
 Actions, most pressing first: ``data-late`` > ``refit`` > ``relag`` > ``drop-driver`` > ``watch``.
-The model's verdict is ``keep`` or the most pressing action. Deterministic: same evidence, same verdict.
+The model's verdict is ``keep`` or the most pressing action, or ``error`` when the model could not be
+checked at all (its data cannot support the check; the entry says why). Deterministic: same evidence, same verdict.
 
 False-alarm control (per model, over the monitoring horizon)
 -----------------------------------------------------------
@@ -39,6 +40,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 PRIORITY = ("data-late", "refit", "relag", "drop-driver", "watch")
+#: the verdict of a model that could not be checked (its entry gives the ``reason``); not an action
+ERROR = "error"
+#: every verdict a model can get: ``keep``, the most pressing action, or ``error``
+VERDICTS = ("keep", *PRIORITY, ERROR)
 
 
 @dataclass

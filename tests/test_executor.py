@@ -234,7 +234,7 @@ def test_failing_chunk_only_affects_its_models(boom_case: tuple[Config, pd.DataF
     if executor == "dask":
         pytest.importorskip("distributed")
     cfg, obs, oracle = boom_case
-    with caplog.at_level(logging.ERROR, logger="drift.executor"):
+    with caplog.at_level(logging.DEBUG, logger="drift.executor"):
         payloads, errors = run_chunks(with_executor(cfg, executor, 2), cfg.models, obs, as_of(),
                                       func=failing_analyse)
     assert list(errors) == [BOOM, "m2"]  # model order
@@ -242,7 +242,9 @@ def test_failing_chunk_only_affects_its_models(boom_case: tuple[Config, pd.DataF
     assert [p["name"] for p in payloads] == ["m0", "m1", "m3", "m4", "m5"]
     assert dump(payloads) == oracle
     failed = [r for r in caplog.records if "chunk 2/4 failed" in r.getMessage()]
-    assert len(failed) == 1 and failed[0].exc_info is not None  # logged with its traceback
+    assert len(failed) == 1 and failed[0].levelno == logging.ERROR and failed[0].exc_info is None  # one line
+    tb = [r for r in caplog.records if "traceback of chunk 2/4" in r.getMessage()]
+    assert len(tb) == 1 and tb[0].levelno == logging.DEBUG and tb[0].exc_info is not None
 
 
 def test_failing_chunk_via_monkeypatched_analyse(scenario: tuple[Config, pd.DataFrame, str],
