@@ -159,8 +159,9 @@ def _outbox_lines(ob: dict[str, Any]) -> list[str]:
     head = f"outbox: {ob['pending']} pending" + (f" (oldest {_t(ob['oldest_pending'])})" if ob["oldest_pending"]
                                                   else "")
     head += f", {n_unc} uncertain, {counts.get('sent', 0)} sent"
-    if counts.get("sending"):
-        head += f", {counts['sending']} being sent"
+    in_flight = counts.get("sending", 0) + counts.get("delivering", 0)
+    if in_flight:
+        head += f", {in_flight} being sent"
     if ob["dead"]:
         head += f", {len(ob['dead'])} given up"
     lines = [head]

@@ -110,6 +110,7 @@ class EmailSender(Channel):
 
     kind = "email"
     idempotent = False
+    reports_handover = True
 
     def __init__(self, cfg: Config, spec: EmailChannel, name: str, *,
                  chart_renderer: ChartRenderer | None = None) -> None:
@@ -240,14 +241,14 @@ class EmailSender(Channel):
         smtp = self._connect()
         try:
             self._login(smtp)
-            self._transfer(smtp, data)
+            self._transfer(smtp, data, msg.handing_over)
         finally:
             _quiet_close(smtp)
         log.info("e-mail %s sent to %d recipient(s) via %s", msg.key[:12], len(self.spec.to), self.name)
 
-    def _transfer(self, smtp: smtplib.SMTP, data: bytes) -> None:
+    def _transfer(self, smtp: smtplib.SMTP, data: bytes, handing_over: Callable[[], None]) -> None:
         """MAIL, RCPT, DATA, the data and the final reply, each failure placed before or after the data
-        went out (the table in the module docstring)."""
+        went out (the table in the module docstring); ``handing_over`` is called just before the data."""
         host = self.spec.host
 
         def refused(step: str, code: int, resp: Any) -> DeliveryError:
@@ -283,6 +284,7 @@ class EmailSender(Channel):
         body = _LEADING_DOT.sub(b"..", data)
         if not body.endswith(b"\r\n"):
             body += b"\r\n"
+        handing_over()  # the point of no return (the outbox records it before the data leaves)
         try:
             smtp.send(body + b".\r\n")
         except (smtplib.SMTPServerDisconnected, OSError) as exc:

@@ -2,11 +2,13 @@
 
 Life of an outbox row::
 
-    pending --claim--> sending --sent ok--> sent
-       ^                  |  \\--DeliveryError (known not delivered)--> pending, attempts+1, backoff
-       |                  |   \\--DeliveryUncertain / unexpected error--> uncertain (or left sending)
-       |                  \\--found on a later run, claim expired--> idempotent channel: pending again
-       |                                                             other channels:     uncertain
+    pending --claim--> sending --hand-over--> delivering --sent ok--> sent
+       ^                  |                      |  \\--DeliveryUncertain / unexpected error--> uncertain
+       |                  |                      \\--DeliveryError (known not delivered)--> pending, backoff
+       |                  \\--DeliveryError before the hand-over--> pending, attempts+1, backoff
+       |   found on a later run, claim expired:
+       |     sending    -> pending (nothing had left; for a channel that reports its hand-over)
+       |     delivering -> idempotent channel: pending again; other channels: uncertain
        \\---------------- resolve_uncertain(resend=True) by an operator ------------------/
 
 Rows
@@ -22,17 +24,26 @@ Delivery (:func:`deliver_pending`)
     reply 4xx/5xx, HTTP non-2xx) puts the row back to ``pending`` with ``last_error`` and
     ``next_attempt_at = now + min(retry_backoff * 2**(attempts-1), retry_max_backoff)``.
 
+The hand-over
+    A channel that sets ``reports_handover`` calls :meth:`OutboxMessage.handing_over` at its point of no
+    return — the e-mail channel just before it writes the message data (after the server said 354 to
+    DATA), the webhook just before it opens the request — and the row becomes ``delivering`` in a committed
+    transaction before anything leaves. Composing the message, drawing its charts, connecting, TLS, login,
+    MAIL and RCPT all happen while the row is ``sending``: a process that dies there has certainly
+    delivered nothing.
+
 The rule that guarantees "never twice"
     A row that may have reached the recipient is never re-sent automatically:
 
     - a channel error that leaves it unknown whether the message got through (the SMTP connection dropped
       after the message data was sent, an HTTP timeout after the request went out) marks the row
       ``uncertain`` at once;
-    - a row found ``sending`` on a later run (the process died between send and mark-sent, or the store
-      failed while marking) is, once its claim lease has expired: for an *idempotent* channel (the folder
-      sink, which checks the key in its file under a lock before appending) put back to ``pending`` and
-      sent again — the channel itself drops the duplicate; for every other channel (e-mail, webhook)
-      marked ``uncertain``. While the lease runs it is left alone: another process may be sending it.
+    - a row found ``sending`` or ``delivering`` on a later run (the process died, or the store failed while
+      marking) is left alone while its claim lease runs (another process may be sending it); once it has
+      expired: a ``sending`` row of a channel that reports its hand-over is put back to ``pending`` (nothing
+      had left); a row of an *idempotent* channel (the folder sink, which checks the key in its file under a
+      lock before appending) is put back to ``pending`` and sent again — the channel itself drops the
+      duplicate; every other row is marked ``uncertain``;
     - after an uncertain send, the channel's other rows wait for the next round (a receiver that stopped
       answering would make them uncertain too);
     - ``uncertain`` rows are reported by :func:`outbox_summary` (for ``drift status``) and stay so until
@@ -54,8 +65,8 @@ import hashlib
 import importlib
 import json
 import logging
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
 from typing import Any, ClassVar
 
@@ -75,7 +86,9 @@ _MAX_DOUBLINGS = 30
 #: built-in channel kinds and the modules that register them (imported on first use)
 _BUILTIN = {"email": "drift.delivery.email", "folder": "drift.delivery.folder", "webhook": "drift.delivery.webhook"}
 #: statuses of an outbox row
-STATUSES = ("pending", "sending", "sent", "uncertain", "dead")
+STATUSES = ("pending", "sending", "delivering", "sent", "uncertain", "dead")
+#: statuses of a row claimed by a process (its claim lease in next_attempt_at)
+_CLAIMED = ("sending", "delivering")
 
 
 class ChannelUnavailable(DeliveryError):
@@ -84,6 +97,10 @@ class ChannelUnavailable(DeliveryError):
 
 class DeliveryUncertain(DeliveryError):
     """The message may or may not have been delivered; the row is not re-sent automatically."""
+
+
+class ClaimLost(DeliveryError):
+    """This run's claim on a row expired and another run took it over; nothing was sent."""
 
 
 @dataclass(frozen=True)
@@ -97,6 +114,13 @@ class OutboxMessage:
     notice: dict[str, Any]
     attempts: int
     alert_id: int | None
+    #: set by :func:`deliver_pending`: records the hand-over (see the module docstring)
+    handover: Callable[[], None] | None = field(default=None, compare=False, repr=False)
+
+    def handing_over(self) -> None:
+        """Call right before the first byte that could deliver the message leaves (the point of no return)."""
+        if self.handover is not None:
+            self.handover()
 
 
 class Channel:
@@ -113,6 +137,9 @@ class Channel:
     #: True when ``send`` itself skips a message whose key was already delivered, so a row found
     #: ``sending`` after a crash can safely be sent again
     idempotent: ClassVar[bool] = False
+    #: True when ``send`` calls ``msg.handing_over()`` before anything that could deliver leaves, so a row
+    #: found ``sending`` (not ``delivering``) after a crash was certainly not delivered
+    reports_handover: ClassVar[bool] = False
 
     def __init__(self, cfg: Config, spec: Any, name: str) -> None:
         self.cfg = cfg
@@ -246,7 +273,8 @@ class DeliveryReport:
     sent : rows delivered and marked sent.
     failed : rows tried and put back to pending (with backoff).
     uncertain : rows newly marked uncertain (not re-sent automatically).
-    recovered : stale ``sending`` rows of idempotent channels put back to pending in this call.
+    recovered : stale claimed rows put back to pending in this call (idempotent channels, or rows whose
+        process died before the hand-over).
     deferred : due rows not tried (their channel was unavailable or is no longer configured).
     pending : pending rows left after the call (due later or deferred).
     errors : one entry per failed or uncertain try.
@@ -290,43 +318,63 @@ def _claim(store: Store, row_id: int, now: datetime, lease: timedelta) -> bool:
         return res.rowcount == 1
 
 
-def _mark_sent(store: Store, row_id: int, now: datetime) -> None:
+# Every mark after the claim names the claim by its lease deadline (``next_attempt_at`` as set by the claim),
+# so a run whose lease expired and whose row was taken over by a later run cannot change that row.
+
+def _mark_handover(store: Store, row_id: int, claim: datetime) -> None:
     with store.begin() as conn:
-        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "sending").values(
-            status="sent", sent_at=now, last_error=None))
+        res = conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "sending",
+                                                 outbox.c.next_attempt_at == claim).values(status="delivering"))
+    if res.rowcount != 1:  # the lease expired and another run took the row over: do not send
+        raise ClaimLost(f"outbox row {row_id} is no longer claimed by this run (its lease expired); not sent")
 
 
-def _mark_failed(store: Store, row_id: int, error: str, next_at: datetime) -> None:
+def _mark_sent(store: Store, row_id: int, now: datetime, claim: datetime) -> None:
     with store.begin() as conn:
-        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == "sending").values(
-            status="pending", last_error=error, next_attempt_at=next_at))
+        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(_CLAIMED),
+                                           outbox.c.next_attempt_at == claim)
+                     .values(status="sent", sent_at=now, last_error=None))
 
 
-def _mark_uncertain(store: Store, row_id: int, error: str, *, from_status: str = "sending") -> bool:
+def _mark_failed(store: Store, row_id: int, error: str, next_at: datetime, claim: datetime) -> None:
     with store.begin() as conn:
-        res = conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status == from_status).values(
-            status="uncertain", last_error=error))
+        conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(_CLAIMED),
+                                           outbox.c.next_attempt_at == claim)
+                     .values(status="pending", last_error=error, next_attempt_at=next_at))
+
+
+def _mark_uncertain(store: Store, row_id: int, error: str, *, from_status: Sequence[str] = _CLAIMED,
+                    claim: datetime | None = None) -> bool:
+    q = outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(from_status))
+    if claim is not None:
+        q = q.where(outbox.c.next_attempt_at == claim)
+    with store.begin() as conn:
+        res = conn.execute(q.values(status="uncertain", last_error=error))
         return res.rowcount == 1
 
 
 def _recover_stale(store: Store, channels: Mapping[str, Channel], now: datetime,
                    errors: list[DeliveryFailure]) -> tuple[int, int]:
-    """Resolve ``sending`` rows whose claim lease expired; return (recovered, uncertain)."""
+    """Resolve claimed rows whose claim lease expired; return (recovered, uncertain)."""
     recovered = uncertain = 0
     with store.connect() as conn:
-        stale = conn.execute(sa.select(outbox).where(outbox.c.status == "sending", outbox.c.next_attempt_at <= now)
+        stale = conn.execute(sa.select(outbox).where(outbox.c.status.in_(_CLAIMED), outbox.c.next_attempt_at <= now)
                              .order_by(outbox.c.id)).fetchall()
     for row in stale:
         ch = channels.get(row.channel)
-        if ch is not None and ch.idempotent:
+        nothing_left = row.status == "sending" and ch is not None and ch.reports_handover
+        if ch is not None and (ch.idempotent or nothing_left):
             with store.begin() as conn:
-                res = conn.execute(outbox.update().where(outbox.c.id == row.id, outbox.c.status == "sending")
+                res = conn.execute(outbox.update().where(outbox.c.id == row.id, outbox.c.status == row.status)
                                    .values(status="pending", next_attempt_at=now))
             recovered += res.rowcount
+            if nothing_left and res.rowcount:
+                log.info("outbox row %s (%s): an earlier run stopped before handing it over; sending it again",
+                         row.id, row.channel)
             continue
         msg = ("claimed for sending at an earlier run but never marked sent (the process stopped or the store "
                "failed): it may or may not have been delivered, so it is not re-sent automatically")
-        if _mark_uncertain(store, int(row.id), msg):
+        if _mark_uncertain(store, int(row.id), msg, from_status=(str(row.status),)):
             uncertain += 1
             errors.append(DeliveryFailure(str(row.channel), str(row.idempotency_key), msg))
             log.warning("outbox row %s (%s) is uncertain: %s", row.id, row.channel, msg)
@@ -372,19 +420,25 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
                 continue
             if not _claim(store, int(row.id), now, lease):
                 continue  # claimed by someone else meanwhile
+            claim = now + lease
             msg = _message(row)
-            msg = OutboxMessage(msg.id, msg.key, msg.channel, msg.subject, msg.notice, msg.attempts + 1, msg.alert_id)
+            msg = replace(msg, attempts=msg.attempts + 1,
+                          handover=((lambda rid=msg.id: _mark_handover(store, rid, claim)) if ch.reports_handover
+                                    else None))
             try:
                 ch.send(msg)
+            except ClaimLost as exc:
+                log.warning("outbox row %s (%s): %s", msg.id, msg.channel, exc)
+                continue
             except DeliveryUncertain as exc:
-                _mark_uncertain(store, msg.id, str(exc))
+                _mark_uncertain(store, msg.id, str(exc), claim=claim)
                 uncertain += 1
                 errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
                 log.warning("outbox row %s (%s): delivery uncertain, not re-sent: %s", msg.id, msg.channel, exc)
                 down.add(msg.channel)  # the receiver stopped answering: its other rows wait for the next round
                 continue
             except DeliveryError as exc:
-                _mark_failed(store, msg.id, str(exc), now + backoff(cfg, msg.attempts))
+                _mark_failed(store, msg.id, str(exc), now + backoff(cfg, msg.attempts), claim)
                 failed += 1
                 errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
                 log.warning("outbox row %s (%s) not delivered (try %d): %s", msg.id, msg.channel, msg.attempts, exc)
@@ -397,7 +451,7 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
                 errors.append(DeliveryFailure(msg.channel, msg.key, f"{exc.__class__.__name__}: {exc}"))
                 uncertain += 1
                 continue
-            _mark_sent(store, msg.id, now)
+            _mark_sent(store, msg.id, now, claim)
             sent += 1
             delivered.setdefault(msg.channel, []).append(msg)
     finally:

@@ -59,6 +59,7 @@ class WebhookSender(Channel):
 
     kind = "webhook"
     idempotent = False
+    reports_handover = True
 
     def __init__(self, cfg: Config, spec: WebhookChannel, name: str) -> None:
         super().__init__(cfg, spec, name)
@@ -87,6 +88,7 @@ class WebhookSender(Channel):
         headers["Idempotency-Key"] = msg.key
         data = json.dumps(self.body(msg), default=str).encode("utf-8")
         req = urllib.request.Request(self.spec.url, data=data, headers=headers, method="POST")
+        msg.handing_over()  # the request may reach the receiver from here on
         try:
             with _OPENER.open(req, timeout=self.spec.timeout) as resp:
                 status = resp.status

@@ -202,17 +202,62 @@ def test_crash_between_send_and_mark_sent_never_sends_twice(tmp_path: Path, stor
     monkeypatch.setattr(ob, "_mark_sent", crash)
     with pytest.raises(RuntimeError):
         deliver_pending(cfg, store, now=T0, channels=senders(cfg))
-    assert len(smtp_server.messages) == 1 and rows(store)[0].status == "sending"
+    assert len(smtp_server.messages) == 1 and rows(store)[0].status == "delivering"  # handed over
     monkeypatch.setattr(ob, "_mark_sent", real)
     # within the claim lease: left alone; after it: uncertain, reported, never re-sent
     rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=1), channels=senders(cfg))
-    assert (rep.sent, rep.uncertain) == (0, 0) and rows(store)[0].status == "sending"
+    assert (rep.sent, rep.uncertain) == (0, 0) and rows(store)[0].status == "delivering"
     rep = deliver_pending(cfg, store, now=T0 + ob.DEFAULT_SENDING_LEASE, channels=senders(cfg))
     assert (rep.sent, rep.uncertain) == (0, 1)
     deliver_pending(cfg, store, now=T0 + dt.timedelta(days=3), channels=senders(cfg))
     assert len(smtp_server.messages) == 1
     assert rows(store)[0].status == "uncertain"
     assert outbox_summary(store).counts["uncertain"] == 1
+
+
+def test_crash_before_the_handover_is_sent_again_once(tmp_path: Path, store: Any, smtp_server: SmtpServer,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    """A process that dies after claiming a row but before the message data left (here: while composing it)
+    certainly delivered nothing: once the lease has passed the row is sent again, once."""
+    import drift.delivery.outbox as ob
+
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+
+    def die(*a: Any, **k: Any) -> None:
+        raise KeyboardInterrupt  # stands in for the process being killed: not a channel error
+
+    monkeypatch.setattr(EmailSender, "_connect", die)
+    with pytest.raises(KeyboardInterrupt):
+        deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    monkeypatch.undo()
+    assert rows(store)[0].status == "sending" and smtp_server.messages == []
+    assert deliver_pending(cfg, store, now=T0 + dt.timedelta(minutes=1), channels=senders(cfg)).sent == 0
+    rep = deliver_pending(cfg, store, now=T0 + ob.DEFAULT_SENDING_LEASE, channels=senders(cfg))
+    assert (rep.recovered, rep.sent, rep.uncertain) == (1, 1, 0)
+    assert len(smtp_server.messages) == 1 and rows(store)[0].status == "sent"
+
+
+def test_a_run_whose_claim_expired_does_not_touch_the_row(tmp_path: Path, store: Any, smtp_server: SmtpServer,
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    """A run that stalls past its lease, while a later run takes the row over, neither sends it nor marks it."""
+    import drift.delivery.outbox as ob
+
+    cfg = email_cfg(tmp_path, smtp_server.port)
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    real_connect = EmailSender._connect
+    later = T0 + ob.DEFAULT_SENDING_LEASE + dt.timedelta(minutes=1)
+
+    def stall_then_connect(self: Any) -> Any:
+        # meanwhile a later run finds the claim expired, recovers the row and sends it
+        monkeypatch.setattr(EmailSender, "_connect", real_connect)
+        assert deliver_pending(cfg, store, now=later, channels=senders(cfg)).sent == 1
+        return real_connect(self)
+
+    monkeypatch.setattr(EmailSender, "_connect", stall_then_connect)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert (rep.sent, rep.failed, rep.uncertain) == (0, 0, 0)
+    assert len(smtp_server.messages) == 1 and rows(store)[0].status == "sent"
 
 
 def test_operator_resend_of_uncertain(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:

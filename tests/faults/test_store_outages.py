@@ -12,6 +12,7 @@ import os
 import subprocess
 import sys
 import textwrap
+from datetime import date, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -65,10 +66,16 @@ class LockHolder:
 
 
 def _demo(tmp_path: Path, timeout: float) -> Path:
-    cfg = generate(tmp_path)
+    """A small invented table (3 series x 104 weeks) and a config whose store waits ``timeout`` seconds."""
     db = tmp_path / "drift.db"
-    text = cfg.read_text(encoding="utf-8").replace("store: sqlite:///drift.db", f"store: sqlite:///{db}?timeout={timeout:g}")
-    cfg.write_text(text, encoding="utf-8")
+    (tmp_path / "data").mkdir()
+    lines = ["week,a,b,c"] + [f"{(date(2024, 1, 1) + timedelta(weeks=i)).isoformat()},{i},{2 * i},{3 * i}"
+                              for i in range(104)]
+    (tmp_path / "data" / "t.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    cfg = tmp_path / "drift.yaml"
+    cfg.write_text(f"store: sqlite:///{db}?timeout={timeout:g}\n"
+                   "sources:\n  - {name: t, kind: csv, path: data/t.csv, period_column: week}\nmodels: []\n",
+                   encoding="utf-8")
     open_store(f"sqlite:///{db}").dispose()  # the schema exists before the other process locks the file
     return cfg
 
@@ -217,3 +224,71 @@ def test_pg_session_terminated_mid_check(tmp_path: Path, pg_schema: str, where: 
         assert sorted(d["key"] for d in lines) == sorted(k for k, _ in ob)  # each delivered exactly once
     finally:
         store.dispose()
+
+
+@pytest.mark.postgres
+@pytest.mark.slow
+def test_pg_session_terminated_under_a_running_cli_ingest(tmp_path: Path, pg_schema: str) -> None:
+    """``drift ingest`` as a real process; its server session (found by its application_name) is ended with
+    pg_terminate_backend while it writes a large file: one line naming the store, exit 1, the run recorded
+    failed, nothing of the batch stored; the next ingest stores everything."""
+    import time
+    import uuid
+
+    import numpy as np
+    import pandas as pd
+
+    from tests.conftest import PG_URL
+
+    app = f"drift-t-{uuid.uuid4().hex[:8]}"  # this test's sessions only: other runs share the server
+    url = f"{pg_schema}&application_name={app}"
+    rng = np.random.default_rng(20260413)  # invented table: 120 series x 520 weeks
+    weeks = pd.date_range("2016-01-04", periods=520, freq="7D").date.astype(str)
+    df = pd.DataFrame(np.round(rng.normal(100.0, 10.0, (520, 120)), 2), columns=[f"s{i:03d}" for i in range(120)])
+    df.insert(0, "week", weeks)
+    (tmp_path / "data").mkdir()
+    df.to_csv(tmp_path / "data" / "big.csv", index=False)
+    cfg = tmp_path / "drift.yaml"
+    cfg.write_text(f"store: '{url}'\nsources:\n  - {{name: feeds, kind: csv, path: data/*.csv, period_column: week}}\n"
+                   "models: []\n", encoding="utf-8")
+    open_store(url).dispose()
+    admin = sa.create_engine(PG_URL)
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "drift.cli", "ingest", "--config", str(cfg)], cwd=tmp_path,
+                                env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        killed = None
+        deadline = time.monotonic() + CEILING
+        while killed is None and proc.poll() is None and time.monotonic() < deadline:
+            with admin.begin() as conn:
+                killed = conn.execute(sa.text(
+                    "select pg_terminate_backend(pid) from pg_stat_activity where application_name = :a "
+                    "and state in ('active', 'idle in transaction') and query ilike '%%observations%%' limit 1"),
+                    {"a": app}).scalar()
+            time.sleep(0.005)
+        out, err = proc.communicate(timeout=CEILING)
+    finally:
+        admin.dispose()
+    assert killed, f"the ingest finished before its session could be ended: {out} {err}"
+    assert proc.returncode == 1, err
+    assert "Traceback" not in err and "the connection to the store at" in err and "was lost" in err, err
+    assert "password" not in err.lower()
+    st = open_store(url)
+    try:
+        [run] = st.recent_runs("ingest")
+        assert run["status"] == "failed" and "was lost" in run["error"]
+        assert _count_in(st, observations) == 0 and _count_in(st, batches) == 0
+    finally:
+        st.dispose()
+    again = _cli("ingest", "--config", str(cfg), cwd=tmp_path)
+    assert again.returncode == 0, again.stderr
+    st = open_store(url)
+    try:
+        assert _count_in(st, observations) == 520 * 120
+        assert [r["status"] for r in st.recent_runs("ingest")] == ["ok", "failed"]
+    finally:
+        st.dispose()
+
+
+def _count_in(store: Any, table: sa.Table) -> int:
+    with store.connect() as conn:
+        return int(conn.execute(sa.select(sa.func.count()).select_from(table)).scalar_one())

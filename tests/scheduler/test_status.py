@@ -30,7 +30,8 @@ def _fill(store: Store) -> None:
             model="sales_south", condition="relag", action="relag", severity=2, status="cleared",
             first_seen=t0, last_seen=t0, payload="{}"))
         rows = [("pending", t0, "SMTP 451 try later"), ("pending", t0 + timedelta(hours=1), None),
-                ("uncertain", t0, "timeout after DATA"), ("dead", t0, "550 no such user"), ("sent", t0, None)]
+                ("uncertain", t0, "timeout after DATA"), ("dead", t0, "550 no such user"), ("sent", t0, None),
+                ("delivering", t0, None)]
         for i, (st, created, err) in enumerate(rows):
             conn.execute(outbox.insert().values(
                 alert=a1, channel="ops-mail", idempotency_key=f"k{i}", subject=f"alert {i}", payload="{}",
@@ -68,8 +69,8 @@ def test_collect_status_fields(store: Store) -> None:
     assert st["lock"]["pid"] == os.getpid() and st["lock"]["host"] == socket.gethostname()
     assert st["lock"]["stale"] is None
     text = format_status(st)
-    for needle in ("pid", "check", "failed", "2 pending", "uncertain: #", "dead: #", "sales_north: temp",
-                   "sales_north: refit"):
+    for needle in ("pid", "check", "failed", "2 pending", "1 uncertain, 1 sent, 1 being sent, 1 given up",
+                   "uncertain: #", "drift deliver --resend ID", "dead: #", "sales_north: temp", "sales_north: refit"):
         assert needle in text, needle
     json.dumps(st, default=str)  # everything renders
 
