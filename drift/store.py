@@ -245,18 +245,16 @@ class Store:
     @contextmanager
     def begin(self) -> Iterator[Connection]:
         """A write transaction (context manager yielding a Connection; commits on success)."""
-        with self._translated():
-            with self.engine.connect() as conn:
-                conn.execution_options(drift_write=True)
-                with conn.begin():
-                    yield conn
+        with self._translated(), self.engine.connect() as conn:
+            conn.execution_options(drift_write=True)
+            with conn.begin():
+                yield conn
 
     @contextmanager
     def connect(self) -> Iterator[Connection]:
         """A connection for reading (its transaction is rolled back on exit unless committed)."""
-        with self._translated():
-            with self.engine.connect() as conn:
-                yield conn
+        with self._translated(), self.engine.connect() as conn:
+            yield conn
 
     def dispose(self) -> None:
         self.engine.dispose()
