@@ -255,6 +255,9 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
 #: usable reference rows) is taken as collinear with them: least squares in double precision cannot
 #: separate their effects (condition number beyond ~1e7; common practice, no source)
 COLLINEAR_RTOL = 1e-7
+#: largest magnitude of a target or regressor value the check computes with: sums of squares of such
+#: values stay far from float64 overflow (~1.8e308); a larger value is a broken input, not data
+MAX_ABS_VALUE = 1e100
 
 
 def _validate(c: _Ctx) -> None:
@@ -264,10 +267,29 @@ def _validate(c: _Ctx) -> None:
     ------
     InsufficientDataError : fewer usable reference rows than the fit needs (regressors + 3); the hint
         says which series leave rows unusable.
-    DriftError : a constant target, or collinear regressors on the reference rows (named, with the
-        linear relation between them).
+    DriftError : a value too large to compute with (named with its period), a constant target, or
+        collinear regressors on the reference rows (named, with the linear relation between them).
     """
     d, m = c.design, c.model
+    with np.errstate(invalid="ignore"):
+        huge_y = np.flatnonzero(np.abs(d.y) > MAX_ABS_VALUE)
+        huge_x = np.argwhere(np.abs(d.X) > MAX_ABS_VALUE)
+    if huge_y.size or huge_x.size:
+        if huge_y.size:
+            t = int(huge_y[0])
+            what = (f"the target '{m.target}' has the value {float(d.y[t]):.6g} for the period starting "
+                    f"{d.periods[t].date().isoformat()}")
+        else:
+            t, j = (int(i) for i in huge_x[0])
+            what = f"{d.columns[j]} has the value {float(d.X[t, j]):.6g} in the row of {d.periods[t].date().isoformat()}"
+            for s, col in d.driver_columns.items():
+                if col == j:
+                    lag = d.lags.get(s, 0)
+                    when = shift_periods(d.periods[t:t + 1], m.frequency, lag)[0]
+                    what = (f"the driver '{s}' has the value {float(d.X[t, j]):.6g} for the period starting "
+                            f"{when.date().isoformat()}")
+        raise DriftError(f"model '{m.name}': {what}: beyond {MAX_ABS_VALUE:.0e} in size, too large to compute "
+                         "with (its squares overflow); check the source")
     ref = slice(0, d.n_ref)
     ok = np.isfinite(c.y[ref]) & np.isfinite(c.X[ref]).all(axis=1)
     need = d.k + 3

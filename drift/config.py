@@ -41,6 +41,8 @@ FREQUENCIES = ("D", "W", "M", "Q")
 SEASON_BY_FREQ = {"D": 7, "W": 52, "M": 12, "Q": 4}
 #: default largest lag scanned by the lag profile, per frequency
 MAX_LAG_BY_FREQ = {"D": 14, "W": 8, "M": 3, "Q": 2}
+#: the databases a store can live in (the ``store`` URL's backend)
+STORE_BACKENDS = ("sqlite", "postgresql")
 #: the dates drift computes with (config dates, --as-of and friends): inside pandas' nanosecond timestamps
 #: (1677-09-22 .. 2262-04-11) with room for horizons and delays on either side
 DATE_RANGE = (date(1700, 1, 1), date(2200, 12, 31))
@@ -422,6 +424,24 @@ class Config(_Strict):
     # not from YAML
     base_dir: Path = Field(default=Path("."), exclude=True)
     file: Path | None = Field(default=None, exclude=True)
+
+    @field_validator("store")
+    @classmethod
+    def _store(cls, v: str | None) -> str | None:
+        """A store URL drift can open: SQLite or PostgreSQL (the driver is checked when it is opened)."""
+        if v is None:
+            return v
+        from sqlalchemy.engine import make_url
+        from sqlalchemy.exc import ArgumentError
+
+        hint = "use sqlite:///drift.db (a file, relative to the config) or postgresql+psycopg://user@host/db"
+        try:
+            backend = make_url(v).get_backend_name()
+        except (ArgumentError, ValueError):
+            raise ValueError(f"not a store URL; {hint}") from None
+        if backend not in STORE_BACKENDS:
+            raise ValueError(f"drift stores its data in SQLite or PostgreSQL, not '{backend}'; {hint}")
+        return v
 
     @model_validator(mode="after")
     def _cross(self) -> Config:

@@ -72,6 +72,10 @@ BAD = {
         {**VALUES, "y": np.where(np.arange(N) < 150, np.nan, VALUES["y"])},
         ["needs at least 13 usable observations", "6 available", "target 'by' 150"]),
     "a driver entirely missing": ({k: v for k, v in VALUES.items() if k != "x2"}, ["no observations of 'bx2'"]),
+    "a target value of 1e308": ({**VALUES, "y": np.where(np.arange(N) == 170, 1e308, VALUES["y"])},
+                                ["the target 'by' has the value 1e+308 for the period starting 2024-04-08"]),
+    "a driver value of -1e308": ({**VALUES, "x1": np.where(np.arange(N) == 50, -1e308, VALUES["x1"])},
+                                 ["the driver 'bx1' has the value -1e+308 for the period starting 2021-12-20"]),
 }
 
 

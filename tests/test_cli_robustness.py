@@ -175,3 +175,13 @@ def test_byte_order_mark_is_accepted(tmp_path: Path) -> None:
     p = tmp_path / "drift.yaml"
     p.write_bytes("\ufeff".encode() + MINIMUM.encode())
     assert load_config(p).models[0].name == "k000"
+
+
+@pytest.mark.parametrize("url, words", [
+    ("nonsense", "not a store URL"),
+    ("nonsense://x", "not 'nonsense'"),
+    ("mysql://u:secret@db/x", "not 'mysql'"),
+])
+def test_store_url_is_checked_at_load(tmp_path: Path, url: str, words: str) -> None:
+    code, _, err = invoke("check", "--config", str(_write(tmp_path, f"store: '{url}'\n" + MODELS)), cwd=tmp_path)
+    assert code == 2 and "key 'store'" in err and words in err and "secret" not in err, err

@@ -106,6 +106,13 @@ class SeriesRules:
         #: series some model uses as a forecast or known-in-advance driver (values for future periods)
         self.forward = frozenset(d.series for m in cfg.models for d in m.drivers if d.form != "lagged")
 
+    def fingerprint(self) -> list[tuple[str, str | None, int, float]]:
+        """(series, frequency, week anchor, delay in seconds) of every series the models name, sorted: what a
+        change of which must make files be read again."""
+        names = sorted(set(self._freq) | set(self._anchor) | set(self._delays) | set(self.forward))
+        return [(s, self._freq.get(s), self._anchor.get(s, 0),
+                 self._delays[s].total_seconds() if s in self._delays else -1.0) for s in names]
+
     def rule(self, series: str, source: SourceConfig) -> SeriesRule:
         freq = self._freq.get(series)
         anchor = self._anchor.get(series, 0) if freq is not None else 0
