@@ -36,7 +36,7 @@ import sqlalchemy as sa
 from typing_extensions import Self
 
 from drift.exceptions import LockError
-from drift.store import Store, locks, utcnow
+from drift.store import STORE_FAILURES, Store, locks, utcnow
 
 log = logging.getLogger(__name__)
 
@@ -176,7 +176,7 @@ class StoreLock:
         try:
             with self.store.begin() as conn:
                 conn.execute(locks.delete().where(locks.c.name == self.name, locks.c.owner == self.owner))
-        except sa.exc.SQLAlchemyError as exc:
+        except STORE_FAILURES as exc:
             self.store.dispose()
             log.warning("could not release the %s lock (%s); it will go stale in %.0f s",
                         self.name, exc.__class__.__name__, self.stale_after)
@@ -196,7 +196,7 @@ class StoreLock:
         while not self._stop.wait(self.heartbeat):
             try:
                 ours = self.beat()
-            except sa.exc.SQLAlchemyError as exc:
+            except STORE_FAILURES as exc:
                 self.store.dispose()  # the next beat reconnects
                 log.warning("lock heartbeat failed (%s: %s); retrying in %.0f s", exc.__class__.__name__,
                             str(exc).splitlines()[0] if str(exc) else "", self.heartbeat)

@@ -81,7 +81,7 @@ from apscheduler.triggers.interval import IntervalTrigger
 from drift.config import Config, parse_trigger
 from drift.exceptions import LockError, StoreError
 from drift.lock import HEARTBEAT_SECONDS, STALE_AFTER_SECONDS, StoreLock
-from drift.store import Store, open_store, utcnow
+from drift.store import STORE_FAILURES, Store, open_store, utcnow
 
 log = logging.getLogger(__name__)
 
@@ -425,7 +425,7 @@ class Daemon:
         try:
             run_id = self.store.start_run(name, job_id=job_id(name), scheduled_for=scheduled_for,
                                           detail=detail)
-        except sa.exc.SQLAlchemyError as exc:
+        except STORE_FAILURES as exc:
             self.store.dispose()  # the next run reconnects
             msg = f"cannot record the start of {name} in the store ({_short(exc)}); skipped, retried next time"
             log.error("%s", msg)
@@ -461,7 +461,7 @@ class Daemon:
         if exc is None:
             self._settle(fl, "ok", result=fl.box.get("result"))
         else:
-            if isinstance(exc, sa.exc.SQLAlchemyError):
+            if isinstance(exc, STORE_FAILURES):
                 self.store.dispose()  # a lost connection: the next run reconnects
             log.error("%s: run %d failed:\n%s", fl.name, fl.run_id, fl.box.get("tb", ""))
             self._settle(fl, "failed", error=f"{exc.__class__.__name__}: {_short(exc)}")
@@ -481,7 +481,7 @@ class Daemon:
             detail["result"] = _summary(result)
         try:
             self.store.finish_run(fl.run_id, status, detail=detail, error=error)
-        except sa.exc.SQLAlchemyError as exc:
+        except STORE_FAILURES as exc:
             self.store.dispose()
             log.error("%s: cannot record run %d as %s (%s); it stays 'running' until the next start",
                       fl.name, fl.run_id, status, _short(exc))
@@ -521,7 +521,7 @@ class Daemon:
             try:
                 run_id = self.store.record_run(name, "missed", job_id=event.job_id, scheduled_for=t,
                                                detail=detail, error=err)
-            except sa.exc.SQLAlchemyError as exc:
+            except STORE_FAILURES as exc:
                 self.store.dispose()
                 log.error("%s: cannot record a missed run (%s)", name, _short(exc))
             self._append(JobOutcome(name, t, "missed", run_id, err))

@@ -287,6 +287,9 @@ SQLITE_BUSY_TIMEOUT = 30.0
 PG_CONNECT_TIMEOUT = 10
 #: how drift's sessions are named in ``pg_stat_activity`` (``?application_name=`` in the URL overrides it)
 PG_APPLICATION_NAME = "drift"
+#: what a store operation can raise when the database is unusable right now (callers that must survive it,
+#: such as the daemon, catch these)
+STORE_FAILURES: tuple[type[Exception], ...] = (sa.exc.SQLAlchemyError, StoreError)
 #: SQLite error texts that mean "another connection holds the lock" (SQLITE_BUSY / SQLITE_LOCKED)
 _SQLITE_BUSY_TEXTS = ("database is locked", "database table is locked", "database schema is locked")
 
@@ -344,18 +347,16 @@ class Store:
     @contextmanager
     def begin(self) -> Iterator[Connection]:
         """A write transaction (context manager yielding a Connection; commits on success)."""
-        with self._translated():
-            with self.engine.connect() as conn:
-                conn.execution_options(drift_write=True)
-                with conn.begin():
-                    yield conn
+        with self._translated(), self.engine.connect() as conn:
+            conn.execution_options(drift_write=True)
+            with conn.begin():
+                yield conn
 
     @contextmanager
     def connect(self) -> Iterator[Connection]:
         """A connection for reading (its transaction is rolled back on exit unless committed)."""
-        with self._translated():
-            with self.engine.connect() as conn:
-                yield conn
+        with self._translated(), self.engine.connect() as conn:
+            yield conn
 
     def dispose(self) -> None:
         self.engine.dispose()

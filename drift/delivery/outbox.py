@@ -68,6 +68,7 @@ import logging
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
+from functools import partial
 from typing import Any, ClassVar
 
 import sqlalchemy as sa
@@ -423,8 +424,7 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
             claim = now + lease
             msg = _message(row)
             msg = replace(msg, attempts=msg.attempts + 1,
-                          handover=((lambda rid=msg.id: _mark_handover(store, rid, claim)) if ch.reports_handover
-                                    else None))
+                          handover=partial(_mark_handover, store, msg.id, claim) if ch.reports_handover else None)
             try:
                 ch.send(msg)
             except ClaimLost as exc:
@@ -505,7 +505,7 @@ def outbox_summary(store: Store) -> OutboxSummary:
 
 def not_uncertain(store: Store, ids: Sequence[int]) -> dict[int, str]:
     """Of the given outbox row ids, those that are not ``uncertain``, with their status (``no such row``)."""
-    wanted = sorted(set(int(i) for i in ids))
+    wanted = sorted({int(i) for i in ids})
     if not wanted:
         return {}
     with store.connect() as conn:

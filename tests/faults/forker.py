@@ -14,6 +14,7 @@ process starts no thread and opens no store, so forking it is safe.
 
 from __future__ import annotations
 
+import importlib
 import json
 import os
 import sys
@@ -51,18 +52,10 @@ def _child(argv: list[str], cwd: str, env: dict[str, str], out: str) -> None:
 
 def main() -> None:
     # the whole library the commands use, imported once before any fork
-    import drift.check  # noqa: F401
-    import drift.cli  # noqa: F401
-    import drift.delivery.alerts  # noqa: F401
-    import drift.delivery.charts  # noqa: F401
-    import drift.delivery.digest  # noqa: F401
-    import drift.delivery.email  # noqa: F401
-    import drift.delivery.folder  # noqa: F401
-    import drift.executor  # noqa: F401
-    import drift.ingest  # noqa: F401
-    import drift.pipeline  # noqa: F401
-    import drift.report  # noqa: F401
-    import drift.status  # noqa: F401
+    for name in ("drift.check", "drift.cli", "drift.delivery.alerts", "drift.delivery.charts",
+                 "drift.delivery.digest", "drift.delivery.email", "drift.delivery.folder", "drift.executor",
+                 "drift.ingest", "drift.pipeline", "drift.report", "drift.status"):
+        importlib.import_module(name)
 
     print(json.dumps({"ready": os.getpid()}), flush=True)
     for line in sys.stdin:

@@ -20,7 +20,8 @@ import socket
 import socketserver
 import threading
 import time
-from typing import Any
+
+from typing_extensions import Self
 
 STEPS = ("greeting", "ehlo", "mail", "rcpt", "data", "eod")
 _GOOD = {"greeting": b"220 127.0.0.1 scripted ESMTP", "ehlo": b"250-127.0.0.1\r\n250 8BITMIME",
@@ -152,9 +153,9 @@ class ScriptedSmtp:
         self._thread.join(timeout=10)
         self._server = self._thread = None
 
-    def __enter__(self) -> ScriptedSmtp:
+    def __enter__(self) -> Self:
         self.start()
         return self
 
-    def __exit__(self, *exc: Any) -> None:
+    def __exit__(self, *exc: object) -> None:
         self.stop()

@@ -55,7 +55,7 @@ def _cli(tmp_path: Path, *args: str) -> subprocess.CompletedProcess[bytes]:
     """The CLI as a real process (its own logging set-up, stderr as an operator sees it)."""
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]), **ENV}
     return subprocess.run([sys.executable, "-m", "drift.cli", "--log-level", "debug", *args], capture_output=True,
-                          cwd=tmp_path, env=env, timeout=CEILING)
+                          cwd=tmp_path, env=env, timeout=CEILING, check=False)
 
 
 @pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS:UserWarning")

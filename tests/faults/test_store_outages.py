@@ -20,7 +20,7 @@ import pytest
 import sqlalchemy as sa
 
 from drift.demo import generate
-from drift.store import batches, observations, open_store, runs
+from drift.store import batches, observations, open_store
 
 ROOT = Path(__file__).resolve().parents[2]
 CEILING = 120
@@ -31,7 +31,7 @@ def _env() -> dict[str, str]:
 
 
 def _cli(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "drift.cli", *args], capture_output=True, text=True, cwd=cwd,
+    return subprocess.run([sys.executable, "-m", "drift.cli", *args], capture_output=True, text=True, cwd=cwd, check=False,
                           env=_env(), timeout=CEILING)
 
 
@@ -119,7 +119,7 @@ def test_sqlite_lock_released_within_the_timeout_is_waited_for(tmp_path: Path) -
         proc = subprocess.Popen([sys.executable, "-m", "drift.cli", "ingest", "--config", str(cfg)], cwd=tmp_path,
                                 env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         holder.release()  # lets go about a second from now, while the ingest waits for it
-        out, err = proc.communicate(timeout=CEILING)
+        _, err = proc.communicate(timeout=CEILING)
     finally:
         holder.wait()
     assert proc.returncode == 0, err

@@ -203,3 +203,34 @@ def test_secrets_never_reach_the_log(tmp_path: Path) -> None:
     assert rc == EXIT_ERROR
     text = log_file.read_text()
     assert "127.0.0.1:1" in text and "s3cret-pw" not in text
+
+
+def test_a_store_locked_by_another_process_fails_the_run_not_the_daemon(tmp_path: Path, clock: Clock) -> None:
+    """Another process holds the SQLite write lock past the busy timeout: the job fails, the run cannot even
+    be recorded (that needs the lock too), the daemon goes on; once the lock is free the next run works and
+    is recorded. Common practice, no source."""
+    from drift.store import open_store
+    from tests.faults.test_store_outages import LockHolder
+
+    store = open_store(f"sqlite:///{tmp_path / 'd.db'}?timeout=0.2")
+    calls = Calls()
+
+    def writes(cfg: Config, st: Store) -> Any:
+        st.record_run("probe", "ok")  # any write
+        return calls(cfg, st)
+
+    try:
+        d = _daemon(store, clock, {"check": writes})
+        holder = LockHolder(tmp_path / "d.db")
+        try:
+            clock.set(2026, 3, 1, 1, 31)
+            out = d.run_pending()
+        finally:
+            holder.wait()
+        assert [o.status for o in out] == ["failed"] and "locked by another process" in (out[0].error or "")
+        clock.set(2026, 3, 2, 1, 31)
+        assert [o.status for o in d.run_pending()] == ["ok"]
+        d.stop()
+        assert [r["status"] for r in store.recent_runs(kind="check")] == ["ok"]
+    finally:
+        store.dispose()

@@ -70,3 +70,30 @@ def test_bad_arguments() -> None:
         StoreLock(None, heartbeat=0)  # type: ignore[arg-type]
     with pytest.raises(ValueError, match="stale_after"):
         StoreLock(None, heartbeat=10, stale_after=5)  # type: ignore[arg-type]
+
+
+def test_heartbeat_survives_a_locked_store(store: Store, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A beat that meets a store locked by another process (a StoreError) is retried at the next beat."""
+    import time
+
+    from drift.exceptions import StoreError
+
+    lk = StoreLock(store, heartbeat=0.05, stale_after=5.0)
+    real = lk.beat
+    seen = {"n": 0}
+
+    def flaky() -> bool:
+        seen["n"] += 1
+        if seen["n"] == 1:
+            raise StoreError("the SQLite store x is locked by another process")
+        return real()
+
+    monkeypatch.setattr(lk, "beat", flaky)
+    lk.acquire()
+    try:
+        deadline = time.monotonic() + 30
+        while seen["n"] < 3 and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert seen["n"] >= 3 and lk.held and not lk.lost.is_set()
+    finally:
+        lk.release()
