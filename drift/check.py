@@ -19,7 +19,8 @@ import pandas as pd
 from scipy import stats
 
 from drift import engine
-from drift.config import MAX_LAG_BY_FREQ, Config, ModelConfig, next_period, period_length, period_start
+from drift.config import (MAX_ABS_VALUE, MAX_LAG_BY_FREQ, Config, ModelConfig, next_period, period_length,
+                          period_start)
 from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
@@ -269,9 +270,6 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
 #: usable reference rows) is taken as collinear with them: least squares in double precision cannot
 #: separate their effects (condition number beyond ~1e7; common practice, no source)
 COLLINEAR_RTOL = 1e-7
-#: largest magnitude of a target or regressor value the check computes with: sums of squares of such
-#: values stay far from float64 overflow (~1.8e308); a larger value is a broken input, not data
-MAX_ABS_VALUE = 1e100
 
 
 def _validate(c: _Ctx) -> None:

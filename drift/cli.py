@@ -110,16 +110,36 @@ def cli(log_level: str) -> None:
 @cli.command()
 @config_opt
 @click.option("--source", "sources", multiple=True, help="Only this source (repeatable).")
-def ingest(config: str, sources: tuple[str, ...]) -> None:
+@click.option("--reread", is_flag=True,
+              help="Read every file again, even unchanged or retracted ones (values are compared as usual).")
+def ingest(config: str, sources: tuple[str, ...], reread: bool) -> None:
     """Read the configured sources into the store (new values, revisions as vintages, quarantine)."""
+    _ingest_command(config, sources, reread=reread)
+
+
+@cli.command()
+@config_opt
+@click.option("--source", "sources", multiple=True, help="Only this source (repeatable).")
+def readmit(config: str, sources: tuple[str, ...]) -> None:
+    """Read again the files holding open quarantine records, with the current config."""
+    _ingest_command(config, sources, readmit=True)
+
+
+def _ingest_command(config: str, sources: tuple[str, ...], *, reread: bool = False,
+                    readmit: bool = False) -> None:
     def go() -> None:
+        from drift.ingest.admin import summary_lines
         from drift.pipeline import run_ingest
 
         with _opened(config, need=("sources",)) as (cfg, store):
-            summaries = run_ingest(cfg, store, sources=list(sources) or None)
+            summaries = run_ingest(cfg, store, sources=list(sources) or None, reread=reread, readmit=readmit)
         refused = unavailable = False
+        if readmit and not any(s.files for s in summaries):
+            click.echo("no file holds open quarantine records")
         for s in summaries:
-            click.echo(s.describe())
+            if readmit and not s.files:
+                continue
+            click.echo("\n".join(summary_lines(s, config)))
             src = next((x for x in cfg.sources if x.name == s.source), None)
             if s.files == 0 and src is not None and src.kind != "sql":
                 click.echo(f"  no file matches '{src.path}' (relative to {cfg.base_dir})", err=True)
@@ -133,6 +153,56 @@ def ingest(config: str, sources: tuple[str, ...]) -> None:
             sys.exit(EXIT_CONFIG)
         if unavailable:
             sys.exit(EXIT_RUNTIME)
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--source", default=None, help="Only batches of this source.")
+@click.option("--limit", default=50, show_default=True, type=click.IntRange(min=1), help="Newest batches shown.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def batches(config: str, source: str | None, limit: int, as_json: bool) -> None:
+    """List ingested batches (files and query results), newest first, with their counts and retractions."""
+    def go() -> None:
+        from drift.ingest.admin import BATCH_KEYS, as_json_rows, format_batches
+
+        with _opened(config) as (_, store):
+            rows = store.list_batches(source=source, limit=limit)
+        click.echo(json.dumps({"batches": as_json_rows(rows, BATCH_KEYS)}) if as_json else format_batches(rows))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--batch", "ids", multiple=True, required=True, type=int, help="Batch id (repeatable).")
+@click.option("--note", default=None, help="Why, kept with the batch.")
+def retract(config: str, ids: tuple[int, ...], note: str | None) -> None:
+    """Mark batches and their values retracted: ignored from now on, kept for as-of queries before now."""
+    def go() -> None:
+        from drift.ingest.admin import retract as retract_batches
+
+        with _opened(config) as (_, store):
+            click.echo("\n".join(retract_batches(store, list(ids), note=note)))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--source", default=None, help="Only records of this source.")
+@click.option("--all", "include_resolved", is_flag=True, help="Include records resolved by a later read.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def quarantine(config: str, source: str | None, include_resolved: bool, as_json: bool) -> None:
+    """List quarantined cells: file, row, column, raw value and reason."""
+    def go() -> None:
+        from drift.ingest.admin import QUARANTINE_KEYS, as_json_rows, format_quarantine
+
+        with _opened(config) as (_, store):
+            rows = store.quarantine_records(source=source, include_resolved=include_resolved)
+        click.echo(json.dumps({"rows": as_json_rows(rows, QUARANTINE_KEYS)}) if as_json
+                   else format_quarantine(rows, include_resolved=include_resolved))
 
     _run(go)
 

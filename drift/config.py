@@ -14,6 +14,8 @@ Time conventions
 
 from __future__ import annotations
 
+import codecs
+
 import difflib
 import glob as _glob
 import math
@@ -46,6 +48,10 @@ STORE_BACKENDS = ("sqlite", "postgresql")
 #: the dates drift computes with (config dates, --as-of and friends): inside pandas' nanosecond timestamps
 #: (1677-09-22 .. 2262-04-11) with room for horizons and delays on either side
 DATE_RANGE = (date(1700, 1, 1), date(2200, 12, 31))
+#: largest magnitude of a value drift stores or computes with: sums of squares of such values stay far from
+#: float64 overflow (~1.8e308; 1e154 squared is already there); a larger value is a broken input, not data
+#: (common practice, no source). Ingest quarantines larger values; the check refuses them.
+MAX_ABS_VALUE = 1e100
 
 
 def check_date(v: date) -> date:
@@ -131,6 +137,7 @@ class SourceConfig(_Strict):
     frequency: Literal["D", "W", "M", "Q"] | None = None
     delimiter: str = ","
     decimal: str = "."
+    encoding: str = "utf-8"
     columns: list[str] | None = None
 
     _dur = field_validator("delay", mode="before")(lambda cls, v: parse_duration(v))
@@ -146,6 +153,17 @@ class SourceConfig(_Strict):
                 raise ValueError("a sql source needs 'query' (it may use the bound parameter :since)")
         if (self.series_column is None) != (self.value_column is None):
             raise ValueError("long format needs both 'series_column' and 'value_column'")
+        try:
+            codecs.lookup(self.encoding)
+        except LookupError:
+            raise ValueError(f"encoding '{self.encoding}' is not one Python knows; use e.g. 'utf-8', "
+                             "'latin-1' or 'cp1252'") from None
+        if len(self.delimiter) != 1 or self.delimiter in "\r\n\"":
+            raise ValueError(f"delimiter {self.delimiter!r} must be one character (not a quote or a line "
+                             "break), e.g. ',' or ';'")
+        if len(self.decimal) != 1 or self.decimal == self.delimiter:
+            raise ValueError(f"decimal {self.decimal!r} must be one character other than the delimiter, "
+                             "e.g. '.' or ','")
         if self.period_format is not None and self.period_format != "excel" and "%" not in self.period_format:
             raise ValueError(f"period_format '{self.period_format}' has no date codes; use codes such as "
                              "'%d/%m/%Y' (day first) or '%m/%d/%Y' (month first), or 'excel' for spreadsheet "

@@ -15,19 +15,30 @@ __all__ = ["CheckOutcome", "run_check", "run_deliver", "run_digest", "run_ingest
 
 
 def run_ingest(cfg: Config, store: Any, *, sources: list[str] | None = None,
-               progress: bool | None = None) -> list[Any]:
-    """Ingest every configured source (or the named ones) and record the run."""
-    from drift.ingest import ingest_all
+               progress: bool | None = None, reread: bool = False, readmit: bool = False) -> list[Any]:
+    """Ingest every configured source (or the named ones) and record the run.
 
-    run_id = store.start_run("ingest", detail={"sources": sources or [s.name for s in cfg.sources]})
+    ``reread``: read files again even when unchanged (:func:`drift.ingest.ingest_all`); ``readmit``: only
+    the files holding open quarantine records, read again (:func:`drift.ingest.readmit`).
+    """
+    from drift.ingest import ingest_all
+    from drift.ingest import readmit as readmit_files
+
+    detail: dict[str, Any] = {"sources": sources or [s.name for s in cfg.sources]}
+    if reread or readmit:
+        detail["mode"] = "readmit" if readmit else "reread"
+    run_id = store.start_run("ingest", detail=detail)
     try:
-        summaries = ingest_all(cfg, store, sources=sources, progress=progress)
+        if readmit:
+            summaries = readmit_files(cfg, store, sources=sources, progress=progress)
+        else:
+            summaries = ingest_all(cfg, store, sources=sources, progress=progress, reread=reread)
     except BaseException as exc:
         store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
     failed = [f for s in summaries for f in s.failed_files]
     store.finish_run(run_id, "ok" if not failed else "partial",
-                     detail={"summaries": [s.as_dict() for s in summaries]})
+                     detail={**detail, "summaries": [s.as_dict() for s in summaries]})
     return summaries
 
 

@@ -576,11 +576,14 @@ class Store:
         got = {bool(k): int(v) for k, v in rows}
         return got.get(False, 0), got.get(True, 0)
 
-    def list_batches(self, *, source: str | None = None, limit: int | None = None) -> list[dict[str, Any]]:
-        """Batches, newest first (optionally of one source)."""
+    def list_batches(self, *, source: str | None = None, limit: int | None = None,
+                     ids: Sequence[int] | None = None) -> list[dict[str, Any]]:
+        """Batches, newest first (optionally of one source, or with the given ids)."""
         q = sa.select(batches).order_by(batches.c.id.desc())
         if source is not None:
             q = q.where(batches.c.source == source)
+        if ids is not None:
+            q = q.where(batches.c.id.in_([int(i) for i in ids]))
         if limit is not None:
             q = q.limit(limit)
         with self.connect() as conn:
@@ -613,6 +616,34 @@ class Store:
                                  .values(retracted_at=when))
                     out[bid] = "retracted"
         return out
+
+    # ---------------------------------------------------------------- quarantine
+    def quarantine_records(self, *, source: str | None = None, include_resolved: bool = False,
+                           files: Sequence[str] | None = None) -> list[dict[str, Any]]:
+        """Quarantine records (open ones unless ``include_resolved``), by source, file, row and column."""
+        q = quarantine
+        stmt = sa.select(q).order_by(q.c.source, q.c.file, q.c.row, q.c.column, q.c.id)
+        if source is not None:
+            stmt = stmt.where(q.c.source == source)
+        if not include_resolved:
+            stmt = stmt.where(q.c.resolved_at.is_(None))
+        if files is not None:
+            stmt = stmt.where(q.c.file.in_(list(files)))
+        with self.connect() as conn:
+            return [dict(r._mapping) for r in conn.execute(stmt)]
+
+    def open_quarantine(self, conn: Connection, source: str, file: str) -> pd.DataFrame:
+        """The open records of one source and file: id, row, column, raw_value, reason."""
+        q = quarantine
+        rows = conn.execute(sa.select(q.c.id, q.c.row, q.c.column, q.c.raw_value, q.c.reason).where(
+            q.c.source == source, q.c.file == file, q.c.resolved_at.is_(None))).fetchall()
+        return pd.DataFrame([tuple(r) for r in rows], columns=["id", "row", "column", "raw_value", "reason"])
+
+    def resolve_quarantine(self, conn: Connection, ids: Sequence[int], batch_id: int, when: datetime) -> None:
+        """Mark records resolved by a batch that read their file again and no longer quarantined them."""
+        for chunk in _chunks([int(i) for i in ids], 500):
+            conn.execute(quarantine.update().where(quarantine.c.id.in_(chunk))
+                         .values(resolved_at=when, resolved_batch=batch_id))
 
     # ---------------------------------------------------------------- runs
     def start_run(self, kind: str, *, as_of: date | None = None, job_id: str | None = None,

@@ -4,6 +4,6 @@ See :mod:`drift.ingest.base` for the flow and the available_at rules, :mod:`drif
 what is quarantined and how rows are numbered.
 """
 
-from drift.ingest.base import IngestSummary, ingest_all, ingest_source
+from drift.ingest.base import IngestSummary, ingest_all, ingest_source, readmit
 
-__all__ = ["IngestSummary", "ingest_all", "ingest_source"]
+__all__ = ["IngestSummary", "ingest_all", "ingest_source", "readmit"]

@@ -57,6 +57,8 @@ READERS: dict[str, Callable[[Path, SourceConfig, FileBytes | None], RawTable]] =
 #: bump when a change to the readers or validation would read the same file differently: every file is
 #: then read again once (its values compared with what is stored), instead of being skipped as unchanged
 READER_VERSION = 2
+#: quarantine records per file kept in a summary (the first reasons shown after an ingest)
+FIRST_REASONS = 3
 #: source keys that do not change how a file's cells are read (left out of the settings hash)
 _NOT_PARSING = frozenset({"name", "path", "url", "url_env", "since"})
 #: auto progress shows a bar from this many files, or for a batch of this many cells
@@ -82,6 +84,11 @@ class IngestSummary:
     unavailable : the labels among ``failed_files`` that could not be reached (a query that failed to run, a
         file the system would not read) rather than refused for their content.
     skipped_retracted : of ``skipped``, the files whose batch was retracted (``reread`` reads them again).
+    quarantine_files : file -> quarantine records written for it by this ingest.
+    quarantine_first : the first records (file, row, column, raw value, reason), at most
+        :data:`FIRST_REASONS` per file and ten files' worth in all.
+    resolved : earlier quarantine records that this ingest's reading of their file no longer produces (the
+        file or the settings were fixed); they are marked resolved, not deleted.
     """
 
     source: str
@@ -94,12 +101,32 @@ class IngestSummary:
     skipped: int = 0
     unavailable: list[str] = field(default_factory=list)
     skipped_retracted: int = 0
+    quarantine_files: dict[str, int] = field(default_factory=dict)
+    quarantine_first: list[tuple[str, int, str, str, str]] = field(default_factory=list)
+    resolved: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         """Plain dict (JSON-ready) of the fields."""
         d = asdict(self)
         d["failed_files"] = [list(x) for x in self.failed_files]
+        d["quarantine_first"] = [list(x) for x in self.quarantine_first]
         return d
+
+    def quarantine_lines(self, files: int = 3) -> list[str]:
+        """Per file with new quarantine records (at most ``files`` files): its count and its first reason."""
+        first: dict[str, tuple[str, int, str, str, str]] = {}
+        for rec in self.quarantine_first:
+            first.setdefault(rec[0], rec)
+        out = []
+        for f, n in list(self.quarantine_files.items())[:files]:
+            line = f"{f}: {n} quarantined"
+            if f in first:
+                _, row, column, _, reason = first[f]
+                line += f", first: row {row}, column '{column}': {reason}"
+            out.append(line)
+        if len(self.quarantine_files) > files:
+            out.append(f"... and {len(self.quarantine_files) - files} more files with quarantined cells")
+        return out
 
     def describe(self) -> str:
         """One sentence for the CLI."""
@@ -110,6 +137,8 @@ class IngestSummary:
             if self.skipped_retracted:
                 s += (f" ({self.skipped_retracted} of them retracted earlier; --reread reads "
                       f"{'them' if self.skipped_retracted != 1 else 'it'} again)")
+        if self.resolved:
+            s += f", {self.resolved} earlier quarantine record{'s' if self.resolved != 1 else ''} resolved"
         if self.failed_files:
             n = len(self.failed_files)
             s += f"; {n} failed (unreadable, nothing stored from {'them' if n != 1 else 'it'})"
@@ -122,7 +151,10 @@ class IngestSummary:
                        failed_files=[*self.failed_files, *other.failed_files],
                        skipped=self.skipped + other.skipped,
                        unavailable=[*self.unavailable, *other.unavailable],
-                       skipped_retracted=self.skipped_retracted + other.skipped_retracted)
+                       skipped_retracted=self.skipped_retracted + other.skipped_retracted,
+                       quarantine_files={**self.quarantine_files, **other.quarantine_files},
+                       quarantine_first=[*self.quarantine_first, *other.quarantine_first][:10 * FIRST_REASONS],
+                       resolved=self.resolved + other.resolved)
 
 
 def ingest_all(cfg: Config, store: Store, *, sources: list[str] | None = None, now: datetime | None = None,
@@ -152,20 +184,39 @@ def ingest_all(cfg: Config, store: Store, *, sources: list[str] | None = None, n
     ValueError
         when ``now`` is naive.
     """
-    chosen = cfg.sources
-    if sources is not None:
-        known = {s.name: s for s in cfg.sources}
-        for name in sources:
-            if name not in known:
-                raise ConfigError(f"no source named '{name}'; configured: "
-                                  f"{', '.join(known) or 'none'}", file=str(cfg.file) if cfg.file else None,
-                                  key="sources")
-        chosen = [known[n] for n in sources]
     now = _check_now(now)
-    rules = SeriesRules(cfg)
     with _Progress(progress) as bar:
-        run = _Run(store, now, rules, bar, reread)
+        run = _Run(store, now, SeriesRules(cfg), bar, reread)
+        return [_ingest(cfg, run, s) for s in _choose(cfg, sources)]
+
+
+def readmit(cfg: Config, store: Store, *, sources: list[str] | None = None, now: datetime | None = None,
+            progress: bool | None = None) -> list[IngestSummary]:
+    """Read again the files that hold open quarantine records, with the current settings, whatever changed.
+
+    Cells that now pass are stored and their records resolved; the other files are not touched. Query
+    (``sql``) sources are left out: a query cannot return an earlier result again. Same parameters and
+    errors as :func:`ingest_all`; one summary per file source chosen.
+    """
+    now = _check_now(now)
+    chosen = [s for s in _choose(cfg, sources) if s.kind != "sql"]
+    only: dict[str, frozenset[str]] = {}
+    for s in chosen:
+        only[s.name] = frozenset(r["file"] for r in store.quarantine_records(source=s.name))
+    with _Progress(progress) as bar:
+        run = _Run(store, now, SeriesRules(cfg), bar, True, only)
         return [_ingest(cfg, run, s) for s in chosen]
+
+
+def _choose(cfg: Config, sources: list[str] | None) -> list[SourceConfig]:
+    if sources is None:
+        return list(cfg.sources)
+    known = {s.name: s for s in cfg.sources}
+    for name in sources:
+        if name not in known:
+            raise ConfigError(f"no source named '{name}'; configured: {', '.join(known) or 'none'}",
+                              file=str(cfg.file) if cfg.file else None, key="sources")
+    return [known[n] for n in sources]
 
 
 def ingest_source(cfg: Config, store: Store, source: str | SourceConfig, *, now: datetime | None = None,
@@ -198,6 +249,8 @@ class _Run:
     rules: SeriesRules
     bar: _Progress
     reread: bool
+    #: per source, the only files to read (None: every file the source's path matches)
+    only: dict[str, frozenset[str]] | None = None
 
 
 def settings_hash(source: SourceConfig, rules: SeriesRules) -> str:
@@ -229,8 +282,11 @@ def _ingest(cfg: Config, run: _Run, source: SourceConfig) -> IngestSummary:
             log.warning("source %s: %s", source.name, exc)
             return total + _failed(source, sql_label(source), exc)
     files = cfg.source_files(source)
-    if not files:
+    if run.only is not None:
+        files = [p for p in files if str(p) in run.only.get(source.name, frozenset())]
+    elif not files:
         log.warning("source %s: no file matches %s", source.name, source.path)
+    if not files:
         return total
     log.info("ingesting source %s: %d file(s)", source.name, len(files))
     reader = READERS[source.kind]
@@ -309,7 +365,7 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str)
             return IngestSummary(source.name, files=1, known=len(good), skipped=1)
         latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist()) if len(good) else None
         new, n_known, n_revised = _classify(good, latest, now, run.rules.forward)
-        qrows = _new_quarantine(conn, source, raw.label, checked.quarantine)
+        qrows, resolve = _quarantine_delta(conn, store, source, raw.label, checked.quarantine)
         task = bar.task(f"{source.name}: {Path(raw.label).name}", len(new) + len(qrows),
                         show=len(new) + len(qrows) >= PROGRESS_CELLS)
         n_stored = len(new) - n_revised
@@ -330,13 +386,18 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str)
             for i in range(0, len(recs), INSERT_CHUNK):
                 conn.execute(quarantine.insert(), recs[i:i + INSERT_CHUNK])
                 bar.advance(task, len(recs[i:i + INSERT_CHUNK]))
+        if resolve:
+            store.resolve_quarantine(conn, resolve, batch_id, now)
         conn.execute(batches.update().where(batches.c.id == batch_id).values(
             finished_at=now + timedelta(seconds=time.monotonic() - t0), stored=n_stored, known=n_known,
             revised=n_revised, quarantined=len(qrows), status="ok"))
     log.info("source %s, %s: %d new, %d revised, %d known, %d quarantined (%.2fs)", source.name, raw.label,
              n_stored, n_revised, n_known, len(qrows), time.monotonic() - t0)
+    first = [(raw.label, int(r.row), str(r.column), str(r.raw_value), str(r.reason))
+             for r in qrows.head(FIRST_REASONS).itertuples(index=False)]
     return IngestSummary(source.name, files=1, stored=n_stored, known=n_known, revised=n_revised,
-                         quarantined=len(qrows))
+                         quarantined=len(qrows), quarantine_files={raw.label: len(qrows)} if len(qrows) else {},
+                         quarantine_first=first, resolved=len(resolve))
 
 
 def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime,
@@ -344,9 +405,10 @@ def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime,
     """The rows to write (with their available_at, vintage number and a ``revised`` flag), and the known /
     revised counts.
 
-    A value equal to the latest live vintage of its key is known; a different one is a revision (vintage
-    number one past the highest used, available when ingested); a key without a live vintage gets a first
-    value (available at its period's end plus the delay), numbered past any retracted vintages.
+    A value equal to the latest live vintage of its key is known; a different one, or any value of a key
+    whose vintages were all retracted, is a revision (vintage number one past the highest used, available
+    when ingested); a key never stored gets its first vintage (available at its period's end plus the
+    delay).
     """
     if good.empty:
         return good.assign(revised=np.zeros(0, dtype=bool), vintage=np.zeros(0, dtype=np.int64)), 0, 0
@@ -364,7 +426,9 @@ def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime,
         g["_top"] = np.nan
     seen = g["_old"].notna().to_numpy()
     same = seen & (g["_old"].to_numpy() == g["value"].to_numpy())
-    revised = seen & ~same
+    # a key with history but no live vintage (all retracted) gets a correction: like a revision, it becomes
+    # known when ingested, so as-of queries before now still see what was known then
+    revised = g["_top"].notna().to_numpy() & ~same
     out = g.loc[~same].copy()
     rev = revised[~same]
     now_ts = pd.Timestamp(now)
@@ -418,18 +482,31 @@ def _python_values(idx: pd.DatetimeIndex, *, dates: bool = False) -> np.ndarray:
     return done[codes]
 
 
-def _new_quarantine(conn: Any, source: SourceConfig, label: str, records: pd.DataFrame) -> pd.DataFrame:
-    """The records not already quarantined for this source and file (same row, column, raw value, reason)."""
+_QKEY = ["row", "column", "raw_value", "reason"]
+
+
+def _quarantine_delta(conn: Any, store: Store, source: SourceConfig, label: str, records: pd.DataFrame
+                      ) -> tuple[pd.DataFrame, list[int]]:
+    """(records to write, open records to resolve) for a batch of one source and file.
+
+    A record already open for this source and file (same row, column, raw value and reason) is not written
+    again. An open record this read no longer produces - the file or the settings were fixed - is resolved;
+    only for files, since a query returns just what changed.
+    """
+    old = store.open_quarantine(conn, source.name, label)
+    if old.empty:
+        return records, []
+    old = old.assign(row=old["row"].astype(np.int64))
     if records.empty:
-        return records
-    q = quarantine
-    old = conn.execute(sa.select(q.c.row, q.c.column, q.c.raw_value, q.c.reason)
-                       .where(q.c.source == source.name, q.c.file == label)).fetchall()
-    if not old:
-        return records
-    seen = {(int(r[0]) if r[0] is not None else None, r[1], r[2], r[3]) for r in old}
-    keep = [(int(r.row), r.column, r.raw_value, r.reason) not in seen for r in records.itertuples(index=False)]
-    return records.loc[keep].reset_index(drop=True)
+        gone = old
+        fresh = records
+    else:
+        m = records.merge(old[_QKEY].drop_duplicates(), on=_QKEY, how="left", indicator=True)
+        fresh = records.loc[(m["_merge"] == "left_only").to_numpy()].reset_index(drop=True)
+        g = old.merge(records[_QKEY].drop_duplicates(), on=_QKEY, how="left", indicator=True)
+        gone = old.loc[(g["_merge"] == "left_only").to_numpy()]
+    resolve = [] if source.kind == "sql" else [int(i) for i in gone["id"]]
+    return fresh, resolve
 
 
 # ----------------------------------------------------------------------------------------- progress
@@ -470,4 +547,4 @@ class _Progress:
             self._bar.advance(task, n)
 
 
-__all__: Sequence[str] = ["READERS", "IngestSummary", "ingest_all", "ingest_source"]
+__all__: Sequence[str] = ["READERS", "IngestSummary", "ingest_all", "ingest_source", "readmit"]

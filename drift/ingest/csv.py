@@ -1,14 +1,16 @@
 """CSV reader: bytes -> :class:`~drift.ingest.validate.RawTable` of strings, or :class:`InputError`.
 
-The file must be UTF-8 (a byte-order mark is dropped) with a header row. Every cell is read as text;
+The file must be UTF-8 (a byte-order mark is dropped), or in the source's ``encoding``, with a header row. Every cell is read as text;
 empty fields stay empty strings (missing observations). Rows are numbered with the header as row 1, so the
 first data row is row 2 (record numbers: a quoted field spanning lines counts as one record). A row with
 more or fewer fields than the header, bad quoting, invalid UTF-8, an empty file or a repeated header name
-make the whole file unreadable: nothing of it is written.
+make the whole file unreadable: nothing of it is written. A header cell left empty names its column
+``(column N)``; validation quarantines that column's values (they belong to no series).
 """
 
 from __future__ import annotations
 
+import codecs
 import csv as _csv
 import io
 import logging
@@ -51,12 +53,20 @@ def read_csv(path: Path, source: SourceConfig, file: FileBytes | None = None) ->
     file = file or read_file(path)
     data, digest = file.data, file.digest
     data = data.removeprefix(_BOM)
+    encoding = codecs.lookup(source.encoding).name
     try:
-        text = data.decode("utf-8")
+        text = data.decode(encoding)
     except UnicodeDecodeError as exc:
         row = data[:exc.start].count(b"\n") + 1
-        raise InputError(f"is not UTF-8 text (byte 0x{data[exc.start]:02x} at offset {exc.start}); "
-                         "save it as UTF-8", file=label, row=row) from None
+        if encoding == "utf-8":
+            hint = ("save it as UTF-8, or set the source's encoding (e.g. encoding: latin-1 or cp1252 for "
+                    "files saved by older spreadsheet programs)")
+        else:
+            hint = f"check the source's encoding ('{source.encoding}')"
+        raise InputError(f"is not {'UTF-8' if encoding == 'utf-8' else source.encoding} text (byte "
+                         f"0x{data[exc.start]:02x} at offset {exc.start}); {hint}", file=label, row=row) from None
+    if encoding != "utf-8":
+        data = text.encode("utf-8")  # what the CSV parser reads
     if not text.strip():
         raise InputError("the file is empty (no header row)", file=label)
     if data.count(b'"') % 2:
@@ -69,12 +79,17 @@ def read_csv(path: Path, source: SourceConfig, file: FileBytes | None = None) ->
     except _csv.Error as exc:
         raise InputError(f"the header row cannot be parsed: {exc}", file=label, row=1) from None
     names = [h.strip() for h in header]
+    # a header cell left empty (often a trailing delimiter) still gets a column: named by its position
+    unnamed = {i: f"(column {i + 1})" for i, h in enumerate(names) if not h}
+    names = [unnamed.get(i, h) for i, h in enumerate(names)]
     seen: set[str] = set()
     for h in names:
         if h in seen:
             raise InputError(f"column '{h}' appears twice in the header; every column needs its own name",
                              file=label, row=1, column=h)
         seen.add(h)
+    if not data.endswith((b"\n", b"\r")):
+        data += b"\n"  # a last line without its line break (e.g. a header-only file) is still a line
     invalid: list[tuple[int | None, int, int]] = []
 
     def on_invalid(row: pacsv.InvalidRow) -> str:
@@ -106,4 +121,5 @@ def read_csv(path: Path, source: SourceConfig, file: FileBytes | None = None) ->
     frame = table.to_pandas(types_mapper=lambda t: pd.StringDtype() if t == pa.string() else None)
     frame = frame.astype(object)
     log.debug("read %s: %d rows, %d columns", label, len(frame), len(names))
-    return RawTable(label=label, content_hash=digest, frame=frame, first_row=2)
+    return RawTable(label=label, content_hash=digest, frame=frame, first_row=2,
+                    unnamed=frozenset(unnamed.values()))

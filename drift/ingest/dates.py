@@ -38,14 +38,15 @@ from enum import IntEnum
 import numpy as np
 import pandas as pd
 
+from drift.config import DATE_RANGE
 from drift.exceptions import InputError
 
 log = logging.getLogger(__name__)
 
-#: the earliest and latest dates stored (nanosecond timestamps end in 2262; this leaves room for period ends
-#: and publication delays)
-EARLIEST = pd.Timestamp("1700-01-01")
-LATEST = pd.Timestamp("2200-12-31 23:59:59.999999")
+#: the earliest and latest dates stored: :data:`drift.config.DATE_RANGE` (nanosecond timestamps end in 2262;
+#: this leaves room for period ends and publication delays)
+EARLIEST = pd.Timestamp(DATE_RANGE[0])
+LATEST = pd.Timestamp(DATE_RANGE[1]) + pd.Timedelta(days=1) - pd.Timedelta(microseconds=1)
 #: ``period_format`` value for spreadsheet serial day numbers
 SERIAL_FORMAT = "excel"
 #: day zero of spreadsheet serial day numbers (1900 date system, valid from 1900-03-01 on)

@@ -41,7 +41,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from drift.config import Config, SourceConfig, next_period, period_start
+from drift.config import MAX_ABS_VALUE, Config, SourceConfig, next_period, period_start
 from drift.exceptions import InputError
 from drift.ingest import dates
 
@@ -70,6 +70,7 @@ class RawTable:
     first_row : the number of the first data row (2 for CSV, whose header is row 1; 1 otherwise).
     empty : optional per-column masks, True where a cell is empty; for typed columns whose NaN is a value
         (Parquet keeps null and NaN apart). Columns not listed count as empty where null or blank text.
+    unnamed : placeholder names of columns whose header was empty (their values are quarantined).
     """
 
     label: str
@@ -77,6 +78,7 @@ class RawTable:
     frame: pd.DataFrame
     first_row: int = 1
     empty: Mapping[str, np.ndarray] = field(default_factory=dict)
+    unnamed: frozenset[str] = frozenset()
 
 
 @dataclass(frozen=True)
@@ -381,6 +383,10 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
     rcolumn = cell_column.copy()
     rraw = np.array([None] * len(cell_row), dtype=object)
 
+    if raw.unnamed and not source.long_format:
+        no_header = np.isin(cell_column, list(raw.unnamed))
+        reason[no_header] = ("the column has no name in the header, so its values belong to no series; "
+                             "name the column (or remove it)")
     if source.long_format:
         no_name = series == ""
         if no_name.any():
@@ -521,9 +527,16 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
         if decimal != ".":
             is_str = np.fromiter((isinstance(v, str) for v in values), dtype=bool, count=len(values))
             if is_str.any():
-                series[is_str] = series[is_str].str.replace(decimal, ".", regex=False)
-        out = pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
-        failed = np.nonzero(np.isnan(out))[0]
+                text = series[is_str]
+                dotted = text.str.contains(".", regex=False).to_numpy(dtype=bool)
+                for i in np.nonzero(is_str)[0][dotted]:
+                    reason[i] = (f"value '{_text(values[i]).strip()}' has a '.' but the source's decimal "
+                                 f"separator is '{decimal}' (a thousands separator? drift does not guess: "
+                                 "remove it)")
+                series[is_str] = text.str.replace(decimal, ".", regex=False)
+        out = np.array(pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan))
+        out[reason != None] = np.nan  # noqa: E711 - elementwise
+        failed = np.nonzero(np.isnan(out) & (reason == None))[0]  # noqa: E711 - elementwise
         for i in failed:
             text = _text(values[i]).strip()
             if text == "":
@@ -533,7 +546,11 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
             else:
                 reason[i] = f"value '{text}' is not a number"
     with np.errstate(invalid="ignore"):
-        nonfinite = ~np.isfinite(out) & (reason == None)
+        nonfinite = ~np.isfinite(out) & (reason == None)  # noqa: E711 - elementwise
+        huge = np.isfinite(out) & (np.abs(out) > MAX_ABS_VALUE) & (reason == None)  # noqa: E711
     for i in np.nonzero(nonfinite)[0]:
         reason[i] = f"value '{_text(values[i]).strip()}' is not a finite number"
-    return out, reason
+    for i in np.nonzero(huge)[0]:
+        reason[i] = (f"value '{_text(values[i]).strip()}' is beyond ±{MAX_ABS_VALUE:.0e}, the largest size drift "
+                     "accepts (the statistics square and sum values, which overflows near 1e154)")
+    return out + 0.0, reason  # + 0.0 turns -0.0 into 0.0
