@@ -227,19 +227,32 @@ class DeployedErrorsConfig(_Strict):
         return v
 
 
+class DeployedForecastsConfig(_Strict):
+    """The production system's own forecasts of the target, ingested as a series whose rows are forecasts
+    of a period issued at an origin (a source with ``issued_column``); ``horizon``: periods ahead (default:
+    the model's ``horizon``)."""
+
+    series: str
+    horizon: int | None = Field(None, ge=1)
+
+
 class DeployedConfig(_Strict):
     """The model as it runs in production: its coefficients by drift's design column names (see
     :func:`drift.deployed.expected_terms`): ``const``, ``trend``, ``sin1``/``cos1``... or ``season1``...,
     each driver by its series name, each target lag as ``<target>[L<j>]``; optionally its ARMA error
-    parameters; ``epoch``: the monitoring epoch these coefficients belong to (1 = the config as written)."""
+    parameters; and/or ``forecasts``: the series of its logged forecasts (any model, even a black box);
+    ``epoch``: the monitoring epoch these belong to (1 = the config as written)."""
 
-    coefficients: dict[str, float]
+    coefficients: dict[str, float] | None = None
     errors: DeployedErrorsConfig | None = None
+    forecasts: DeployedForecastsConfig | None = None
     epoch: int = Field(1, ge=1)
 
     @field_validator("coefficients")
     @classmethod
-    def _finite(cls, v: dict[str, float]) -> dict[str, float]:
+    def _finite(cls, v: dict[str, float] | None) -> dict[str, float] | None:
+        if v is None:
+            return v
         bad = [k for k, x in v.items() if not math.isfinite(x)]
         if bad:
             raise ValueError(f"coefficient(s) {', '.join(bad)} must be finite numbers")
@@ -247,6 +260,15 @@ class DeployedConfig(_Strict):
             raise ValueError("give at least one coefficient (by drift's column names: const, trend, ... and "
                              "each driver's series)")
         return v
+
+    @model_validator(mode="after")
+    def _something(self) -> DeployedConfig:
+        if self.coefficients is None and self.forecasts is None:
+            raise ValueError("deployed needs 'coefficients' (the production coefficients by column name) or "
+                             "'forecasts' (the series of the production forecasts), or both")
+        if self.errors is not None and self.coefficients is None:
+            raise ValueError("deployed 'errors' go with 'coefficients' (the error model of the replayed fit)")
+        return self
 
 
 _ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\))\s*$", re.IGNORECASE)
@@ -323,6 +345,19 @@ class ModelConfig(_Strict):
     @property
     def series(self) -> list[str]:
         return [self.target, *[d.series for d in self.drivers]]
+
+    @property
+    def read_series(self) -> list[str]:
+        """Every series a check reads for the model: target, drivers and the logged production forecasts."""
+        fs = self.forecast_series
+        return [*self.series, fs] if fs is not None else self.series
+
+    @property
+    def forecast_series(self) -> str | None:
+        """The series of the production forecasts (``deployed.forecasts.series``), if any."""
+        if self.deployed is None or self.deployed.forecasts is None:
+            return None
+        return self.deployed.forecasts.series
 
 
 class CheckConfig(_Strict):
@@ -834,7 +869,13 @@ def _check_semantics(cfg: Config, lines: dict[tuple[Any, ...], int]) -> None:
                 raise ConfigError(f"{what} {v} is more than {MAX_SPAN_YEARS} years of '{m.frequency}' periods "
                                   f"(at most {most})", file=file, key=_key_path(key),
                                   line=lines.get(key) or lines.get(key[:-1]))
-        if m.deployed is not None:
+        fs = m.forecast_series
+        if fs is not None and fs in m.series:
+            key = ("models", i, "deployed", "forecasts", "series")
+            raise ConfigError(f"'{fs}' is the model's target or one of its drivers; the production forecasts "
+                              "need a series of their own", file=file, key=_key_path(key),
+                              line=lines.get(key) or lines.get(key[:-1]))
+        if m.deployed is not None and m.deployed.coefficients is not None:
             from drift.deployed import check_terms
 
             problem = check_terms(m)

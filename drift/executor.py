@@ -123,7 +123,7 @@ def chunk_observations(obs: pd.DataFrame, chunks: Sequence[Sequence[ModelConfig]
     if "series" not in obs.columns:
         raise ValueError(f"obs must have a 'series' column; it has {list(obs.columns)}")
     index = _SeriesIndex(obs)
-    return [index.take([s for m in chunk for s in m.series]) for chunk in chunks]
+    return [index.take([s for m in chunk for s in m.read_series]) for chunk in chunks]
 
 
 # ------------------------------------------------------------------------------------------------ workers

@@ -42,7 +42,7 @@ from scipy import stats
 from drift import engine
 from drift.check import as_of_moment, prepare_model
 from drift.config import Config, period_length
-from drift.deployed import as_deployed_errors, coefficient_vector
+from drift.deployed import as_deployed_errors, coefficient_vector, forecast_horizon, logged_forecast_errors
 from drift.epochs import ACTIONS, Epoch, apply_epoch, current, start_epoch
 from drift.exceptions import DecisionError, DriftError
 from drift.store import Store, _jsonable, verdicts
@@ -178,7 +178,7 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
                    for d in model.drivers if d.series not in drop]
         new_model = model.model_copy(update={"drivers": drivers})
     moment = as_of_moment(day)
-    obs = store.load_observations(sorted(set(model.series)), moment)
+    obs = store.load_observations(sorted(set(model.read_series)), moment)
     try:
         cur = prepare_model(cfg, model, obs, moment)
         new = cur if new_model is model else prepare_model(cfg, new_model, obs, moment)
@@ -222,6 +222,7 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
     if dep is not None:
         b_cur, ci_cur, source = dep, None, "deployed"
         e_cur = as_deployed_errors(model0, cd.y, cd.X, dep)  # the errors the check scores
+        errors_source = "the deployed coefficients replayed"
     else:
         okr = np.isfinite(cur.y[: cd.n_ref]) & np.isfinite(cur.X[: cd.n_ref]).all(axis=1)
         b_cur, se_cur, _, df_cur = _ols(cur.y[: cd.n_ref][okr], cur.X[: cd.n_ref][okr])
@@ -230,6 +231,11 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
         source = "reference fit"
         # the check's as-deployed one-step errors: the recursive fit from the reference period on
         e_cur = np.asarray(engine.recursive_fit(cur.y[None], cur.X[None]).forecast_error)[0]
+        errors_source = "drift's recursive re-estimate from the reference period on"
+    if model.forecast_series and forecast_horizon(model) == 1:
+        # the production system's own one-step forecasts, as logged: their errors are the as-deployed ones
+        _, logged = logged_forecast_errors(model, cd.periods, cur.obs)  # type: ignore[misc]
+        e_cur, errors_source = logged, "the logged production forecasts"
     cur_terms = _terms(cd.columns, cd.driver_columns)
     new_terms = _terms(d.columns, d.driver_columns)
     coefficients = []
@@ -288,7 +294,8 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
         "lags": new_lags, "dropped": dropped,
         "fit": {"rows": n_ok, "regressors": k, "sigma": _num(sigma_new), "df": df_new,
                 "error_model": cur.error_model},
-        "current_source": source, "coefficients": coefficients, "accuracy": accuracy,
+        "current_source": source, "current_errors": errors_source, "coefficients": coefficients,
+        "accuracy": accuracy,
         "unit": model.unit,
     })
 
@@ -357,7 +364,8 @@ def accept(cfg: Config, store: Store, name: str, *, action: str, since: date | N
         store, model0, action=action, effective=day,
         reference=(date.fromisoformat(ref["start"]), date.fromisoformat(ref["end"])),
         lags=proposal["lags"], dropped=proposal["dropped"], decided_by=decided_by(by), note=note,
-        proposal={k: proposal[k] for k in ("since", "until", "fit", "current_source", "coefficients", "accuracy")},
+        proposal={k: proposal[k] for k in ("since", "until", "fit", "current_source", "current_errors", "coefficients",
+                                           "accuracy")},
         now=now)
     log.info("model %s: epoch %d (%s) recorded by %s; %d open alert(s) closed as acted on", name, new.number,
              action, new.decided_by, len(closed))
@@ -395,10 +403,12 @@ def format_proposal(p: Mapping[str, Any]) -> str:
         unit = p.get("unit") or ""
         lines.append(f"one-step forecasts, {w['n']} periods from {w['start']} to {w['end']} (the proposal replayed "
                      f"out of sample, refitted at each origin on the data since {p['since']}):")
-        lines.append(f"  {cur}: MAE {fmt_num(acc['current']['mae'])} {unit}, RMSE {fmt_num(acc['current']['rmse'])}")
+        lines.append(f"  monitored model ({p['current_errors']}): MAE {fmt_num(acc['current']['mae'])} {unit}, "
+                     f"RMSE {fmt_num(acc['current']['rmse'])}")
         lines.append(f"  proposed: MAE {fmt_num(acc['proposed']['mae'])} {unit}, RMSE {fmt_num(acc['proposed']['rmse'])}")
+        pv = dm["pvalue"]
         lines.append(f"  Diebold–Mariano (HLN) that the proposal is more accurate: statistic "
-                     f"{fmt_num(dm['statistic'])}, p = {dm['pvalue']:.3g}")
+                     f"{fmt_num(dm['statistic'])}, " + ("p < 0.0001" if pv is not None and pv < 1e-4 else f"p = {pv:.3g}"))
     else:
         lines.append(f"no out-of-sample comparison: {acc.get('reason')}")
     lines.append("")
