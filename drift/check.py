@@ -110,6 +110,18 @@ def error_entry(model: ModelConfig | None, reason: str, as_of: date, *, name: st
     }
 
 
+def prepare_model(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: datetime) -> _Ctx:
+    """The model's design as the check builds it at ``as_of`` (prewhitened and validated), for the
+    commands that fit proposals on it (:mod:`drift.refit`).
+
+    Raises
+    ------
+    DriftError : the model cannot be checked with these data (the reason says why).
+    """
+    by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+    return _prepare(cfg, model, by_series, as_of, (as_of - timedelta(microseconds=1)).date())
+
+
 # ------------------------------------------------------------------------------------------------ helpers
 def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None, float]:
     """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``).
@@ -175,6 +187,7 @@ class _Ctx:
     charts: dict[str, Any] = field(default_factory=dict)
     accuracy: dict[str, Any] = field(default_factory=dict)
     late: set[str] = field(default_factory=set)
+    deployed: dict[str, Any] = field(default_factory=dict)
 
 
 def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime
@@ -210,6 +223,7 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
         if c.model.name in errors:
             continue
         try:
+            _deployed_replay(c)
             _freshness(c)
             _drivers_and_worth(c)
             _lag_drift(c)
@@ -636,6 +650,76 @@ def _date_break(c: _Ctx, alarm_idx: int) -> int:
     return int(max(lo, alarm_idx - 1))
 
 
+# ------------------------------------------------------------------------------------------------ deployed
+def _deployed_replay(c: _Ctx) -> None:
+    """With production coefficients in the config (``deployed:``, :mod:`drift.deployed`): the as-deployed
+    errors become those of the production model replayed with its coefficients (accuracy, forecast chart,
+    Trigg's tracking signal), its coefficients become the reference of the driver figures and charts, and
+    the payload's ``deployed`` block gives the gap to drift's reference-period re-estimate. The monitors
+    are left as they are (they test the relationship on drift's own recursive fit)."""
+    m, d, chk = c.model, c.design, c.cfg.check
+    if m.deployed is None:
+        return
+    from drift.deployed import as_deployed_errors, coefficient_vector
+
+    b = coefficient_vector(m, m.deployed.epoch, d)
+    if b is None:
+        return
+    e = as_deployed_errors(m, d.y, d.X, b)
+    mon = np.arange(d.n) >= d.n_ref
+    if "forecast" in c.charts:
+        c.charts["forecast"]["forecast"] = _list(np.where(mon, d.y - e, np.nan))
+    base = _seasonal_naive(d.y, d.season_length)
+    naive_err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
+    naive_err = naive_err[np.isfinite(naive_err)]
+    ref_scale = float(naive_err.mean()) if naive_err.size and naive_err.mean() > 0 else None
+    c.accuracy["model"] = _accuracy(np.where(mon, e, np.nan)[-chk.recent_window:], ref_scale)
+    if m.horizon > 1:
+        eh = h_step_errors(c.cfg, m, c.obs, c.as_of, d, np.tile(b, (d.n, 1)), m.horizon)
+        c.accuracy["h_step"] = {"horizon": m.horizon,
+                                **_accuracy(np.where(mon, eh, np.nan)[-chk.recent_window:], ref_scale)}
+    # Trigg's tracking signal of the production model's errors (replacing that of the re-estimate)
+    ref_abs = np.abs(e[: d.n_ref])
+    ref_abs = ref_abs[np.isfinite(ref_abs)]
+    fe_mon = np.where(mon, e, np.nan)
+    c.tests = [t for t in c.tests if t.get("test") != "tracking-trigg"]
+    if ref_abs.size and ref_abs.mean() > 0 and np.isfinite(fe_mon).sum() >= 2:
+        try:
+            tr = engine.trigg_signal(fe_mon[None], 0.1, level=0.01, mad0=np.array([ref_abs.mean()]))
+            sig = np.atleast_2d(tr.signal)[0]
+            last_i = np.flatnonzero(np.isfinite(sig))
+            fs = int(np.atleast_1d(tr.first_signal)[0])
+            if last_i.size:
+                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
+                                "pvalue": None, "threshold": _num(tr.limit), "level": 0.01,
+                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
+        except (DriftError, ValueError) as exc:
+            log.info("model %s: tracking signal of the deployed errors skipped: %s", m.name, exc)
+    # the gap between the production coefficients and drift's reference-period re-estimate
+    ref_coef = np.asarray(c.charts.get("_ref_coef"), float)
+    ok = np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)
+    Xr = c.X[: d.n_ref][ok]
+    resid = c.y[: d.n_ref][ok] - Xr @ ref_coef
+    dof = max(int(ok.sum()) - d.k, 1)
+    se = np.sqrt(np.maximum(np.diag(float(resid @ resid) / dof * np.linalg.pinv(Xr.T @ Xr)), 0.0))
+    by_col = {j: s for s, j in d.driver_columns.items()}
+    rows = []
+    for j, col in enumerate(d.columns):
+        gap = float(b[j] - ref_coef[j])
+        rows.append({"term": by_col.get(j, col), "column": col, "deployed": _num(round(float(b[j]), 6)),
+                     "reestimated": _num(round(float(ref_coef[j]), 6)), "se": _num(round(float(se[j]), 6)),
+                     "gap": _num(round(gap, 6)), "z": _num(round(gap / se[j], 3)) if se[j] > 0 else None})
+    errs = m.deployed.errors
+    c.deployed = {"epoch": m.deployed.epoch, "coefficients": rows,
+                  "errors": {"ar": list(errs.ar), "ma": list(errs.ma)} if errs is not None else None,
+                  "reestimated_on": {"start": d.periods[0].date().isoformat(),
+                                     "end": d.periods[d.n_ref - 1].date().isoformat()}}
+    c.charts["_ref_coef"] = b
+    for s, j in d.driver_columns.items():
+        if s in c.charts.get("coefficients", {}):
+            c.charts["coefficients"][s]["reference"] = _num(b[j])
+
+
 # ------------------------------------------------------------------------------------------------ freshness
 def _freshness(c: _Ctx) -> None:
     m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
@@ -946,6 +1030,7 @@ def _payload(c: _Ctx) -> dict[str, Any]:
         "tests": c.tests,
         "drivers": c.drivers,
         "accuracy": c.accuracy,
+        **({"deployed": c.deployed} if c.deployed else {}),
         "charts": charts,
     }
 
@@ -965,15 +1050,24 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
     """
     day = as_of or datetime.now(timezone.utc).date()
     moment = as_of_moment(day)
-    chosen = [cfg.model(n) for n in dict.fromkeys(models)] if models else list(cfg.models)
-    run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in chosen]})
+    written = [cfg.model(n) for n in dict.fromkeys(models)] if models else list(cfg.models)
+    run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in written]})
     try:
+        # each model as its monitoring epoch in force at the check date says (drift.epochs): the YAML, or
+        # the reference period, lags and drivers a decision (drift accept) set since
+        from drift.epochs import apply_epoch, current
+
+        epochs = current(store, written, day)
+        chosen = [apply_epoch(m, epochs[m.name]) for m in written]
         series = sorted({s for m in chosen for s in m.series})
         obs = store.load_observations(series, moment)
         from drift.executor import run_chunks  # executor calls back into analyse
 
         payloads, errors = run_chunks(cfg, chosen, obs, moment)
         failed = [error_entry(m, errors[m.name], day) for m in chosen if m.name in errors]
+        by_name = {m.name: m for m in written}
+        for entry in (*payloads, *failed):
+            entry["epoch"] = epochs[entry["name"]].as_json(by_name[entry["name"]])
         outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors, failed=failed,
                                order=[m.name for m in chosen])
         store.save_verdicts(run_id, day, payloads)

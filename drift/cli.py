@@ -19,7 +19,7 @@ from typing import Any, NoReturn
 import click
 
 from drift import __version__
-from drift.exceptions import ConfigError, DriftError, LockError
+from drift.exceptions import ConfigError, DecisionError, DriftError, LockError
 
 log = logging.getLogger("drift")
 
@@ -80,7 +80,7 @@ def _run(fn: Any) -> Any:
     """Call ``fn`` and map drift's errors to exit codes."""
     try:
         return fn()
-    except ConfigError as exc:
+    except (ConfigError, DecisionError) as exc:
         _fail(EXIT_CONFIG, str(exc))
     except LockError as exc:
         _fail(EXIT_LOCKED, str(exc))
@@ -370,6 +370,99 @@ def shock(config: str, when: str, models: tuple[str, ...], as_of: str | None, as
             res = run_shock(cfg, store, day, models=list(models) or None, as_of=aday,
                             out=Path(out) if out else None)
         click.echo(json.dumps(_strict(res), allow_nan=False) if as_json else format_shock(res))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--model", "model", required=True, help="The model to propose a new fit for.")
+@click.option("--since", default=None, help="Fit on data from this day (default: the date of the refit verdict).")
+@click.option("--as-of", "as_of", default=None,
+              help="Use the data as they stood at the end of this day (default: the model's latest check).")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def refit(config: str, model: str, since: str | None, as_of: str | None, as_json: bool) -> None:
+    """Propose a new fit on recent data, beside the monitored one, with its out-of-sample accuracy (changes nothing)."""
+    sday, aday = _day(since, "--since"), _day(as_of, "--as-of")
+
+    def go() -> None:
+        from drift.refit import format_proposal, propose
+
+        with _opened(config, need=("models",)) as (cfg, store):
+            p = propose(cfg, store, model, since=sday, as_of=aday)
+        click.echo(json.dumps(_strict(p), allow_nan=False) if as_json else format_proposal(p))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--model", "model", required=True, help="The model the decision is about.")
+@click.option("--action", required=True, type=click.Choice(["refit", "relag", "drop-driver"]),
+              help="What was decided.")
+@click.option("--note", default=None, help="Why (kept with the decision).")
+@click.option("--since", default=None, help="Fit the new epoch on data from this day.")
+@click.option("--lag", type=int, default=None, help="relag: the driver's new lag (default: the verdict's).")
+@click.option("--driver", default=None, help="relag / drop-driver: the driver (default: the verdict's).")
+@click.option("--by", default=None, help="Who decided (default: the operating-system user).")
+@click.option("--as-of", "as_of", default=None,
+              help="The check date the decision is made at (default: the model's latest check).")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def accept(config: str, model: str, action: str, note: str | None, since: str | None, lag: int | None,
+           driver: str | None, by: str | None, as_of: str | None, as_json: bool) -> None:
+    """Record a decision: start a new monitoring epoch for the model and close its open alerts as acted on."""
+    sday, aday = _day(since, "--since"), _day(as_of, "--as-of")
+
+    def go() -> None:
+        from drift.refit import accept as do_accept
+        from drift.refit import format_accepted
+
+        with _opened(config, need=("models",)) as (cfg, store):
+            r = do_accept(cfg, store, model, action=action, since=sday, lag=lag, driver=driver, note=note, by=by,
+                          as_of=aday)
+        click.echo(json.dumps(_strict(r), allow_nan=False) if as_json else format_accepted(r))
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--model", "model", required=True, help="The model whose alert to wait on.")
+@click.option("--action", default=None, help="Only this alert (an action such as refit, or drop-driver:SERIES).")
+@click.option("--until", "until", required=True, help="Do not send it again before this day (YYYY-MM-DD).")
+@click.option("--note", default=None, help="Why (kept with the snooze).")
+@click.option("--by", default=None, help="Who decided (default: the operating-system user).")
+def snooze(config: str, model: str, action: str | None, until: str, note: str | None, by: str | None) -> None:
+    """Wait on an open alert: not sent again until a day, unless it gets worse."""
+    uday = _day(until, "--until")
+    assert uday is not None  # --until is required by click
+
+    def go() -> None:
+        from drift.delivery.alerts import snooze as do_snooze
+        from drift.refit import decided_by
+
+        with _opened(config, need=("models",)) as (cfg, store):
+            cfg.model(model)
+            done = do_snooze(store, model, until=uday, action=action, decided_by=decided_by(by), note=note)
+        for a in done:
+            click.echo(f"{a.model}: {a.condition} snoozed until {uday.isoformat()} by {a.snoozed_by} "
+                       "(sent again then if still open, or at once if it gets worse)")
+
+    _run(go)
+
+
+@cli.command()
+@config_opt
+@click.option("--model", "model", required=True, help="The model.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def history(config: str, model: str, as_json: bool) -> None:
+    """The model's monitoring epochs, with the verdicts and alerts of each."""
+    def go() -> None:
+        from drift.epochs import format_history, model_history
+
+        with _opened(config, need=("models",)) as (cfg, store):
+            h = model_history(cfg, store, model)
+        click.echo(json.dumps(_strict(h), default=str) if as_json else format_history(h))
 
     _run(go)
 

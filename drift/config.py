@@ -212,6 +212,43 @@ class PreprocessConfig(_Strict):
         return v
 
 
+class DeployedErrorsConfig(_Strict):
+    """The production model's ARMA error parameters (sign convention
+    :math:`u_t = \\sum_i \\phi_i u_{t-i} + \\varepsilon_t + \\sum_j \\theta_j \\varepsilon_{t-j}`)."""
+
+    ar: list[float] = Field(default_factory=list, max_length=12)
+    ma: list[float] = Field(default_factory=list, max_length=12)
+
+    @field_validator("ar", "ma")
+    @classmethod
+    def _finite(cls, v: list[float]) -> list[float]:
+        if any(not math.isfinite(x) for x in v):
+            raise ValueError("error parameters must be finite numbers")
+        return v
+
+
+class DeployedConfig(_Strict):
+    """The model as it runs in production: its coefficients by drift's design column names (see
+    :func:`drift.deployed.expected_terms`): ``const``, ``trend``, ``sin1``/``cos1``... or ``season1``...,
+    each driver by its series name, each target lag as ``<target>[L<j>]``; optionally its ARMA error
+    parameters; ``epoch``: the monitoring epoch these coefficients belong to (1 = the config as written)."""
+
+    coefficients: dict[str, float]
+    errors: DeployedErrorsConfig | None = None
+    epoch: int = Field(1, ge=1)
+
+    @field_validator("coefficients")
+    @classmethod
+    def _finite(cls, v: dict[str, float]) -> dict[str, float]:
+        bad = [k for k, x in v.items() if not math.isfinite(x)]
+        if bad:
+            raise ValueError(f"coefficient(s) {', '.join(bad)} must be finite numbers")
+        if not v:
+            raise ValueError("give at least one coefficient (by drift's column names: const, trend, ... and "
+                             "each driver's series)")
+        return v
+
+
 _ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\))\s*$", re.IGNORECASE)
 
 
@@ -227,6 +264,7 @@ class ModelConfig(_Strict):
     horizon: int = Field(1, ge=1)
     unit: str = "units"
     monitor_start: date | None = None
+    deployed: DeployedConfig | None = None
 
     @field_validator("monitor_start")
     @classmethod
@@ -796,6 +834,13 @@ def _check_semantics(cfg: Config, lines: dict[tuple[Any, ...], int]) -> None:
                 raise ConfigError(f"{what} {v} is more than {MAX_SPAN_YEARS} years of '{m.frequency}' periods "
                                   f"(at most {most})", file=file, key=_key_path(key),
                                   line=lines.get(key) or lines.get(key[:-1]))
+        if m.deployed is not None:
+            from drift.deployed import check_terms
+
+            problem = check_terms(m)
+            if problem:
+                key = ("models", i, "deployed", "coefficients")
+                raise ConfigError(problem, file=file, key=_key_path(key), line=lines.get(key) or lines.get(key[:-1]))
         for j, d in enumerate(m.drivers):
             delay = d.delay or timedelta(0)
             if d.form == "lagged":

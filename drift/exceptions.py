@@ -9,6 +9,7 @@ Hierarchy::
     │   └── SchemaVersionError      the store was written by a newer drift
     ├── InsufficientDataError       data cannot support a test: says needed vs available  (also a ValueError)
     ├── DeliveryError               a channel failed to deliver (kept pending, retried later)
+    ├── DecisionError               a refit/accept/snooze that does not fit the store's state  -> CLI exit 2
     └── LockError                   another daemon holds the store
 
 Bad *arguments* to library functions raise the built-in ``ValueError`` / ``TypeError`` naming the
@@ -106,6 +107,12 @@ class InsufficientDataError(DriftError, ValueError):
 
 class DeliveryError(DriftError):
     """A channel could not deliver a message; the outbox keeps it pending."""
+
+
+class DecisionError(DriftError):
+    """A decision command (``drift refit``, ``accept``, ``snooze``) whose arguments do not fit what the store
+    holds: no verdict to take a date from, a date before the current epoch, no open alert to snooze, too
+    few rows since the date asked for. The message says what to give instead; nothing was changed."""
 
 
 class LockError(DriftError):

@@ -7,14 +7,14 @@ it for a terminal. Both only read the store.
 from __future__ import annotations
 
 import json
-from datetime import datetime
+from datetime import date, datetime
 from typing import Any
 
 import sqlalchemy as sa
 
 from drift.config import Config
 from drift.lock import STALE_AFTER_SECONDS, is_stale, read_lock
-from drift.store import Store, alerts, outbox, utcnow
+from drift.store import Store, alert_snoozes, alerts, outbox, utcnow
 
 #: outbox statuses that need an operator's look (a send that may or may not have arrived; given up)
 _OPERATOR_STATUSES = ("uncertain", "dead")
@@ -45,6 +45,10 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
       drivers marked ``late: true``
     - ``open_alerts``: model -> [{``condition``, ``action``, ``severity``, ``first_seen``, ``last_seen``}]
     - ``lock``: None, or the daemon lock row with ``stale`` (a reason or None)
+    - ``epochs``: model -> its newest monitoring epoch (:meth:`drift.epochs.Epoch.as_json`), for every
+      configured model (epoch 1, ``configured``, for those without a decision)
+
+    An open alert the team snoozed carries ``snoozed_until`` and ``snoozed_by``.
     """
     from drift.scheduler import JOB_NAMES, build_trigger, job_id, schedule_timezone
 
@@ -87,7 +91,16 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
         "stale_feeds": _stale_feeds(store),
         "open_alerts": _open_alerts(store),
         "lock": lock,
+        "epochs": _epochs(cfg, store),
     }
+
+
+def _epochs(cfg: Config, store: Store) -> dict[str, Any]:
+    """Each configured model's newest epoch (a decision recorded for a later check date counts too)."""
+    from drift.epochs import current
+
+    eps = current(store, list(cfg.models), date.max)
+    return {m.name: eps[m.name].as_json(m) for m in cfg.models}
 
 
 def _failed_models(run: dict[str, Any] | None) -> int | None:
@@ -140,9 +153,14 @@ def _open_alerts(store: Store) -> dict[str, list[dict[str, Any]]]:
         rows = conn.execute(sa.select(a.c.model, a.c.condition, a.c.action, a.c.severity, a.c.first_seen,
                                       a.c.last_seen).where(a.c.status == "open")
                             .order_by(a.c.model, a.c.severity.desc(), a.c.id)).fetchall()
+        snoozed = {(str(r.model), str(r.condition)): r for r in conn.execute(
+            sa.select(alert_snoozes).where(alert_snoozes.c.ended_at.is_(None)).order_by(alert_snoozes.c.id))}
     out: dict[str, list[dict[str, Any]]] = {}
     for r in rows:
         d = dict(r._mapping)
+        sn = snoozed.get((str(d["model"]), str(d["condition"])))
+        if sn is not None:
+            d["snoozed_until"], d["snoozed_by"] = sn.until, sn.decided_by
         out.setdefault(d.pop("model"), []).append(d)
     return out
 
@@ -213,5 +231,14 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append(f"open alerts: {sum(len(v) for v in al.values())}" if al else "open alerts: none")
     for model, items in al.items():
         for a in items:
-            lines.append(f"  {model}: {a['action']} ({a['condition']}), since {_t(a['first_seen'])}")
+            lines.append(f"  {model}: {a['action']} ({a['condition']}), since {_t(a['first_seen'])}"
+                         + (f"; snoozed until {a['snoozed_until']} by {a['snoozed_by']}" if a.get("snoozed_until")
+                            else ""))
+    eps = [e for e in (status.get("epochs") or {}).items() if e[1].get("number", 1) > 1]
+    if eps:
+        lines.append("")
+        lines.append(f"models in a later epoch: {len(eps)} (the others as configured)")
+        for model, e in eps:
+            lines.append(f"  {model}: epoch {e['number']}, {e['action']} since {e['since']} by {e['decided_by']}; "
+                         f"reference {e['reference']['start']} to {e['reference']['end']}")
     return "\n".join(lines)

@@ -39,7 +39,7 @@ from drift.exceptions import SchemaVersionError, StoreError
 log = logging.getLogger(__name__)
 
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
 NO_ISSUE_KEY = "0001-01-01 00:00:00"
 
@@ -190,6 +190,38 @@ outbox = sa.Table(
     sa.Column("created_at", UTCDateTime, nullable=False),
     sa.Column("sent_at", UTCDateTime),
 )
+
+#: the monitoring epochs of models after the first (the first is the config as written): who decided what,
+#: when, and the settings the check uses from ``effective`` on (see :mod:`drift.epochs`)
+model_epochs = sa.Table(
+    "model_epochs", metadata,
+    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("model", sa.String(200), nullable=False),
+    sa.Column("epoch", sa.Integer, nullable=False),  # 2, 3, ... (1 is the config as written)
+    sa.Column("action", sa.String(20), nullable=False),  # refit | relag | drop-driver
+    sa.Column("effective", sa.Date, nullable=False),  # checks as of this day or later use it
+    sa.Column("decided_by", sa.String(200), nullable=False),
+    sa.Column("recorded_at", UTCDateTime, nullable=False),
+    sa.Column("note", sa.Text),
+    sa.Column("settings", sa.Text, nullable=False),  # JSON: reference, lags, dropped, the fit proposed then
+    sa.UniqueConstraint("model", "epoch", name="ux_model_epochs"),
+)
+
+#: alerts the team has seen and chosen to wait on: not re-sent before ``until`` unless they get worse
+alert_snoozes = sa.Table(
+    "alert_snoozes", metadata,
+    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("model", sa.String(200), nullable=False),
+    sa.Column("condition", sa.String(300), nullable=False),
+    sa.Column("until", sa.Date, nullable=False),
+    sa.Column("decided_by", sa.String(200), nullable=False),
+    sa.Column("note", sa.Text),
+    sa.Column("created_at", UTCDateTime, nullable=False),
+    sa.Column("baseline", sa.Text, nullable=False),  # JSON: the action as it stood when snoozed
+    sa.Column("ended_at", UTCDateTime),
+    sa.Column("ended_reason", sa.String(20)),  # expired | worse | acted
+)
+sa.Index("ix_alert_snoozes_model", alert_snoozes.c.model, alert_snoozes.c.ended_at)
 
 locks = sa.Table(
     "locks", metadata,
@@ -876,8 +908,14 @@ def _unique_claims(conn: Connection) -> None:
     conn.exec_driver_sql("CREATE UNIQUE INDEX ux_batches_claim ON batches (claim)")
 
 
+def _migrate_2_to_3(conn: Connection, url: str) -> None:
+    """Schema 2 -> 3: the tables of model epochs and alert snoozes (new tables; nothing else changes)."""
+    for table in (model_epochs, alert_snoozes):
+        table.create(conn, checkfirst=True)
+
+
 #: schema migrations: from version -> step (each runs in the transaction of :func:`migrate`)
-MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2}
+MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3}
 
 
 def migrate(conn: Connection, url: str) -> int:

@@ -217,7 +217,7 @@ def test_a_schema_1_store_is_migrated_and_its_repeated_rows_retracted(empty_url,
     try:
         assert "2 stored rows repeat the value of the vintage before them" in caplog.text
         with store.connect() as conn:
-            assert conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar() == "2"
+            assert conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar() == str(SCHEMA_VERSION)
             assert conn.execute(sa.select(meta.c.value).where(
                 meta.c.key == "migration_2_repeated_rows")).scalar() == "2"
             got = conn.execute(sa.select(observations.c.series, observations.c.period, observations.c.value,
@@ -249,7 +249,7 @@ def test_a_failed_migration_changes_nothing_and_says_what_to_do(empty_url, monke
         conn.exec_driver_sql("SELECT no_such_column FROM observations")
 
     monkeypatch.setitem(store_module.MIGRATIONS, 1, broken)
-    with pytest.raises(StoreError, match="from schema version 1 to 2 failed .* nothing was changed"):
+    with pytest.raises(StoreError, match=f"from schema version 1 to {SCHEMA_VERSION} failed .* nothing was changed"):
         open_store(empty_url)
     eng = sa.create_engine(empty_url)
     with eng.connect() as conn:
@@ -257,6 +257,26 @@ def test_a_failed_migration_changes_nothing_and_says_what_to_do(empty_url, monke
         version = conn.execute(sa.text("select value from meta where key = 'schema_version'")).scalar()
     eng.dispose()
     assert "vintage" not in cols and version == "1"
+
+
+@pytest.mark.parametrize("empty_url", ["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)],
+                         indirect=True)
+def test_a_schema_2_store_gets_the_epoch_and_snooze_tables(empty_url) -> None:
+    # a schema-2 store: today's tables without the two added by schema 3, version row "2"
+    store = open_store(empty_url)
+    with store.begin() as conn:
+        conn.exec_driver_sql("DROP TABLE alert_snoozes")
+        conn.exec_driver_sql("DROP TABLE model_epochs")
+        conn.execute(meta.update().where(meta.c.key == "schema_version").values(value="2"))
+    store.dispose()
+    store = open_store(empty_url)
+    try:
+        with store.connect() as conn:
+            names = set(sa.inspect(conn).get_table_names())
+            version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar()
+        assert {"model_epochs", "alert_snoozes"} <= names and version == str(SCHEMA_VERSION) == "3"
+    finally:
+        store.dispose()
 
 
 def test_bulk_insert_keeps_values_and_times_exactly(store) -> None:

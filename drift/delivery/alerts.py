@@ -34,6 +34,20 @@ opened and shown by :func:`open_alerts` but not sent; when it later becomes act 
 sent then (as a first notice). A model whose payload has no ``actions`` list (its check did not run) is
 left untouched. Everything runs in one transaction per model, so an alert row and its outbox rows appear
 together or not at all. Iteration order is by model name and condition key: same input, same rows.
+
+After a decision (see :mod:`drift.epochs`)
+    ``drift accept`` closes the model's open alerts with ``status = acted`` (``cleared_at`` is when, the
+    state's ``acted_on`` says which epoch, who and why): they are history, not open. A check whose payload
+    belongs to an earlier epoch than the model's newest (an ``--as-of`` before the decision, replayed)
+    records its verdict but leaves the alerts alone.
+
+Snoozed (``drift snooze``, the ``alert_snoozes`` table)
+    An open alert the team has seen and chosen to wait on is not sent again before the snooze's ``until``
+    day (compared with the check's as-of date): if its condition clears and comes back meanwhile, the
+    reopened alert is recorded but not sent. It comes back at once if it gets worse than it was when
+    snoozed (the "worse" rule above; the snooze ends, reason ``worse``). At the first check on or after
+    ``until`` the snooze ends (reason ``expired``) and an alert still open is sent again, once, as a
+    reminder (a new notice of the same alert).
 """
 
 from __future__ import annotations
@@ -42,6 +56,7 @@ import json
 import logging
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from dataclasses import replace as dataclasses_replace
 from datetime import date, datetime
 from typing import Any, Literal
 
@@ -49,7 +64,8 @@ import sqlalchemy as sa
 
 from drift.config import Config
 from drift.delivery import outbox as _outbox
-from drift.store import Store, alerts, utcnow
+from drift.exceptions import DecisionError
+from drift.store import Store, alert_snoozes, alerts, model_epochs, utcnow
 
 log = logging.getLogger(__name__)
 
@@ -110,6 +126,8 @@ class AlertRecord:
     reason: str | None
     detail: dict[str, Any]
     notified: bool
+    snoozed_until: date | None = None
+    snoozed_by: str | None = None
 
 
 # --------------------------------------------------------------------------------------------- helpers
@@ -247,16 +265,146 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
         as_of = _as_date(payload.get("as_of")) or default_as_of
         current = _current_conditions(actions)
         with store.begin() as conn:
+            if _older_epoch(conn, name, payload):
+                log.info("model %s: the check as of %s belongs to an earlier epoch; its alerts are left as they "
+                         "are", name, as_of)
+                continue
             rows = conn.execute(sa.select(alerts).where(alerts.c.model == name, alerts.c.status == "open")
                                 .order_by(alerts.c.id)).fetchall()
             open_rows = {r.condition: r for r in rows}  # the newest row wins if ever duplicated
+            snoozes = {r.condition: r for r in conn.execute(
+                sa.select(alert_snoozes).where(alert_snoozes.c.model == name, alert_snoozes.c.ended_at.is_(None))
+                .order_by(alert_snoozes.c.id))}
+            for cond in sorted(set(snoozes) - set(current)):
+                if as_of is not None and as_of >= snoozes[cond].until:
+                    _end_snooze(conn, snoozes.pop(cond), "expired", now)
             for cond in sorted(current):
-                events.append(_apply(conn, cfg, channels, payload, cond, current[cond], open_rows.get(cond),
-                                     as_of=as_of, run_id=run_id, now=now, min_rank=min_rank))
+                sn = snoozes.get(cond)
+                row = open_rows.get(cond)
+                if sn is None:
+                    events.append(_apply(conn, cfg, channels, payload, cond, current[cond], row, as_of=as_of,
+                                         run_id=run_id, now=now, min_rank=min_rank))
+                    continue
+                events.append(_apply_snoozed(conn, cfg, channels, payload, cond, current[cond], row, sn,
+                                             as_of=as_of, run_id=run_id, now=now, min_rank=min_rank))
             for cond in sorted(set(open_rows) - set(current)):
                 events.append(_clear(conn, cfg, channels, payload, open_rows[cond], as_of=as_of, run_id=run_id,
                                      now=now, notify=notify_cleared))
     return events
+
+
+def _older_epoch(conn: Any, model: str, payload: Mapping[str, Any]) -> bool:
+    """Whether the payload's epoch is older than the model's newest recorded one (a replayed check)."""
+    ep = payload.get("epoch")
+    number = ep.get("number") if isinstance(ep, Mapping) else None
+    if not isinstance(number, int):
+        return False
+    newest = conn.execute(sa.select(sa.func.max(model_epochs.c.epoch)).where(model_epochs.c.model == model)).scalar()
+    return newest is not None and number < int(newest)
+
+
+def _end_snooze(conn: Any, row: Any, reason: str, now: datetime) -> None:
+    conn.execute(alert_snoozes.update().where(alert_snoozes.c.id == row.id)
+                 .values(ended_at=now, ended_reason=reason))
+
+
+def _apply_snoozed(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload: Mapping[str, Any],
+                   cond: str, action: dict[str, Any], row: Any, snooze: Any, *, as_of: date | None, run_id: Any,
+                   now: datetime, min_rank: int) -> AlertEvent:
+    """:func:`_apply` for a condition under a snooze (the rules in the module docstring)."""
+    if as_of is not None and as_of >= snooze.until:
+        _end_snooze(conn, snooze, "expired", now)
+        ev = _apply(conn, cfg, channels, payload, cond, action, row, as_of=as_of, run_id=run_id, now=now,
+                    min_rank=min_rank)
+        if ev.event == "unchanged" and SEVERITY_RANK[ev.severity] >= min_rank and channels:
+            return _remind(conn, cfg, channels, payload, cond, action, ev, as_of=as_of, run_id=run_id, now=now)
+        return ev
+    try:
+        baseline = json.loads(snooze.baseline)
+    except ValueError:
+        baseline = {}
+    base = _dict(baseline)
+    worse = is_worse(base, SEVERITY_RANK[severity_of(base)] if base else 0, action, SEVERITY_RANK[severity_of(action)])
+    if row is not None:
+        ev = _apply(conn, cfg, channels, payload, cond, action, row, as_of=as_of, run_id=run_id, now=now,
+                    min_rank=min_rank)
+        if ev.event == "worse":
+            _end_snooze(conn, snooze, "worse", now)
+        return ev
+    if worse:  # back during the snooze, and worse than when it was snoozed: it comes back
+        _end_snooze(conn, snooze, "worse", now)
+        return _apply(conn, cfg, channels, payload, cond, action, None, as_of=as_of, run_id=run_id, now=now,
+                      min_rank=min_rank)
+    # back during the snooze, no worse: recorded, not sent (the reminder at the end of the snooze sends it)
+    return _apply(conn, cfg, channels, payload, cond, action, None, as_of=as_of, run_id=run_id, now=now,
+                  min_rank=max(SEVERITY_RANK.values()) + 1)
+
+
+def _remind(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload: Mapping[str, Any], cond: str,
+            action: dict[str, Any], ev: AlertEvent, *, as_of: date | None, run_id: Any, now: datetime) -> AlertEvent:
+    """Send an open alert again once its snooze is over (a new notice of the same alert)."""
+    row = conn.execute(sa.select(alerts).where(alerts.c.id == ev.alert_id)).first()
+    state = _state(row)
+    was_sent = bool(state.get("sent"))
+    seq = int(state.get("notices") or 0) + 1
+    notice = _notice(payload, event="opened", alert_id=ev.alert_id, condition=cond, action=action,
+                     severity=ev.severity, as_of=as_of, run_id=run_id, previous=None)
+    notice["reminder"] = True
+    keys = _enqueue(conn, cfg, channels, notice, ev.alert_id, f"{cond}#reminder", ev.severity, seq, now)
+    state.update(notified=action, latest=action, notices=seq, sent=was_sent or bool(keys), reminded=as_of)
+    conn.execute(alerts.update().where(alerts.c.id == ev.alert_id).values(payload=json.dumps(_jsonable(state))))
+    return AlertEvent(ev.alert_id, ev.model, cond, ev.action, ev.severity, "opened", as_of, bool(keys), keys)
+
+
+def close_acted_on(conn: Any, model: str, decision: Mapping[str, Any], *, now: datetime) -> list[int]:
+    """Close the model's open alerts as acted on (``status = acted``), inside the caller's transaction, and
+    end its snoozes; returns the ids closed. ``decision``: epoch, action, by, note, effective."""
+    rows = conn.execute(sa.select(alerts).where(alerts.c.model == model, alerts.c.status == "open")
+                        .order_by(alerts.c.id)).fetchall()
+    for r in rows:
+        state = _state(r)
+        state["acted_on"] = _jsonable(dict(decision))
+        conn.execute(alerts.update().where(alerts.c.id == r.id).values(
+            status="acted", cleared_at=now, payload=json.dumps(_jsonable(state))))
+    conn.execute(alert_snoozes.update().where(alert_snoozes.c.model == model, alert_snoozes.c.ended_at.is_(None))
+                 .values(ended_at=now, ended_reason="acted"))
+    return [int(r.id) for r in rows]
+
+
+def snooze(store: Store, model: str, *, until: date, action: str | None = None, decided_by: str,
+           note: str | None = None, now: datetime | None = None) -> list[AlertRecord]:
+    """Snooze the model's open alerts (those of ``action``: an action name such as ``refit`` or a condition
+    key such as ``drop-driver:x1``) until a day; returns the alerts snoozed.
+
+    Raises
+    ------
+    DecisionError : no open alert of the model matches, or ``until`` is not after the check date the
+        alert was last seen at (a snooze that would end at once).
+    """
+    now = now or utcnow()
+    with store.begin() as conn:
+        rows = conn.execute(sa.select(alerts).where(alerts.c.model == model, alerts.c.status == "open")
+                            .order_by(alerts.c.condition, alerts.c.id)).fetchall()
+        chosen = [r for r in rows if action is None or action in (r.condition, r.action)]
+        if not chosen:
+            have = ", ".join(sorted({str(r.condition) for r in rows}))
+            raise DecisionError(f"model '{model}' has no open alert" + (f" for '{action}'" if action else "")
+                                + (f"; its open alerts: {have}" if have else "") + ": nothing to snooze")
+        seen = max((_as_date(r.as_of) for r in chosen if r.as_of is not None), default=None)
+        if seen is not None and until <= seen:
+            raise DecisionError(f"model '{model}': --until {until.isoformat()} is not after {seen.isoformat()}, the "
+                                "check date its alert was last seen at: the snooze would end at once; give a later day")
+        conds = [str(r.condition) for r in chosen]
+        conn.execute(alert_snoozes.update().where(alert_snoozes.c.model == model,
+                                                  alert_snoozes.c.condition.in_(conds),
+                                                  alert_snoozes.c.ended_at.is_(None))
+                     .values(ended_at=now, ended_reason="replaced"))
+        conn.execute(alert_snoozes.insert(), [
+            {"model": model, "condition": str(r.condition), "until": until, "decided_by": decided_by, "note": note,
+             "created_at": now, "baseline": json.dumps(_jsonable({**_dict(_state(r).get("latest")),
+                                                                   "severity": _RANK_NAME.get(int(r.severity))}))}
+            for r in chosen])
+    return [dataclasses_replace(_record(r), snoozed_until=until, snoozed_by=decided_by) for r in chosen]
 
 
 def _enqueue(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], notice: dict[str, Any], alert_id: int,
@@ -350,12 +498,36 @@ def _record(row: Any) -> AlertRecord:
 
 
 def open_alerts(store: Store, model: str | None = None) -> list[AlertRecord]:
-    """Every open alert (optionally of one model), ordered by model, then condition."""
+    """Every open alert (optionally of one model), ordered by model, then condition; a snoozed one carries
+    ``snoozed_until`` and ``snoozed_by``."""
     q = sa.select(alerts).where(alerts.c.status == "open")
+    sq = sa.select(alert_snoozes).where(alert_snoozes.c.ended_at.is_(None))
+    if model is not None:
+        q = q.where(alerts.c.model == model)
+        sq = sq.where(alert_snoozes.c.model == model)
+    with store.connect() as conn:
+        snoozed = {(str(r.model), str(r.condition)): r for r in conn.execute(sq.order_by(alert_snoozes.c.id))}
+        out = []
+        for r in conn.execute(q.order_by(alerts.c.model, alerts.c.condition, alerts.c.id)):
+            rec = _record(r)
+            sn = snoozed.get((rec.model, rec.condition))
+            if sn is not None:
+                rec = dataclasses_replace(rec, snoozed_until=_as_date(sn.until), snoozed_by=str(sn.decided_by))
+            out.append(rec)
+        return out
+
+
+def acted_on_alerts(store: Store, model: str | None = None) -> list[AlertRecord]:
+    """Alerts closed by a decision (``drift accept``), newest first; ``detail['acted_on']`` says which."""
+    q = sa.select(alerts).where(alerts.c.status == "acted")
     if model is not None:
         q = q.where(alerts.c.model == model)
     with store.connect() as conn:
-        return [_record(r) for r in conn.execute(q.order_by(alerts.c.model, alerts.c.condition, alerts.c.id))]
+        out = []
+        for r in conn.execute(q.order_by(alerts.c.cleared_at.desc(), alerts.c.id.desc())):
+            rec = _record(r)
+            out.append(dataclasses_replace(rec, detail={**rec.detail, "acted_on": _state(r).get("acted_on")}))
+        return out
 
 
 def cleared_alerts(store: Store, since: datetime) -> list[AlertRecord]:

@@ -47,7 +47,7 @@ import sqlalchemy as sa
 
 from drift.config import Config
 from drift.delivery import charts as _charts
-from drift.store import Store, alerts, outbox, runs, utcnow, verdicts
+from drift.store import Store, alert_snoozes, alerts, outbox, runs, utcnow, verdicts
 
 log = logging.getLogger(__name__)
 
@@ -123,6 +123,7 @@ class ModelLine:
     late_feeds: tuple[str, ...]
     actions: tuple[Mapping[str, Any], ...]
     payload: Mapping[str, Any] = field(repr=False)
+    epoch: str = ""  # the monitoring epoch after a decision (drift.epochs), "" for the config as written
 
     @property
     def needs_action(self) -> bool:
@@ -152,6 +153,7 @@ class OpenAlert:
     last_seen: datetime | None
     as_of: date | None
     reason: str
+    snoozed_until: date | None = None  # the team chose to wait on it until then (drift snooze)
 
 
 @dataclass(frozen=True)
@@ -318,7 +320,17 @@ def _line(row: Mapping[str, Any], previous: Mapping[str, str]) -> ModelLine:
         name=name, verdict=verdict, previous=previous.get(name), state=_state(payload, verdict),
         as_of=str(as_of)[:10] if as_of else None, reason=str(main.get("reason") or "") if main else "",
         evidence=_evidence(payload), accuracy=_accuracy(payload), late_feeds=_late(payload),
-        actions=tuple(a for a in payload.get("actions") or [] if isinstance(a, Mapping)), payload=payload)
+        actions=tuple(a for a in payload.get("actions") or [] if isinstance(a, Mapping)), payload=payload,
+        epoch=_epoch_words(payload))
+
+
+def _epoch_words(payload: Mapping[str, Any]) -> str:
+    """``epoch 2: refit since 2024-12-31 by alice`` (the payload's ``epoch``); "" for epoch 1."""
+    ep = payload.get("epoch")
+    if not isinstance(ep, Mapping) or not isinstance(ep.get("number"), int) or ep["number"] <= 1:
+        return ""
+    return (f"epoch {ep['number']}: {ep.get('action')} since {ep.get('since') or '?'}"
+            + (f" by {ep['decided_by']}" if ep.get("decided_by") else ""))
 
 
 def _changes(lines: Iterable[ModelLine]) -> list[Change]:
@@ -371,6 +383,9 @@ def _open_alerts(store: Store) -> list[OpenAlert]:
     q = sa.select(a).where(a.c.status == "open").order_by(a.c.severity.desc(), a.c.model, a.c.condition, a.c.id)
     out = []
     with store.connect() as conn:
+        snoozed = {(str(r.model), str(r.condition)): r.until for r in conn.execute(
+            sa.select(alert_snoozes.c.model, alert_snoozes.c.condition, alert_snoozes.c.until)
+            .where(alert_snoozes.c.ended_at.is_(None)))}
         for r in conn.execute(q):
             try:
                 st = json.loads(r.payload) if r.payload else {}
@@ -384,7 +399,7 @@ def _open_alerts(store: Store) -> list[OpenAlert]:
             sev = {2: "act", 1: "watch"}.get(int(r.severity), "act" if int(r.severity) > 2 else "watch")
             out.append(OpenAlert(id=int(r.id), model=str(r.model), condition=str(r.condition), action=str(r.action),
                                  severity=sev, first_seen=r.first_seen, last_seen=r.last_seen, as_of=r.as_of,
-                                 reason=reason))
+                                 reason=reason, snoozed_until=snoozed.get((str(r.model), str(r.condition)))))
     return out
 
 

@@ -281,6 +281,9 @@ class EmailSender(Channel):
                                      f"message was sent: {exc.__class__.__name__}: {exc}") from None
         except smtplib.SMTPException as exc:
             raise DeliveryError(f"SMTP server {host}: {exc.__class__.__name__}: {exc}") from None
+        except UnicodeError:
+            raise DeliveryError("the sender or a recipient address is not plain ASCII, which this SMTP "
+                                "session cannot carry; fix alerts.channels in the config") from None
         body = _LEADING_DOT.sub(b"..", data)
         if not body.endswith(b"\r\n"):
             body += b"\r\n"

@@ -99,6 +99,10 @@ class WebhookSender(Channel):
                                     "redirects are not followed: set the channel's url to the final "
                                     "address") from None
             snippet = exc.read(_ERROR_BODY).decode("utf-8", "replace") if exc.fp else ""
+            for header in self.spec.headers_env:  # a receiver echoing the request must not leak a token
+                value = headers.get(header)
+                if value:
+                    snippet = snippet.replace(value, "***")
             raise DeliveryError(f"webhook {self.name} answered HTTP {exc.code}: {snippet.strip()}") from None
         except urllib.error.URLError as exc:
             reason = exc.reason

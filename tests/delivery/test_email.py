@@ -364,3 +364,12 @@ def test_message_that_cannot_be_built_is_not_sent_and_stays_pending(tmp_path: Pa
     rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
     assert (rep.failed, rep.uncertain) == (1, 0) and "could not be composed" in rep.errors[0].error
     assert rows(store)[0].status == "pending" and smtp_server.messages == []
+
+
+def test_non_ascii_address_is_a_certain_failure(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    cfg = make_cfg(tmp_path, [{"kind": "email", "name": "mail", "host": "127.0.0.1", "port": smtp_server.port,
+                               "sender": "drift@example.test", "to": ["plánning@example.test"], "timeout": 5}])
+    process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert (rep.failed, rep.uncertain) == (1, 0) and "not plain ASCII" in rep.errors[0].error
+    assert rows(store)[0].status == "pending"

@@ -117,3 +117,45 @@ def test_only_http_urls_in_the_config(tmp_path: Path, url: str) -> None:
     with pytest.raises(ConfigError, match=r"http:// or https://") as err:
         load_config(f)
     assert "alerts.channels" in str(err.value)
+
+
+def test_a_receiver_echoing_the_token_does_not_leak_it(tmp_path: Path, store: Any,
+                                                      monkeypatch: pytest.MonkeyPatch,
+                                                      caplog: pytest.LogCaptureFixture) -> None:
+    """A 401 whose body repeats the request's Authorization header: the error kept in the outbox and the log
+    show *** instead of the token. Common practice, no source."""
+    import http.server
+    import threading
+
+    class Echo(http.server.BaseHTTPRequestHandler):
+        def do_POST(self) -> None:
+            self.rfile.read(int(self.headers.get("Content-Length") or 0))
+            body = f"bad token {self.headers.get('Authorization')}".encode()
+            self.send_response(401)
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args: Any) -> None:
+            pass
+
+    srv = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Echo)
+    threading.Thread(target=srv.serve_forever, daemon=True).start()
+    token = "Bearer tok-5e1f-MARKER"
+    monkeypatch.setenv("DRIFT_T_TOKEN", token)
+    caplog.set_level("DEBUG")
+    try:
+        cfg = hook_cfg(tmp_path, f"http://127.0.0.1:{srv.server_address[1]}/hook",
+                       headers_env={"Authorization": "DRIFT_T_TOKEN"})
+        process_alerts(cfg, store, outcome(payload("k000", [action("refit")])), now=T0)
+        rep = deliver_pending(cfg, store, now=T0)
+    finally:
+        srv.shutdown()
+        srv.server_close()
+    assert rep.failed == 1 and "HTTP 401: bad token ***" in rep.errors[0].error
+    from drift.store import outbox as outbox_t  # the stored error is what drift status shows
+
+    with store.connect() as conn:
+        stored = conn.execute(outbox_t.select()).fetchall()
+    everything = caplog.text + repr(rep) + " ".join(str(r.last_error) for r in stored)
+    assert "tok-5e1f-MARKER" not in everything
