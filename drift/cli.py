@@ -193,8 +193,10 @@ def retract(config: str, ids: tuple[int, ...], note: str | None) -> None:
 @config_opt
 @click.option("--source", default=None, help="Only records of this source.")
 @click.option("--all", "include_resolved", is_flag=True, help="Include records resolved by a later read.")
+@click.option("--limit", default=200, show_default=True, type=click.IntRange(min=1),
+              help="Records shown as text (--json prints all).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
-def quarantine(config: str, source: str | None, include_resolved: bool, as_json: bool) -> None:
+def quarantine(config: str, source: str | None, include_resolved: bool, limit: int, as_json: bool) -> None:
     """List quarantined cells: file, row, column, raw value and reason."""
     def go() -> None:
         from drift.ingest.admin import QUARANTINE_KEYS, as_json_rows, format_quarantine
@@ -202,7 +204,7 @@ def quarantine(config: str, source: str | None, include_resolved: bool, as_json:
         with _opened(config) as (_, store):
             rows = store.quarantine_records(source=source, include_resolved=include_resolved)
         click.echo(json.dumps({"rows": as_json_rows(rows, QUARANTINE_KEYS)}) if as_json
-                   else format_quarantine(rows, include_resolved=include_resolved))
+                   else format_quarantine(rows, include_resolved=include_resolved, limit=limit))
 
     _run(go)
 

@@ -407,20 +407,21 @@ class Store:
     def latest_vintages(self, conn: Connection, series: Iterable[str]) -> pd.DataFrame:
         """The latest live vintage and the highest vintage number of every key of the given series.
 
-        A key is (series, period, issued_at). ``value`` and ``available_at`` are those of the highest-numbered
-        vintage that is not retracted (NaN / NaT when every vintage of the key is retracted); ``vintage`` is
-        the highest number used, retracted or not (the next vintage is ``vintage + 1``).
+        A key is (series, period, issued_at). ``value`` is that of the highest-numbered vintage that is not
+        retracted (NaN when every vintage of the key is retracted); ``vintage`` is the highest number used,
+        retracted or not (the next vintage is ``vintage + 1``). (No availability times: reading them costs
+        more than the rest of the query on a large store, and comparing values does not need them.)
 
-        Columns: series, period, issued_at, value, available_at, vintage.
+        Columns: series, period, issued_at, value, vintage.
         """
         series = list(series)
-        cols = ["series", "period", "issued_at", "value", "available_at", "vintage"]
+        cols = ["series", "period", "issued_at", "value", "vintage"]
         if not series:
             return pd.DataFrame(columns=cols)
         o = observations
         frames = []
         for chunk in _chunks(series, 500):
-            q = sa.select(o.c.series, o.c.period, o.c.issued_at, o.c.value, o.c.available_at, o.c.vintage,
+            q = sa.select(o.c.series, o.c.period, o.c.issued_at, o.c.value, o.c.vintage,
                           o.c.retracted_at.is_not(None)).where(o.c.series.in_(chunk))
             # plain tuples: pandas probes each Row's attributes, which costs seconds per million rows
             frames.append(pd.DataFrame([tuple(r) for r in conn.execute(q).fetchall()],
@@ -432,7 +433,7 @@ class Store:
         df["issued_at"] = pd.to_datetime(df["issued_at"], utc=True)
         top = df.groupby(keys, dropna=False, sort=False)["vintage"].max().reset_index()
         live = (df[~df["retracted"].astype(bool)].sort_values("vintage")
-                .drop_duplicates(keys, keep="last")[["series", "period", "issued_at", "value", "available_at"]])
+                .drop_duplicates(keys, keep="last")[["series", "period", "issued_at", "value"]])
         out = top.merge(live, on=keys, how="left", sort=False)
         return out[cols].reset_index(drop=True)
 

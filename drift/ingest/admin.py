@@ -56,13 +56,14 @@ def format_batches(rows: Sequence[dict[str, Any]]) -> str:
     return "\n".join(out)
 
 
-def format_quarantine(rows: Sequence[dict[str, Any]], *, include_resolved: bool = False) -> str:
-    """Records grouped by source and file: row, column, raw value, reason."""
+def format_quarantine(rows: Sequence[dict[str, Any]], *, include_resolved: bool = False,
+                      limit: int | None = None) -> str:
+    """Records grouped by source and file: row, column, raw value, reason (the first ``limit`` records)."""
     if not rows:
         return "no quarantine records" if include_resolved else "no open quarantine records"
     out: list[str] = []
     last: tuple[str, str] | None = None
-    for r in rows:
+    for r in rows[:limit]:
         if (r["source"], r["file"]) != last:
             last = (r["source"], r["file"])
             out.append(f"{r['source']}: {r['file']}")
@@ -70,6 +71,8 @@ def format_quarantine(rows: Sequence[dict[str, Any]], *, include_resolved: bool 
         if r.get("resolved_at") is not None:
             text += f" [resolved {_when(r['resolved_at'])} by batch {r['resolved_batch']}]"
         out.append(text)
+    if limit is not None and len(rows) > limit:
+        out.append(f"... and {len(rows) - limit} more (--limit to show more, --json for all)")
     return "\n".join(out)
 
 

@@ -277,6 +277,10 @@ def _ingest(cfg: Config, run: _Run, source: SourceConfig) -> IngestSummary:
         log.info("ingesting source %s (query, since %s)", source.name, since.isoformat())
         try:
             raw = read_sql(source, since)
+            if not run.reread:
+                held = run.store.find_claim(claim_key(source, raw.content_hash, settings))
+                if held is not None:  # the query returned exactly what an earlier batch stored
+                    return total + _skipped(source, raw.label, held)
             return total + _ingest_batch(run, source, raw, settings)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)

@@ -183,3 +183,31 @@ def test_readmit_rereads_only_files_with_open_quarantine(sqlite_store, tmp_path)
     (r,) = readmit(make_config(tmp_path, [src], [wednesday]), sqlite_store, now=LATER)
     assert (r.files, r.stored, r.quarantined) == (1, 1, 0)
     assert pd.DataFrame(sqlite_store.quarantine_records()).empty
+
+
+def test_a_query_returning_what_was_stored_is_skipped(sqlite_store, tmp_path):
+    import sqlite3
+
+    db = tmp_path / "src.db"
+    con = sqlite3.connect(db)
+    con.execute("create table obs (week text, series text, value real)")
+    con.executemany("insert into obs values (?, ?, ?)", [("2024-01-01", "a", 1.0), ("2024-01-08", "a", 2.0)])
+    con.commit()
+    con.close()
+    src = {"name": "q", "kind": "sql", "url": f"sqlite:///{db}", "period_column": "week", "frequency": "W",
+           "series_column": "series", "value_column": "value", "query": "select week, series, value from obs"}
+    cfg = make_config(tmp_path, [src])
+    (s1,) = ingest_all(cfg, sqlite_store, now=NOW)
+    (s2,) = ingest_all(cfg, sqlite_store, now=LATER)
+    assert (s1.stored, s2.skipped, s2.known) == (2, 1, 2)
+    (s3,) = ingest_all(cfg, sqlite_store, now=LATER, reread=True)
+    assert (s3.skipped, s3.known) == (0, 2)
+
+
+def test_quarantine_text_is_limited(sqlite_store, tmp_path):
+    _write(tmp_path, "day;a\n" + "".join(f"2024-01-{d:02d};x{d}\n" for d in range(1, 8)))
+    url = sqlite_store.url
+    cfg = str(_project(tmp_path, url))
+    assert _run("ingest", "--config", cfg).exit_code == 0
+    r = _run("quarantine", "--config", cfg, "--limit", "3")
+    assert r.output.count("row ") == 3 and "... and 4 more" in r.output
