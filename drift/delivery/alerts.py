@@ -256,6 +256,12 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
     notify_cleared = cfg.alerts.notify_cleared
 
     events: list[AlertEvent] = []
+    # read once for the run: the newest epoch of each model, and which models have a snooze running
+    with store.connect() as conn:
+        newest_epoch = {str(mo): int(n) for mo, n in conn.execute(
+            sa.select(model_epochs.c.model, sa.func.max(model_epochs.c.epoch)).group_by(model_epochs.c.model))}
+        snoozing = {str(mo) for (mo,) in conn.execute(
+            sa.select(alert_snoozes.c.model).where(alert_snoozes.c.ended_at.is_(None)).distinct())}
     for name in sorted(models):
         payload = models[name]
         actions = payload.get("actions")
@@ -264,17 +270,17 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
             continue
         as_of = _as_date(payload.get("as_of")) or default_as_of
         current = _current_conditions(actions)
+        if _older_epoch(newest_epoch.get(name), payload):
+            log.info("model %s: the check as of %s belongs to an earlier epoch; its alerts are left as they are",
+                     name, as_of)
+            continue
         with store.begin() as conn:
-            if _older_epoch(conn, name, payload):
-                log.info("model %s: the check as of %s belongs to an earlier epoch; its alerts are left as they "
-                         "are", name, as_of)
-                continue
             rows = conn.execute(sa.select(alerts).where(alerts.c.model == name, alerts.c.status == "open")
                                 .order_by(alerts.c.id)).fetchall()
             open_rows = {r.condition: r for r in rows}  # the newest row wins if ever duplicated
             snoozes = {r.condition: r for r in conn.execute(
                 sa.select(alert_snoozes).where(alert_snoozes.c.model == name, alert_snoozes.c.ended_at.is_(None))
-                .order_by(alert_snoozes.c.id))}
+                .order_by(alert_snoozes.c.id))} if name in snoozing else {}
             for cond in sorted(set(snoozes) - set(current)):
                 if as_of is not None and as_of >= snoozes[cond].until:
                     _end_snooze(conn, snoozes.pop(cond), "expired", now)
@@ -293,14 +299,11 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
     return events
 
 
-def _older_epoch(conn: Any, model: str, payload: Mapping[str, Any]) -> bool:
+def _older_epoch(newest: int | None, payload: Mapping[str, Any]) -> bool:
     """Whether the payload's epoch is older than the model's newest recorded one (a replayed check)."""
     ep = payload.get("epoch")
     number = ep.get("number") if isinstance(ep, Mapping) else None
-    if not isinstance(number, int):
-        return False
-    newest = conn.execute(sa.select(sa.func.max(model_epochs.c.epoch)).where(model_epochs.c.model == model)).scalar()
-    return newest is not None and number < int(newest)
+    return isinstance(number, int) and newest is not None and number < newest
 
 
 def _end_snooze(conn: Any, row: Any, reason: str, now: datetime) -> None:
