@@ -137,6 +137,10 @@ def test_refit_accept_and_the_next_epoch_keeps_without_repeating_the_alert(proje
     assert {x["status"] for x in e1["alerts"]} == {"acted"} and e2["alerts"] == []
     assert e2["note"] == "x1 effect fell"
     assert "epoch 2 (refit, since 2024-12-31 by alice)" in run("history", "--model", "sim", cwd=project).stdout
+    # the digest shows the epoch too
+    assert run("digest", cwd=project).returncode == 0
+    (page,) = (project / "digests").glob("digest-*.html")
+    assert "epoch 2: refit since 2024-12-31 by alice" in page.read_text(encoding="utf-8")
 
 
 def test_decision_commands_refuse_what_does_not_fit(project: Path) -> None:
