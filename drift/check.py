@@ -1196,7 +1196,9 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
             entry["epoch"] = epochs[entry["name"]].as_json(by_name[entry["name"]])
         outcome = CheckOutcome(run_id=run_id, as_of=day, models=payloads, errors=errors, failed=failed,
                                order=[m.name for m in chosen])
-        store.save_verdicts(run_id, day, payloads)
+        # a model that could not be checked gets its error as its newest verdict (the digest and status
+        # read the newest verdicts; an earlier check's verdict must not stand in for this one)
+        store.save_verdicts(run_id, day, [*payloads, *failed])
         if deliver:
             _alerts_and_delivery(cfg, store, outcome)
         detail = {"models": len(chosen), "checked": len(payloads), "failed": len(errors), "errors": errors,

@@ -185,3 +185,34 @@ def test_byte_order_mark_is_accepted(tmp_path: Path) -> None:
 def test_store_url_is_checked_at_load(tmp_path: Path, url: str, words: str) -> None:
     code, _, err = invoke("check", "--config", str(_write(tmp_path, f"store: '{url}'\n" + MODELS)), cwd=tmp_path)
     assert code == 2 and "key 'store'" in err and words in err and "secret" not in err, err
+
+
+def test_a_model_that_fails_replaces_its_earlier_verdict(three: Path, tmp_path: Path) -> None:
+    """The newest verdict of a model that could not be checked is that error, with its reason, not the
+    verdict of an earlier check: the digest and status read the newest verdicts."""
+    from drift.delivery.digest import build_digest
+    from drift.store import open_store
+
+    folder = tmp_path / "again"
+    kiosk_data(folder / "data")
+    (folder / "drift.yaml").write_text(SOURCES + MODELS, encoding="utf-8")
+    assert run("ingest", "--config", "drift.yaml", cwd=folder).returncode == 0
+    r = run("check", "--config", "drift.yaml", "--as-of", "2025-12-31", "--no-deliver", cwd=folder)
+    assert r.returncode == 0, r.stderr
+    # the same model, now with its reference end past the data: it cannot be checked
+    (folder / "drift.yaml").write_text(SOURCES + MODELS.replace("end: 2023-12-25", "end: 2027-12-27"),
+                                       encoding="utf-8")
+    r = run("check", "--config", "drift.yaml", "--as-of", "2025-12-31", "--no-deliver", cwd=folder)
+    assert r.returncode == 4, r.stderr
+    cfg = load_config(folder / "drift.yaml")
+    store = open_store(cfg.store_url())
+    try:
+        newest = {v["model"]: v for v in store.latest_verdicts()}
+        assert newest["k000"]["verdict"] == "error"
+        assert "reference period ends 2027-12-27" in newest["k000"]["payload"]["reason"]
+        digest = build_digest(cfg, store)
+    finally:
+        store.dispose()
+    line = next(m for m in digest.models if m.name == "k000")
+    assert line.verdict == "error" and "reference period ends 2027-12-27" in line.reason
+    assert "reference period ends 2027-12-27" in digest.text

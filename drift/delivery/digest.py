@@ -318,7 +318,8 @@ def _line(row: Mapping[str, Any], previous: Mapping[str, str]) -> ModelLine:
     main = _main_action(payload, verdict)
     return ModelLine(
         name=name, verdict=verdict, previous=previous.get(name), state=_state(payload, verdict),
-        as_of=str(as_of)[:10] if as_of else None, reason=str(main.get("reason") or "") if main else "",
+        as_of=str(as_of)[:10] if as_of else None,
+        reason=str(main.get("reason") or "") if main else str(payload.get("reason") or ""),
         evidence=_evidence(payload), accuracy=_accuracy(payload), late_feeds=_late(payload),
         actions=tuple(a for a in payload.get("actions") or [] if isinstance(a, Mapping)), payload=payload,
         epoch=_epoch_words(payload))
