@@ -39,7 +39,7 @@ from drift.exceptions import SchemaVersionError, StoreError
 log = logging.getLogger(__name__)
 
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
 NO_ISSUE_KEY = "0001-01-01 00:00:00"
 
@@ -183,12 +183,15 @@ outbox = sa.Table(
     sa.Column("idempotency_key", sa.String(200), nullable=False, unique=True),
     sa.Column("subject", sa.Text, nullable=False),
     sa.Column("payload", sa.Text, nullable=False),
-    sa.Column("status", sa.String(20), nullable=False),  # pending | sending | sent | uncertain | dead
+    # pending | sending | delivering | sent | uncertain | dead (drift.delivery.outbox)
+    sa.Column("status", sa.String(20), nullable=False),
     sa.Column("attempts", sa.Integer, nullable=False, default=0),
     sa.Column("next_attempt_at", UTCDateTime, nullable=False),
     sa.Column("last_error", sa.Text),
     sa.Column("created_at", UTCDateTime, nullable=False),
     sa.Column("sent_at", UTCDateTime),
+    # JSON {recipient: {status, permanent, reply, at}} for channels with several recipients (e-mail); schema 4
+    sa.Column("recipients", sa.Text),
 )
 
 #: the monitoring epochs of models after the first (the first is the config as written): who decided what,
@@ -914,8 +917,16 @@ def _migrate_2_to_3(conn: Connection, url: str) -> None:
         table.create(conn, checkfirst=True)
 
 
+def _migrate_3_to_4(conn: Connection, url: str) -> None:
+    """Schema 3 -> 4: ``outbox.recipients`` (what each recipient of a notice answered; NULL on old rows)."""
+    inspector = sa.inspect(conn)
+    if inspector.has_table("outbox") and "recipients" not in {c["name"] for c in inspector.get_columns("outbox")}:
+        _add_column(conn, outbox, "recipients")
+
+
 #: schema migrations: from version -> step (each runs in the transaction of :func:`migrate`)
-MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3}
+MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3,
+                                                            3: _migrate_3_to_4}
 
 
 def migrate(conn: Connection, url: str) -> int:

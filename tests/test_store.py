@@ -274,7 +274,32 @@ def test_a_schema_2_store_gets_the_epoch_and_snooze_tables(empty_url) -> None:
         with store.connect() as conn:
             names = set(sa.inspect(conn).get_table_names())
             version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar()
-        assert {"model_epochs", "alert_snoozes"} <= names and version == str(SCHEMA_VERSION) == "3"
+        assert {"model_epochs", "alert_snoozes"} <= names and version == str(SCHEMA_VERSION)
+    finally:
+        store.dispose()
+
+
+@pytest.mark.parametrize("empty_url", ["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)],
+                         indirect=True)
+def test_a_schema_3_store_gets_the_outbox_recipients(empty_url) -> None:
+    # a schema-3 store holding a notice: the outbox without its recipients column, version row "3"
+    from drift.store import outbox
+
+    store = open_store(empty_url)
+    now = datetime(2025, 12, 29, tzinfo=timezone.utc)
+    with store.begin() as conn:
+        conn.exec_driver_sql("ALTER TABLE outbox DROP COLUMN recipients")
+        conn.exec_driver_sql("INSERT INTO outbox (channel, idempotency_key, subject, payload, status, attempts, "
+                             "next_attempt_at, created_at) VALUES ('mail', 'k1', 's', '{}', 'pending', 0, "
+                             f"'{now.isoformat()}', '{now.isoformat()}')")
+        conn.execute(meta.update().where(meta.c.key == "schema_version").values(value="3"))
+    store.dispose()
+    store = open_store(empty_url)
+    try:
+        with store.connect() as conn:
+            version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar()
+            row = conn.execute(sa.select(outbox.c.idempotency_key, outbox.c.recipients)).one()
+        assert version == str(SCHEMA_VERSION) and tuple(row) == ("k1", None)
     finally:
         store.dispose()
 
