@@ -19,14 +19,21 @@ import pandas as pd
 from scipy import stats
 
 from drift import engine
-from drift.config import (MAX_ABS_VALUE, MAX_LAG_BY_FREQ, Config, ModelConfig, next_period, period_length,
-                          period_start)
+from drift.config import (
+    MAX_ABS_VALUE,
+    MAX_LAG_BY_FREQ,
+    Config,
+    ModelConfig,
+    next_period,
+    period_length,
+    period_start,
+)
 from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import Design, as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
 from drift.replay import h_step_errors
-from drift.verdicts import ERROR, Action, fmt_num, overall, pct_change, sort_actions
+from drift.verdicts import ERROR, Action, change_words, fmt_num, fmt_p, overall, sort_actions, window_words
 
 log = logging.getLogger(__name__)
 
@@ -597,7 +604,7 @@ def _refit_action(c: _Ctx, alarm_idx: int) -> None:
                 unit = next((dr.unit for dr in c.model.drivers if dr.series == s and dr.unit), None)
                 per = f" {c.model.unit} per {unit}" if unit else ""
                 if abs(a - b) > 1.96 * max(sp.se_after[cols.index(j)], 1e-12) or len(parts) == 0:
-                    parts.append(f"{s} effect {fmt_num(b)} → {fmt_num(a)}{per} ({pct_change(b, a)})".replace(" ()", ""))
+                    parts.append(f"{s} effect {fmt_num(b)} → {fmt_num(a)}{per} ({change_words(b, a)})".replace(" ()", ""))
             c.charts["_split"] = sp
     except InsufficientDataError:
         pass
@@ -989,21 +996,27 @@ def _drivers_and_worth(c: _Ctx) -> None:
             ci = info.get("ci_recent")
             covers_zero = ci is not None and ci[0] is not None and ci[0] <= 0 <= ci[1]
             helps = _num(cw.pvalue) is not None and cw.pvalue < chk.level
-            gone = s in c.late and next((a.extra.get("missing_periods", 0) for a in c.actions
-                                         if a.action == "data-late" and a.extra.get("driver") == s), 0) > chk.feed_limit
-            if (not helps and covers_zero) or gone:
-                unit = c.model.unit
-                if gone:
-                    reason = (f"Driver '{s}' has been missing for more than {chk.feed_limit} periods: run without "
-                              f"it until the feed returns, or restore the feed. Without it the one-step MAE would "
-                              f"go from {fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} (last "
-                              f"{int(both.sum())} periods).")
-                else:
-                    reason = f"Driver '{s}' is not earning its place: " + (f"over the last {int(both.sum())} periods it no longer improves the forecasts "
-                           f"(Clark–West p = {cw.pvalue:.2f}) and its recent coefficient interval "
-                           f"[{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] covers zero; "
-                           f"MAE would go from "
-                           f"{fmt_num(mae_with)} to {fmt_num(mae_without)} {unit} without it.")
+            late_action = next((a for a in c.actions if a.action == "data-late" and a.extra.get("driver") == s),
+                               None)
+            if late_action is not None and late_action.extra.get("missing_periods", 0) > chk.feed_limit:
+                # a feed gone for long is a data problem, not a verdict on the driver: say what running
+                # without it would cost (the same figures as the driver's worth entry)
+                cost = (f"without it the one-step MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
+                        f"{c.model.unit} over {window_words(int(both.sum()), chk.recent_window)} "
+                        f"(Clark–West p = {fmt_p(cw.pvalue)})")
+                late_action.reason += (
+                    f" It still helps the forecasts, so restore the feed: {cost}." if helps else
+                    f" It no longer helps the forecasts much: {cost}. Restore the feed or run without it.")
+                late_action.extra["without"] = {"mae_with": info["worth"]["mae_with"],
+                                                "mae_without": info["worth"]["mae_without"],
+                                                "n": int(both.sum()), "pvalue": _num(cw.pvalue)}
+            # a driver that still helps the forecasts is never proposed for dropping
+            if not helps and covers_zero:
+                reason = (f"Driver '{s}' is not earning its place: over the last {int(both.sum())} periods it no "
+                          f"longer improves the forecasts (Clark–West p = {fmt_p(cw.pvalue)}) and its recent "
+                          f"coefficient interval [{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] "
+                          f"covers zero; MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
+                          f"{c.model.unit} without it.")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
 

@@ -31,6 +31,7 @@ import sqlalchemy as sa
 from drift.config import ModelConfig, ReferenceConfig
 from drift.exceptions import DecisionError
 from drift.store import Store, model_epochs, utcnow
+from drift.verdicts import label
 
 #: the decisions that start a new epoch
 ACTIONS = ("refit", "relag", "drop-driver")
@@ -268,7 +269,7 @@ def format_history(h: Mapping[str, Any]) -> str:
             for v in vs:
                 counts[v["verdict"]] = counts.get(v["verdict"], 0) + 1
             lines.append(f"  {len(vs)} check(s) from {vs[0]['as_of']} to {vs[-1]['as_of']}: "
-                         + ", ".join(f"{k} {n}" for k, n in counts.items()) + f"; last: {vs[-1]['verdict']}")
+                         + ", ".join(f"{label(k)} {n}" for k, n in counts.items()) + f"; last: {label(vs[-1]['verdict'])}")
         else:
             lines.append("  no checks recorded")
         for a in e["alerts"]:

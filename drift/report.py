@@ -12,14 +12,13 @@ from typing import Any
 
 from drift.check import CheckOutcome
 from drift.config import Config
+from drift.verdicts import ERROR, headline, label
 
 log = logging.getLogger(__name__)
 
 FOOTER = ("These verdicts are statistical evidence, not certainty. Each one says what the data show and how "
           "strongly; whether to refit, re-lag or drop a driver stays with the people accountable for the model.")
 
-WORDS = {"keep": "keep — no change found", "refit": "refit", "relag": "re-lag a driver",
-         "drop-driver": "drop a driver", "data-late": "data late", "watch": "watch"}
 
 
 def _charts(payload: dict[str, Any]) -> dict[str, bytes]:
@@ -46,20 +45,20 @@ def write_report(cfg: Config, store: Any, outcome: CheckOutcome, folder: Path) -
     md.append("| model | verdict | actions |")
     md.append("|---|---|---|")
     for m in outcome.models:
-        acts = ", ".join(a["action"] + (f" ({a['driver']})" if a.get("driver") else "") for a in m["actions"])
-        md.append(f"| {m['name']} | {WORDS.get(m['verdict'], m['verdict'])} | {acts or '—'} |")
+        acts = ", ".join(label(a["action"]) + (f" ({a['driver']})" if a.get("driver") else "") for a in m["actions"])
+        md.append(f"| {m['name']} | {label(m['verdict'])} | {acts or '—'} |")
     for name, err in outcome.errors.items():
-        md.append(f"| {name} | not checked | {err} |")
+        md.append(f"| {name} | {label(ERROR)} | {err} |")
     md.append("")
     html_parts = []
     for m in outcome.models:
-        md.append(f"## {m['name']}: {WORDS.get(m['verdict'], m['verdict'])}")
+        md.append(f"## {m['name']}: {label(m['verdict'])}")
         md.append("")
         md.append(f"Target `{m['target']}` ({m['unit']}), reference {m['reference']['start']} to "
                   f"{m['reference']['end']}, monitored since {m['monitor_start']}, data up to {m['last_period']}.")
         md.append("")
         for a in m["actions"]:
-            md.append(f"- **{a['action']}** ({a['severity']}): {a['reason']}")
+            md.append(f"- **{label(a['action'])}** ({a['severity']}): {a['reason']}")
         if not m["actions"]:
             md.append("- No action: the monitors found no change and every feed is on time.")
         md.append("")
@@ -89,7 +88,7 @@ def write_report(cfg: Config, store: Any, outcome: CheckOutcome, folder: Path) -
         md.append("")
         acts_html = "".join(f"<li><b>{_html.escape(a['action'])}</b>: {_html.escape(a['reason'])}</li>"
                             for a in m["actions"]) or "<li>No action.</li>"
-        html_parts.append(f"<section><h2>{_html.escape(m['name'])}: {_html.escape(WORDS.get(m['verdict'], m['verdict']))}"
+        html_parts.append(f"<section><h2>{_html.escape(m['name'])}: {_html.escape(label(m['verdict']))}"
                           f"</h2><ul>{acts_html}</ul>{''.join(imgs)}</section>")
     md.append("---")
     md.append(FOOTER)
@@ -121,9 +120,9 @@ def format_table(outcome: CheckOutcome) -> str:
     lines = [f"drift check as of {outcome.as_of.isoformat()}: {n_all} model(s), {len(outcome.models)} checked"]
     for m in outcome.models:
         lines.append("")
-        lines.append(f"{m['name']}  →  {WORDS.get(m['verdict'], m['verdict']).upper()}")
+        lines.append(f"{m['name']}  →  {headline(m['verdict'])}")
         for a in m["actions"]:
-            lines.append(f"  - {a['action']}: {a['reason']}")
+            lines.append(f"  - {label(a['action'])}: {a['reason']}")
         for d in m["drivers"]:
             lines.append(f"    {d['series']:<28} lag {d['lag']}  coef ref {_n(d.get('coef_reference')):>8}  "
                          f"recent {_n(d.get('coef_recent')):>8}")
@@ -132,7 +131,7 @@ def format_table(outcome: CheckOutcome) -> str:
                          + (f"  signalled {t['date']}" if t.get("date") else ""))
     for name, err in outcome.errors.items():
         lines.append("")
-        lines.append(f"{name}  →  NOT CHECKED: {err}")
+        lines.append(f"{name}  →  {label(ERROR)}: {err}")
     lines.append("")
     lines.append(FOOTER)
     return "\n".join(lines)

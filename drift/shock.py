@@ -22,9 +22,18 @@ from drift.config import Config
 from drift.engine.split import split_coefficients
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import build_design
-from drift.verdicts import fmt_num, pct_change
+from drift.verdicts import change_words, fmt_num, fmt_p, label
 
 log = logging.getLogger(__name__)
+
+
+def _moved_words(series: str, before: float, after: float) -> str:
+    """``the x effect fell by about 45% (2.08 → 1.15)``; a change of sign or from a base near zero is said
+    in words (``the x effect reversed sign, from 3.53 to -8.64``), never as a fall of over 100%."""
+    how = change_words(before, after)
+    if " from " in f" {how}":
+        return f"the {series} effect {how}"
+    return f"the {series} effect {how} ({fmt_num(before)} → {fmt_num(after)})"
 
 
 def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: Any) -> dict[str, Any]:
@@ -82,7 +91,7 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
            "bias_before": _num(np.nanmean(before)) if np.isfinite(before).any() else None,
            "bias_after": _num(np.nanmean(after)) if np.isfinite(after).any() else None}
     p = main["pvalue"]
-    label = "Chow break test" if main["test"] == "chow" else "predictive-failure test"
+    test_name = "Chow break test" if main["test"] == "chow" else "predictive-failure test"
     if p is not None and p < level:
         verdict = "refit"
         moved = []
@@ -93,9 +102,9 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
             for i, s in enumerate(d.driver_columns):
                 b, a = sp.before[i], sp.after[i]
                 if np.isfinite(sp.pvalue_diff[i]) and sp.pvalue_diff[i] < level / n_d:
-                    moved.append(f"the {s} effect {pct_change(b, a)} ({fmt_num(b)} → {fmt_num(a)})")
+                    moved.append(_moved_words(s, b, a))
         what = "; ".join(moved) if moved else "the relationship shifted (level or several coefficients together)"
-        reason = (f"{what[0].upper() + what[1:]} after the shock; {label} p = {p:.2g} "
+        reason = (f"{what[0].upper() + what[1:]} after the shock; {test_name} p = {fmt_p(p)} "
                   f"(F = {fmt_num(main['statistic'])}, df {main['df'][0]}, {main['df'][1]}). "
                   f"Refit on data since {when.isoformat()}")
         if n2 < 2 * k:
@@ -104,7 +113,7 @@ def shock_model(cfg: Config, model: Any, obs: pd.DataFrame, when: date, moment: 
     else:
         verdict = "keep"
         reason = (f"No evidence that the relationship changed at {when.isoformat()} "
-                  f"({label} p = {fmt_num(p) if p is not None else 'n/a'}, {n2} periods after the date). Keep the model.")
+                  f"({test_name} p = {fmt_p(p)}, {n2} periods after the date). Keep the model.")
     return {"name": model.name, "unit": model.unit, "tests": tests, "drivers": drivers, "accuracy": acc,
             "verdict": verdict,
             "reason": reason, "nobs_before": n1, "nobs_after": n2,
@@ -161,9 +170,9 @@ def format_shock(res: dict[str, Any]) -> str:
     lines = [f"drift shock analysis at {res['date']} (data as of {res['as_of']})"]
     for r in res["models"]:
         lines.append("")
-        lines.append(f"{r['name']}  →  {r['verdict'].upper()}: {r['reason']}")
+        lines.append(f"{r['name']}  →  {label(r['verdict'])}: {r['reason']}")
         for t in r["tests"]:
-            lines.append(f"    {t['test']:<20} F = {fmt_num(t['statistic'])}  df {t['df']}  p = {t['pvalue']:.3g}")
+            lines.append(f"    {t['test']:<20} F = {fmt_num(t['statistic'])}  df {t['df']}  p = {fmt_p(t['pvalue'])}")
         for dv in r["drivers"]:
             if dv["coef_before"] is not None:
                 lines.append(f"    {dv['series']:<24} before {fmt_num(dv['coef_before'])} "

@@ -1,8 +1,14 @@
 """Turn test results into a small set of actions with plain-language reasons and the numbers behind them.
 
-Actions, most pressing first: ``data-late`` > ``refit`` > ``relag`` > ``drop-driver`` > ``watch``.
-The model's verdict is ``keep`` or the most pressing action, or ``error`` when the model could not be
-checked at all (its data cannot support the check; the entry says why). Deterministic: same evidence, same verdict.
+Verdicts, most pressing first (:data:`ORDER`): ``error`` (not checked) > ``refit`` > ``relag`` >
+``drop-driver`` > ``data-late`` > ``watch`` > ``keep``. The model's verdict is ``keep`` or its most pressing
+action, or ``error`` when the model could not be checked at all (its data cannot support the check; the
+entry says why). A confirmed change outranks a late feed: a model with both a refit and a late feed has the
+verdict ``refit`` and lists the late feed beside it. Deterministic: same evidence, same verdict.
+
+The vocabulary is defined here once: the codes (``ORDER``, used in the JSON and the store), the word
+shown for each (:data:`LABEL`, e.g. in tables), and the headline of a model's section (:data:`HEADLINE`).
+Every output (messages, digest, report, terminal tables, status) takes its words from here.
 
 False-alarm control (per model, over the monitoring horizon)
 -----------------------------------------------------------
@@ -26,8 +32,10 @@ expanding fit would carry the reference period's effects forward: after a driver
 model with it would keep forecasting with the stale coefficient (the Clark–West adjustment then counts that
 stale difference as a gain), and every other lag would look better than the current one.
 
-- ``drop-driver``: Clark–West finds no gain at ``level`` and the recent coefficient interval covers zero,
-  or the feed has been missing for more than ``feed_limit`` periods.
+- ``drop-driver``: Clark–West finds no gain at ``level`` and the recent coefficient interval covers zero.
+  A driver that still helps (Clark–West gain at ``level``) is never proposed for dropping. A feed missing
+  for more than ``feed_limit`` periods is ``data-late``, whose reason gives the cost of running without it
+  (the action's ``without`` figures), never ``drop-driver`` on that ground.
 - ``relag``: the recent lag-profile peak is at another lag and clears a Bonferroni band over the scanned
   lags, the model at the new lag beats the current one (Diebold–Mariano/HLN, one-sided at ``level``) *and*
   beats the model without the driver (Clark–West at ``level``). A relag replaces a ``drop-driver`` of the
@@ -36,14 +44,53 @@ stale difference as a gain), and every other lag would look better than the curr
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
-PRIORITY = ("data-late", "refit", "relag", "drop-driver", "watch")
+#: actions, most pressing first: a confirmed change of the relationship outranks a late feed
+PRIORITY = ("refit", "relag", "drop-driver", "data-late", "watch")
 #: the verdict of a model that could not be checked (its entry gives the ``reason``); not an action
 ERROR = "error"
+#: the verdict of a model with no action
+KEEP = "keep"
+#: every verdict a model can get, most pressing first
+ORDER = (ERROR, *PRIORITY, KEEP)
 #: every verdict a model can get: ``keep``, the most pressing action, or ``error``
-VERDICTS = ("keep", *PRIORITY, ERROR)
+VERDICTS = (KEEP, *PRIORITY, ERROR)
+#: the word shown for each verdict (tables, lists, subjects): one spelling everywhere
+LABEL: dict[str, str] = {
+    ERROR: "not checked", "refit": "refit", "relag": "re-lag", "drop-driver": "drop a driver",
+    "data-late": "data late", "watch": "watch", KEEP: "keep",
+}
+#: the headline of a model's section: the label and what it means
+HEADLINE: dict[str, str] = {
+    ERROR: "not checked: its data cannot support the check",
+    "refit": "refit: the relationship changed",
+    "relag": "re-lag: a driver fits better at another lag",
+    "drop-driver": "drop a driver: it no longer helps the forecast",
+    "data-late": "data late: a feed is overdue",
+    "watch": "watch: an early sign, not confirmed",
+    KEEP: "keep: no change found",
+}
+
+
+def rank(verdict: str | None) -> int:
+    """How pressing a verdict is: 0 for ``error``, up to ``len(ORDER) - 1`` for ``keep``; an unknown
+    code ranks with ``watch``, ``None`` after ``keep``."""
+    if verdict is None:
+        return len(ORDER)
+    return ORDER.index(verdict) if verdict in ORDER else ORDER.index("watch")
+
+
+def label(verdict: str | None) -> str:
+    """The word shown for a verdict or action code (an unknown code is shown as it is)."""
+    return LABEL.get(str(verdict), str(verdict))
+
+
+def headline(verdict: str | None) -> str:
+    """The headline of a model's section for its verdict."""
+    return HEADLINE.get(str(verdict), label(verdict))
 
 
 @dataclass
@@ -58,14 +105,15 @@ class Action:
 
 
 def overall(actions: list[Action]) -> str:
-    """``keep`` or the name of the most pressing action."""
+    """``keep`` or the name of the most pressing action (:data:`PRIORITY`)."""
     if not actions:
-        return "keep"
-    return min(actions, key=lambda a: PRIORITY.index(a.action)).action
+        return KEEP
+    return min(actions, key=lambda a: rank(a.action)).action
 
 
 def sort_actions(actions: list[Action]) -> list[Action]:
-    return sorted(actions, key=lambda a: (PRIORITY.index(a.action), str(a.extra.get("driver", ""))))
+    """Most pressing first (:data:`PRIORITY`), then by driver."""
+    return sorted(actions, key=lambda a: (rank(a.action), str(a.extra.get("driver", ""))))
 
 
 def fmt_num(x: float | None, digits: int = 3) -> str:
@@ -82,9 +130,69 @@ def fmt_num(x: float | None, digits: int = 3) -> str:
     return f"{x:.{digits}g}"
 
 
-def pct_change(before: float, after: float) -> str:
-    if before == 0:
+#: p-value range of each family of tabulated tests (test-name prefix -> (smallest, largest) p-value the
+#: table can give): a p-value at an edge was clipped there and only bounds the true one
+#: (drift.engine.tables.monitoring.pvalue clips to its tail probabilities, 0.005 .. 0.5)
+PVALUE_EDGES: dict[str, tuple[float, float]] = {"monitor-": (0.005, 0.5), "forecast-": (0.005, 0.5)}
+
+
+def pvalue_edges(test: str | None) -> tuple[float, float] | None:
+    """The table range a test's p-value was clipped to, or None for a p-value that is not clipped."""
+    for prefix, edges in PVALUE_EDGES.items():
+        if test and str(test).startswith(prefix):
+            return edges
+    return None
+
+
+def fmt_p(p: float | None, test: str | None = None) -> str:
+    """A p-value for people; one clipped at its table's edge is shown as a bound (``< 0.005``, ``> 0.5``).
+
+    Parameters
+    ----------
+    p : the p-value (None/NaN: ``n/a``).
+    test : the test's name in the payload (``monitor-cusum``, ``forecast-mean``, ...): it says which table
+        the p-value came from (:data:`PVALUE_EDGES`).
+    """
+    if p is None or not math.isfinite(float(p)):
+        return "n/a"
+    p = float(p)
+    edges = pvalue_edges(test)
+    if edges is not None:
+        lo, hi = edges
+        if p <= lo * (1 + 1e-9):
+            return f"< {lo:g}"
+        if p >= hi * (1 - 1e-9):
+            return f"> {hi:g}"
+    if p == 0:
+        return "0"
+    if p < 0.001:
+        return f"{p:.1e}"
+    return f"{p:.2g}" if p < 0.1 else f"{p:.2f}"
+
+
+#: beyond this ratio of the new to the old value (or below its inverse), or across zero, a change is said in
+#: words ("from 0.02 to 2.5"), not as a percentage (common practice, no source)
+PCT_RATIO_MAX = 10.0
+
+
+def change_words(before: float, after: float) -> str:
+    """How a value moved, in words: ``fell by about 45%``, ``reversed sign, from 3.53 to -8.64``,
+    ``rose from 0.01 to 2.5`` (a base near zero), ``fell from 2.1 to 0.03``; never a fall of over 100%."""
+    if not (math.isfinite(before) and math.isfinite(after)):
         return ""
-    ch = (after - before) / abs(before) * 100
-    word = "rose" if ch > 0 else "fell"
-    return f"{word} by about {abs(ch):.0f}%"
+    if before == after:
+        return "unchanged"
+    if before * after < 0:
+        return f"reversed sign, from {fmt_num(before)} to {fmt_num(after)}"
+    word = "rose" if abs(after) > abs(before) else "fell"
+    if before == 0 or after == 0 or not 1 / PCT_RATIO_MAX <= after / before <= PCT_RATIO_MAX:
+        return f"{word} from {fmt_num(before)} to {fmt_num(after)}"
+    return f"{word} by about {abs((after - before) / before) * 100:.0f}%"
+
+
+def window_words(used: int, window: int) -> str:
+    """The window a figure covers, as used: ``the last 52 periods``, or ``48 of the last 52 periods`` when
+    some periods had no value."""
+    if used >= window:
+        return f"the last {window} period{'s' if window != 1 else ''}"
+    return f"{used} of the last {window} periods"

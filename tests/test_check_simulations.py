@@ -18,6 +18,7 @@ from scipy import stats
 from drift.check import CheckOutcome, analyse, as_of_moment, run_check
 from drift.ingest import ingest_all
 from drift.panel import build_design
+from drift.verdicts import fmt_num
 from tests.check_scenarios import (
     N_REF,
     START,
@@ -123,14 +124,38 @@ def test_stopped_feed_is_late_on_the_first_check_after_its_due_date(tmp_path):
     assert x1["late"] is True and x1["next_due"] == due.tz_localize("UTC").isoformat()
 
 
-def test_feed_gone_longer_than_the_limit_also_proposes_dropping(tmp_path):
-    # invented scenario (simulation): x1 missing for 6 weeks (> feed_limit 4)
+def test_feed_gone_longer_than_the_limit_is_data_late_with_its_cost(tmp_path):
+    # invented scenario (simulation): x1 (effect 2.0, it helps) missing for 6 weeks (> feed_limit 4).
+    # README promise: a driver that still helps is never proposed for dropping; the late feed's reason
+    # gives the cost of running without it, with the same figures as the driver's worth entry.
     cfg = config(tmp_path)
     sc = Scenario(seed=301, n_mon=60, stop_x1_after=N_REF + 60 - 7)
     p = _check(cfg, sc)
     (late,) = _acts(p, "data-late")
     assert late["missing_periods"] > cfg.check.feed_limit
-    assert [a["driver"] for a in _acts(p, "drop-driver")] == ["x1"]
+    assert _acts(p, "drop-driver") == []
+    worth = next(d for d in p["drivers"] if d["series"] == "x1")["worth"]
+    assert worth["pvalue"] < cfg.check.level  # it helps
+    w = late["without"]
+    assert (w["mae_with"], w["mae_without"], w["n"]) == (worth["mae_with"], worth["mae_without"], worth["n"])
+    assert f"from {fmt_num(w['mae_with'])} to {fmt_num(w['mae_without'])} units" in late["reason"]
+    assert f"{w['n']} of the last {cfg.check.recent_window} periods" in late["reason"]
+
+
+def test_a_driver_that_helps_is_never_proposed_for_dropping(tmp_path):
+    # invented scenarios (simulation): the README promise over a few seeds, feeds on time and gone; a
+    # drop-driver, when there is one, always names a driver whose Clark-West p is not below the level
+    cfg = config(tmp_path)
+    proposed = []
+    for seed, stop, gone in ((302, None, False), (303, N_REF + 100 - 7, False), (304, None, True),
+                             (305, N_REF + 100 - 7, True)):
+        p = _check(cfg, Scenario(seed=seed, n_mon=100, b1_after=0.0 if gone else None,
+                                 change_at=N_REF + 4 if gone else None, stop_x1_after=stop))
+        for a in _acts(p, "drop-driver"):
+            worth = next(d for d in p["drivers"] if d["series"] == a["driver"])["worth"]
+            assert worth["pvalue"] >= cfg.check.level, (seed, a)
+            proposed.append(seed)
+    assert 304 in proposed  # the rule still fires where the effect has gone
 
 
 # --------------------------------------------------------------------------------------- (d) healthy

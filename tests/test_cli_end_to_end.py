@@ -82,7 +82,7 @@ def test_check_healthy_keeps_and_table_output(tmp_path: Path) -> None:
     assert run("ingest", "--config", "drift.yaml", cwd=tmp_path).returncode == 0
     r = run("check", "--config", "drift.yaml", "--as-of", "2025-12-31", cwd=tmp_path)
     assert r.returncode == 0, r.stderr
-    assert "k000" in r.stdout and "KEEP" in r.stdout
+    assert "k000  →  keep: no change found" in r.stdout
     assert "statistical evidence, not certainty" in r.stdout
 
 

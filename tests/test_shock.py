@@ -142,5 +142,5 @@ def test_run_shock_through_the_store_is_recorded(tmp_path, sqlite_store):
     assert "_chart" not in res["models"][0]
     runs = sqlite_store.recent_runs("shock")
     assert runs and runs[0]["status"] == "ok"
-    assert "REFIT" in format_shock(res)
+    assert "→  refit:" in format_shock(res)
     assert np.isfinite(res["models"][0]["tests"][0]["statistic"])

@@ -15,8 +15,8 @@ What it writes (:func:`run_digest`)
     ``digest:<date>:<channel>`` (so a second run on the same day enqueues nothing new), delivered later by
     :func:`drift.delivery.outbox.deliver_pending`.
 
-Changes between the two states, per model (verdicts ranked keep < watch < drop-driver < relag < refit <
-data-late, the check's own priority order):
+Changes between the two states, per model (verdicts ranked by the check's own order,
+:data:`drift.verdicts.ORDER`: keep < watch < data-late < drop-driver < relag < refit < error):
 
 =========  ====================================================================
 new        was keep (or not there before), now anything else
@@ -48,6 +48,7 @@ import sqlalchemy as sa
 from drift.config import Config
 from drift.delivery import charts as _charts
 from drift.store import Store, alert_snoozes, alerts, outbox, runs, utcnow, verdicts
+from drift.verdicts import LABEL, ORDER
 
 log = logging.getLogger(__name__)
 
@@ -55,11 +56,10 @@ log = logging.getLogger(__name__)
 RUN_KIND = "digest"
 #: version of the JSON kept in a digest run's ``detail``
 DETAIL_VERSION = 1
-#: pressing order of verdicts (higher = more pressing); the check's priority order
-VERDICT_RANK: dict[str, int] = {"keep": 0, "watch": 1, "drop-driver": 2, "relag": 3, "refit": 4, "data-late": 5}
-#: words shown for each verdict
-VERDICT_WORDS: dict[str, str] = {"keep": "Keep", "watch": "Watch", "drop-driver": "Drop a driver",
-                                 "relag": "Re-lag", "refit": "Refit", "data-late": "Data late"}
+#: pressing order of verdicts (higher = more pressing): the check's own order (drift.verdicts.ORDER)
+VERDICT_RANK: dict[str, int] = {v: len(ORDER) - 1 - i for i, v in enumerate(ORDER)}
+#: words shown for each verdict (drift.verdicts.LABEL, the one vocabulary)
+VERDICT_WORDS: dict[str, str] = LABEL
 #: words shown for each state of a model (the digest's own three-step scale)
 STATE_WORDS: dict[str, str] = {"act": "Needs action", "watch": "Keep an eye on", "steady": "Steady"}
 #: with at most this many models every model gets a section with charts

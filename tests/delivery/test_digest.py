@@ -70,7 +70,7 @@ def test_two_digests_the_second_reports_what_changed(tmp_path: Path, store) -> N
     assert second.compared_with == "the digest of 2025-12-22"
     kinds = {c.model: (c.kind, c.before, c.after) for c in second.changed}
     assert kinds == {"k000": ("new", "keep", "refit"), "<b>x</b>": ("worse", "watch", "data-late"),
-                     "k003": ("eased", "data-late", "relag"), "k001": ("cleared", "refit", "keep")}
+                     "k003": ("worse", "data-late", "relag"), "k001": ("cleared", "refit", "keep")}
     # the second digest's run row records its verdicts for the next one
     with store.connect() as conn:
         rows = conn.execute(sa.select(runs).where(runs.c.kind == "digest").order_by(runs.c.id)).fetchall()
