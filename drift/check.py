@@ -400,7 +400,7 @@ def _screen(group: list[_Ctx]) -> None:
         o = Y.shape[1] - c.design.n
         Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
     m = np.array([c.design.n_ref for c in group]) + off
-    rf = engine.recursive_fit(Y, Xs)
+    rf = engine.recursive_fit(Y, Xs, coef_se=False)  # the check reads coefficients, not their errors
     horizon = chk.horizon
     # the monitors that can raise `refit`, each at level / (their number) (Bonferroni): the residual
     # CUSUM monitors (level shifts, changes along the mean regressor) and one score monitor per driver

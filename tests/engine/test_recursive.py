@@ -232,3 +232,46 @@ def test_bad_arguments(y: np.ndarray, X: np.ndarray, exc: type[Exception]) -> No
 def test_bad_rank_tol(tol: object) -> None:
     with pytest.raises(ValueError, match="rank_tol"):
         recursive_fit(np.zeros(5), np.ones((5, 1)), rank_tol=tol)  # type: ignore[arg-type]
+
+
+# source: statsmodels 0.15.0 RecursiveLS (resid_recursive, recursive_coefficients.filtered), one call per
+# model, against the residual-only recursion and the fit without standard errors on a batch with gaps, a
+# ragged start and a rank-deficient start
+def test_residual_only_and_no_se_paths_match_statsmodels() -> None:
+    rng = np.random.default_rng(111)
+    M, n, k = 6, 70, 4
+    ys, Xs = zip(*[_design(rng, n, k) for _ in range(M)])
+    y, X = np.stack(ys), np.stack(Xs)
+    y[1, :5] = np.nan  # ragged start
+    y[2, [20, 21, 40]] = np.nan  # gaps
+    X[3, :6, 3] = 0.0  # a driver seen only as zero at first: the initial window is extended
+    w = recursive_residuals(y, X)
+    fast = recursive_fit(y, X, coef_se=False)
+    full = recursive_fit(y, X)
+    np.testing.assert_array_equal(w, full.resid)  # the same recursion, the same numbers
+    np.testing.assert_array_equal(fast.resid, full.resid)
+    np.testing.assert_array_equal(fast.forecast_error, full.forecast_error)
+    np.testing.assert_array_equal(fast.rss, full.rss)
+    np.testing.assert_allclose(fast.coef, full.coef, rtol=1e-10, atol=1e-12)  # back substitution vs R^-1
+    assert np.isnan(fast.coef_se).all()
+    for m in (0, 4, 5):  # complete models: statsmodels' Kalman filter on the same rows
+        res = sm.RecursiveLS(y[m], X[m]).fit()
+        np.testing.assert_allclose(w[m, k:], res.resid_recursive[k:], rtol=0, atol=1e-8)
+        np.testing.assert_allclose(fast.coef[m, k:], res.recursive_coefficients.filtered.T[k:], rtol=0,
+                                   atol=1e-8)
+    for m in (1, 2):  # gaps: statsmodels on the usable rows only
+        ok = np.isfinite(y[m])
+        res = sm.RecursiveLS(y[m, ok], X[m, ok]).fit()
+        np.testing.assert_allclose(w[m, ok][k:], res.resid_recursive[k:], rtol=0, atol=1e-8)
+    assert np.isnan(w[m, ~ok]).all()
+    # unbatched input gives one model's residuals (to rounding: alone, it leaves the guarded start sooner)
+    np.testing.assert_allclose(recursive_residuals(y[0], X[0]), w[0], rtol=1e-12, atol=1e-13)
+
+
+# common practice, no source: values near the overflow bound take the hypot path and agree with a scaled copy
+def test_large_values_use_the_overflow_safe_rotations() -> None:
+    rng = np.random.default_rng(112)
+    y, X = _design(rng, 40, 3)
+    big = 1e120
+    w = recursive_residuals(y * big, X * big)
+    np.testing.assert_allclose(w[3:] / big, recursive_residuals(y, X)[3:], rtol=1e-9)
