@@ -162,7 +162,7 @@ class TreePeak:
             self.peak = max(self.peak, total)
             self._stop.wait(self._every)
 
-    def __enter__(self) -> TreePeak:
+    def __enter__(self) -> TreePeak:  # noqa: PYI034
         self._thread.start()
         return self
 
@@ -289,7 +289,7 @@ def _child(args: argparse.Namespace, stage: str, **kw: str) -> dict:
         cmd += [f"--{k}", v]
     t0 = time.perf_counter()
     try:
-        done = subprocess.run(cmd, capture_output=True, text=True, timeout=args.timeout)
+        done = subprocess.run(cmd, check=False, capture_output=True, text=True, timeout=args.timeout)
     except subprocess.TimeoutExpired:
         return {"wall_s": f"> {args.timeout}", "result": "stopped (timeout)", "load": _load()}
     if done.returncode != 0:
