@@ -275,6 +275,12 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
     return c
 
 
+#: smallest size of a series drift computes with: a target or driver whose values on the usable reference
+#: rows are all below this in size (but not all zero) is out of scale the other way from
+#: :data:`~drift.config.MAX_ABS_VALUE`: squares of values below ~1.5e-154 underflow to 0 in double
+#: precision, so least squares would see an all-zero column (common practice, no source)
+MIN_SCALE = 1e-100
+
 #: a column whose part orthogonal to the columns before it is below this fraction of its own size (on the
 #: usable reference rows) is taken as collinear with them: least squares in double precision cannot
 #: separate their effects (condition number beyond ~1e7; common practice, no source)
@@ -313,6 +319,7 @@ def _validate(c: _Ctx) -> None:
                          "with (its squares overflow); check the source")
     ref = slice(0, d.n_ref)
     ok = np.isfinite(c.y[ref]) & np.isfinite(c.X[ref]).all(axis=1)
+    _check_scale(c, ok)
     need = d.k + 3
     if c.n_ref_ok < need:
         raw_ok = {"target " + repr(m.target): np.isfinite(d.y[ref])}
@@ -347,6 +354,23 @@ def _validate(c: _Ctx) -> None:
             f"model '{m.name}': the regressors are collinear on the {int(ok.sum())} usable reference rows: "
             f"{d.columns[j]} = {' + '.join(terms) or '0'}; their effects cannot be told apart. Drop one of "
             "these drivers (or change its lag), or check the source")
+
+
+def _check_scale(c: _Ctx, ok: np.ndarray) -> None:
+    """DriftError when the target or a driver is, on the usable reference rows, not all zero but nowhere as
+    large as :data:`MIN_SCALE` (its squares underflow: the fit would read it as zero)."""
+    d, m = c.design, c.model
+    named = [(f"the target '{m.target}'", d.y[: d.n_ref][ok])]
+    named += [(f"the driver '{s}'", d.X[: d.n_ref, j][ok]) for s, j in d.driver_columns.items()]
+    for what, v in named:
+        if not v.size:
+            continue
+        top = float(np.max(np.abs(v)))
+        if 0 < top < MIN_SCALE:
+            raise DriftError(
+                f"model '{m.name}': {what} is too small in scale to compute with: its largest value on the "
+                f"usable reference rows is {top:.3g} in size, below {MIN_SCALE:.0e} (squares of such values "
+                "underflow to 0); rescale the series (another unit) or check the source")
 
 
 def _failure(name: str, stage: str, exc: BaseException) -> str:
@@ -1203,6 +1227,7 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         from drift.executor import run_chunks  # executor calls back into analyse
 
         payloads, errors = run_chunks(cfg, chosen, obs, moment)
+        _quarantine_hint(store, chosen, obs, errors)
         failed = [error_entry(m, errors[m.name], day) for m in chosen if m.name in errors]
         by_name = {m.name: m for m in written}
         for entry in (*payloads, *failed):
@@ -1227,6 +1252,22 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
     except BaseException as exc:
         store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
+
+
+def _quarantine_hint(store: Any, models: Sequence[ModelConfig], obs: pd.DataFrame, errors: dict[str, str]) -> None:
+    """Add to the reason of a model that failed for want of a series what ingest quarantined of it: a series
+    whose every value was refused (beyond the size drift computes with, not a number, ...) is absent from
+    the store, and the quarantine says why (wide sources: the column is the series)."""
+    failed = [m for m in models if m.name in errors]
+    absent = sorted({s for m in failed for s in m.series} - set(obs["series"].unique()))
+    if not absent:
+        return
+    held = store.quarantined_columns(absent)
+    for m in failed:
+        notes = [f"'{s}' has {n} value(s) in quarantine, the first in row {row}: {why}"
+                 for s, (n, row, why) in ((s, held[s]) for s in dict.fromkeys(m.series) if s in held)]
+        if notes:
+            errors[m.name] += ". Ingest refused them: " + "; ".join(notes) + " (drift quarantine lists them)"
 
 
 def _alerts_and_delivery(cfg: Config, store: Any, outcome: CheckOutcome) -> None:

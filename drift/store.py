@@ -636,6 +636,21 @@ class Store:
         with self.connect() as conn:
             return [dict(r._mapping) for r in conn.execute(stmt)]
 
+    def quarantined_columns(self, columns: Sequence[str]) -> dict[str, tuple[int, int, str]]:
+        """Open quarantine records by column (a wide source's column is its series): the number of records
+        and the row and reason of the first one, for those of ``columns`` that have any."""
+        q = quarantine
+        out: dict[str, tuple[int, int, str]] = {}
+        with self.connect() as conn:
+            for chunk in _chunks(list(columns), 500):
+                rows = conn.execute(sa.select(q.c.column, sa.func.count(), sa.func.min(q.c.id))
+                                    .where(q.c.column.in_(chunk), q.c.resolved_at.is_(None))
+                                    .group_by(q.c.column)).fetchall()
+                for col, n, first in rows:
+                    rec = conn.execute(sa.select(q.c.row, q.c.reason).where(q.c.id == first)).one()
+                    out[str(col)] = (int(n), int(rec.row), str(rec.reason))
+        return out
+
     def open_quarantine(self, conn: Connection, source: str, file: str) -> pd.DataFrame:
         """The open records of one source and file: id, row, column, raw_value, reason."""
         q = quarantine

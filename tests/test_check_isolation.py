@@ -74,6 +74,7 @@ BAD = {
     "a driver entirely missing": ({k: v for k, v in VALUES.items() if k != "x2"}, ["no observations of 'bx2'"]),
     "a target value of 1e308": ({**VALUES, "y": np.where(np.arange(N) == 170, 1e308, VALUES["y"])},
                                 ["the target 'by' has the value 1e+308 for the period starting 2024-04-08"]),
+    "a target near 1e-300": ({**VALUES, "y": VALUES["y"] * 1e-300}, ["the target 'by' is too small in scale"]),
     "a driver value of -1e308": ({**VALUES, "x1": np.where(np.arange(N) == 50, -1e308, VALUES["x1"])},
                                  ["the driver 'bx1' has the value -1e+308 for the period starting 2021-12-20"]),
 }

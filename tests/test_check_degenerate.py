@@ -1,0 +1,77 @@
+"""Models that cannot be judged say so, through the CLI (``drift ingest`` then ``drift check --json``): a
+degenerate design or a target out of computable scale is the model's ``error`` entry with a reason naming the
+columns or the series, never a verdict with blank coefficients (common practice, no source; invented kiosk
+data from tests/test_cli_end_to_end.py, edited per case).
+
+Expected relations are exact by construction: a driver set to 5 everywhere is 5 × the intercept column; a
+driver set to 2 × another is that multiple of it (checked against numpy.linalg.lstsq, numpy 2.x, in
+``drift.check._validate``).
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from tests.test_cli_end_to_end import kiosk_data
+from tests.test_cli_robustness import invoke
+from tests.test_config import MINIMUM
+
+Edit = Callable[[pd.DataFrame], None]
+
+
+def _set(col: str, fn: Callable[[pd.DataFrame], object]) -> Edit:
+    def edit(df: pd.DataFrame) -> None:
+        df[col] = fn(df)
+    return edit
+
+
+# case: (edit of the kiosk data, words the reason must contain)
+CASES: dict[str, tuple[Edit, list[str]]] = {
+    "a driver always 0": (_set("k000_promo", lambda df: 0.0),
+                          ["k000_promo[L1] are zero on every usable reference row"]),
+    "a driver constant at 5": (_set("k000_promo", lambda df: 5.0),
+                               ["regressors are collinear", "k000_promo[L1] = 5 × const"]),
+    "two collinear drivers": (_set("k000_promo", lambda df: 2.0 * df["k000_temp"]),
+                              ["regressors are collinear", "k000_temp[L1] = 0.5 × k000_promo[L1]"]),
+    "a driver = another + 3": (_set("k000_promo", lambda df: df["k000_temp"] + 3.0),
+                               ["regressors are collinear", "k000_temp[L1] = -3 × const + 1 × k000_promo[L1]"]),
+    "a constant target": (_set("k000_units", lambda df: 7.0), ["the target 'k000_units' is constant (7)"]),
+    # squares of values near 1e-300 underflow to 0: least squares then sees an all-zero target or column
+    "a target near 1e-300": (_set("k000_units", lambda df: df["k000_units"] * 1e-300),
+                             ["target 'k000_units'", "too small in scale", "rescale"]),
+    "a driver near 1e-300": (_set("k000_promo", lambda df: df["k000_promo"] * 1e-300),
+                             ["driver 'k000_promo'", "too small in scale", "rescale"]),
+    # values near 1e308 are quarantined at ingest (their squares overflow); the check says so
+    "a target near 1e308": (_set("k000_units", lambda df: df["k000_units"] * 1e305),
+                            ["'k000_units' has 259 value(s) in quarantine", "beyond ±1e+100"]),
+}
+
+
+def _project(tmp_path: Path, edit: Edit) -> Path:
+    kiosk_data(tmp_path / "data")
+    for f in sorted((tmp_path / "data").glob("*.csv")):
+        df = pd.read_csv(f)
+        edit(df)
+        df.to_csv(f, index=False)
+    (tmp_path / "drift.yaml").write_text(MINIMUM, encoding="utf-8")
+    return tmp_path
+
+
+@pytest.mark.parametrize("case", list(CASES))
+def test_degenerate_model_is_an_error_entry_naming_the_problem(tmp_path: Path, case: str) -> None:
+    edit, words = CASES[case]
+    folder = _project(tmp_path, edit)
+    code, _, err = invoke("ingest", "--config", "drift.yaml", cwd=folder)
+    assert code == 0, err
+    code, out, err = invoke("check", "--config", "drift.yaml", "--as-of", "2025-12-31", "--json", "--no-deliver",
+                            cwd=folder)
+    assert code == 4 and "Traceback" not in err, (code, err)
+    (m,) = json.loads(out)["models"]
+    assert m["verdict"] == "error", m
+    for w in words:
+        assert w in m["reason"], m["reason"]
