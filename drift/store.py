@@ -407,8 +407,12 @@ class Store:
             raise err from exc
 
     # ---------------------------------------------------------------- observations
-    def latest_vintages(self, conn: Connection, series: Iterable[str]) -> pd.DataFrame:
-        """The latest live vintage and the highest vintage number of every key of the given series.
+    def latest_vintages(self, conn: Connection, series: Iterable[str],
+                        periods: tuple[date, date] | None = None) -> pd.DataFrame:
+        """The latest live vintage and the highest vintage number of every key of the given series (and
+        periods from ``periods[0]`` to ``periods[1]``, both included, when given: the unique index's
+        (series, period) prefix serves the lookup, so a batch of new periods reads only those, not the
+        series' history).
 
         A key is (series, period, issued_at). ``value`` is that of the highest-numbered vintage that is not
         retracted (NaN when every vintage of the key is retracted); ``vintage`` is the highest number used,
@@ -426,6 +430,8 @@ class Store:
         for chunk in _chunks(series, 500):
             q = sa.select(o.c.series, o.c.period, o.c.issued_at, o.c.value, o.c.vintage,
                           o.c.retracted_at.is_not(None)).where(o.c.series.in_(chunk))
+            if periods is not None:
+                q = q.where(o.c.period.between(periods[0], periods[1]))
             # plain tuples: pandas probes each Row's attributes, which costs seconds per million rows
             frames.append(pd.DataFrame([tuple(r) for r in conn.execute(q).fetchall()],
                                        columns=[*cols, "retracted"]))

@@ -321,3 +321,16 @@ def test_bulk_insert_keeps_values_and_times_exactly(store) -> None:
     assert got["value"].tolist() == values
     assert got["issued_at"].iloc[1] == pd.Timestamp(issued) and pd.isna(got["issued_at"].iloc[0])
     assert got["available_at"].iloc[3] == pd.Timestamp(issued) + pd.Timedelta(seconds=3)
+
+
+# common practice, no source: the already-known lookup of an ingest reads only the incoming periods
+def test_latest_vintages_of_a_period_span(store) -> None:
+    t = datetime(2025, 1, 1, tzinfo=timezone.utc)
+    weeks = [date(2024, 12, 2) + timedelta(weeks=i) for i in range(5)]
+    _obs(store, [("x", p, float(i), t) for i, p in enumerate(weeks)] + [("x", weeks[3], 7.0, t)])
+    with store.connect() as conn:
+        got = store.latest_vintages(conn, ["x"], (weeks[3], weeks[4])).sort_values("period")
+        everything = store.latest_vintages(conn, ["x"])
+    assert pd.to_datetime(got["period"]).dt.date.tolist() == weeks[3:]
+    assert got["value"].tolist() == [7.0, 4.0] and got["vintage"].tolist() == [2, 1]
+    assert len(everything) == 5

@@ -367,7 +367,11 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str)
             log.info("source %s: %s was stored by another ingest running at the same time, skipped",
                      source.name, raw.label)
             return IngestSummary(source.name, files=1, known=len(good), skipped=1)
-        latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist()) if len(good) else None
+        latest = None
+        if len(good):  # the keys of the incoming periods only (a daily file reads one period, not the history)
+            span = pd.to_datetime(good["period"])
+            latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist(),
+                                           (span.min().date(), span.max().date()))
         new, n_known, n_revised = _classify(good, latest, now, run.rules.forward)
         qrows, resolve = _quarantine_delta(conn, store, source, raw.label, checked.quarantine)
         task = bar.task(f"{source.name}: {Path(raw.label).name}", len(new) + len(qrows),
