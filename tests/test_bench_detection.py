@@ -1,0 +1,99 @@
+"""Size and power claims of benchmarks/bench_detection.py, small and seeded, through the same scenario code.
+
+Invented scenarios (see the benchmark's docstring). A rate is checked with a one-sided exact binomial test
+at 1 %: a false-alarm share is rejected only when it is significantly above its bound, a detection rate
+only when it is significantly below its target (common practice, no source), so the tests hold for any
+seed while the benchmark's figures stay the measured ones.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import stats
+
+_PATH = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_detection.py"
+
+
+def _bench():
+    name = "bench_detection"
+    if name not in sys.modules:
+        spec = importlib.util.spec_from_file_location(name, _PATH)
+        assert spec is not None and spec.loader is not None
+        mod = importlib.util.module_from_spec(spec)
+        sys.modules[name] = mod
+        spec.loader.exec_module(mod)
+    return sys.modules[name]
+
+
+def _not_above(k: int, n: int, p: float) -> bool:
+    return stats.binomtest(k, n, p, alternative="greater").pvalue > 0.01
+
+
+def _not_below(k: int, n: int, p: float) -> bool:
+    return stats.binomtest(k, n, p, alternative="less").pvalue > 0.01
+
+
+@pytest.mark.parametrize("frequency", ["weekly", "monthly"])
+def test_reference_page_cusum_holds_its_level(frequency: str) -> None:
+    # Under no change the standardised recursive residuals are iid N(0, sigma^2) (Brown, Durbin & Evans
+    # 1975), so the threshold simulated on iid normals with a chi-square scale must give 5 % on the full
+    # pipeline of invented models (estimated coefficients and scale, trend, season, two drivers).
+    b = _bench()
+    freq = b.FREQUENCIES[frequency]
+    d = b.simulate(b.SCENARIOS["iid"], 2000, freq)
+    first = b.page_reference(d["Y"], d["X"], freq.n_ref - 1)
+    k = int((first >= 0).sum())
+    assert _not_above(k, 2000, 0.05) and _not_below(k, 2000, 0.05), k
+
+
+def test_reference_page_cusum_detects_the_4_sigma_shift_within_days() -> None:
+    # the yardstick of issue 9: a plain Page CUSUM finds the 4-sigma promo shift within a few weeks
+    b = _bench()
+    freq = b.FREQUENCIES["weekly"]
+    d = b.simulate(b.SCENARIOS["promo-4s"], 300, freq, seed=8)
+    first = b.page_reference(d["Y"], d["X"], freq.n_ref - 1) + 1  # rows of Y start at period 1
+    delay = first[first >= freq.change] - freq.change
+    assert delay.size >= 0.95 * 300
+    assert np.median(delay) <= 3
+
+
+def test_scenarios_shape_and_changes() -> None:
+    # the invented scenarios are what the docstring says: the 4-sigma shift moves the target's mean by
+    # 1.2 x E[promo] = 12 = 4 x 3, the variance scenario doubles the error variance after the change
+    b = _bench()
+    freq = b.FREQUENCIES["weekly"]
+    base = b.simulate(b.SCENARIOS["iid"], 400, freq, seed=9)
+    assert base["y"].shape == (400, freq.n_ref + freq.n_mon)
+    assert base["promo"].mean() == pytest.approx(10.0, abs=0.1)
+    shifted = b.simulate(b.SCENARIOS["promo-4s"], 400, freq, seed=9)
+    after = slice(freq.change, None)
+    gap = (base["y"][:, after] - shifted["y"][:, after]).mean()
+    assert gap == pytest.approx(12.0, rel=0.02)
+    assert np.allclose(base["y"][:, : freq.change], shifted["y"][:, : freq.change])  # common random numbers
+    var = b.simulate(b.SCENARIOS["variance"], 400, freq, seed=9)
+    extra = (var["y"] - base["y"])[:, after]  # the errors scaled by sqrt(2) - 1
+    assert extra.std() == pytest.approx((np.sqrt(2) - 1) * 3.0, rel=0.02)
+
+
+@pytest.mark.slow
+def test_drift_size_and_power_on_the_scenarios() -> None:
+    # The check run as the CLI runs it (store, ingest, check) on 40 invented models per scenario:
+    # no change -> hard actions within the bound of issue 9 (5 % iid, 10 % with AR(1) errors and
+    # errors: ar(1)); the 4-sigma promo shift -> refit for >= 95 %, the 1.3-sigma one for >= 85 %.
+    b = _bench()
+    n = 40
+    res = b.run(["iid", "ar1", "promo-4s", "promo-1s"], n, "weekly", seed=11)
+    sc = res["scenarios"]
+    hard = {s: round(sc[s]["drift"]["hard"] * n) for s in sc}
+    assert all(sc[s]["drift"]["errors"] == 0 for s in sc)
+    assert _not_above(hard["iid"], n, 0.05), hard
+    assert _not_above(hard["ar1"], n, 0.10), hard
+    assert _not_below(hard["promo-4s"], n, 0.95), hard
+    assert _not_below(hard["promo-1s"], n, 0.85), hard
+    # the reference monitor of the same run holds its level
+    assert _not_above(round(sc["iid"]["reference"]["alarm"] * n), n, 0.05)
