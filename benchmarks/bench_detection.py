@@ -297,43 +297,80 @@ def run_drift(data: dict[str, dict[str, np.ndarray]], freq: Frequency) -> tuple[
 
 
 # ------------------------------------------------------------------------------------------------ figures
-def _row(first: np.ndarray, change: int | None) -> dict[str, Any]:
-    """Figures of one monitor from each model's first alarm row (-1: none)."""
-    n = len(first)
-    hit = first >= 0
+def _row(rows: list[list[int]], change: int | None) -> dict[str, Any]:
+    """Figures of one monitor from each model's alarm rows (an empty list: no alarm). Without a change:
+    the share with any alarm. With one: detected = an alarm at or after the change, delay = the first such
+    alarm's row minus the change row, early = an alarm dated before the change."""
+    n = len(rows)
+    alarm = float(np.mean([bool(r) for r in rows])) if n else 0.0
     if change is None:
-        return {"alarm": hit.mean(), "detect": None, "median": None, "p90": None, "early": None, "n": n}
-    late = hit & (first >= change)
-    delay = first[late] - change
-    return {"alarm": hit.mean(), "detect": late.mean(), "early": (hit & (first < change)).mean(),
+        return {"alarm": alarm, "detect": None, "median": None, "p90": None, "early": None, "n": n}
+    delay = np.array([min(x for x in r if x >= change) - change for r in rows if any(x >= change for x in r)])
+    return {"alarm": alarm, "detect": delay.size / max(n, 1),
+            "early": float(np.mean([any(x < change for x in r) for r in rows])) if n else 0.0,
             "median": float(np.median(delay)) if delay.size else None,
             "p90": float(np.quantile(delay, 0.9)) if delay.size else None, "n": n}
 
 
 def drift_figures(entries: list[dict[str, Any]], freq: Frequency, change: int | None
                   ) -> tuple[dict[str, Any], dict[str, dict[str, Any]]]:
-    """(model-level shares, per-monitor figures) from ``drift check --json`` entries of one scenario."""
+    """(model-level shares, per-monitor figures) from ``drift check --json`` entries of one scenario.
+    Monitors are keyed by ``alarms[].test`` (and the driver of an effect monitor); warnings are left out;
+    ``any`` pools every test's alarms."""
     periods = pd.date_range(freq.start, periods=freq.n_ref + freq.n_mon, freq=freq.step)
     index = {p.date().isoformat(): i for i, p in enumerate(periods)}
     n = len(entries)
     verdicts: dict[str, int] = {}
-    hard = 0
-    firsts: dict[str, np.ndarray] = {}
-    any_first = np.full(n, -1)
+    hard = refit = 0
+    rows: dict[str, list[list[int]]] = {"any": [[] for _ in range(n)]}
     for i, e in enumerate(entries):
         verdicts[e["verdict"]] = verdicts.get(e["verdict"], 0) + 1
         hard += any(a["action"] in HARD for a in e["actions"])
+        refit += any(a["action"] == "refit" for a in e["actions"])
         for a in e["alarms"]:
             if a.get("warning") or not a.get("date"):
                 continue
             key = a["test"] + (f" ({a['driver'].split('.')[-1]})" if a.get("driver") else "")
-            row = index[a["date"]]
-            arr = firsts.setdefault(key, np.full(n, -1))
-            arr[i] = row if arr[i] < 0 else min(arr[i], row)
-            any_first[i] = row if any_first[i] < 0 else min(any_first[i], row)
-    rows = {"any": _row(any_first, change)}
-    rows.update({k: _row(v, change) for k, v in sorted(firsts.items())})
-    return {"hard": hard / max(n, 1), "verdicts": verdicts, "n": n}, rows
+            rows.setdefault(key, [[] for _ in range(n)])[i].append(index[a["date"]])
+            rows["any"][i].append(index[a["date"]])
+    figures = {k: _row(rows[k], change) for k in ["any", *sorted(k for k in rows if k != "any")]}
+    return {"hard": hard / max(n, 1), "refit": refit / max(n, 1), "verdicts": verdicts, "n": n}, figures
+
+
+#: issue 9's targets: (scenario, figure, bound, "max" or "min"); "early" applies to every change scenario
+TARGETS = (
+    ("iid", "hard", 0.05, "max"),
+    ("ar1", "hard", 0.10, "max"),
+    ("promo-4s", "refit", 0.95, "min"),
+    ("promo-4s", "median", 3, "max"),
+    ("promo-1s", "refit", 0.85, "min"),
+    ("promo-1s", "median", 12, "max"),
+)
+#: alarms dated before the change: none beyond the nominal rate (5 %)
+EARLY_MAX = 0.05
+
+
+def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
+    """(what, measured, met) for each target whose scenario was run."""
+    out = []
+    sc = res["scenarios"]
+    unit = "weeks" if res["frequency"] == "weekly" else "months"
+    for name, fig, bound, kind in TARGETS:
+        if name not in sc:
+            continue
+        v = sc[name]["monitors"]["any"]["median"] if fig == "median" else sc[name]["drift"][fig]
+        shown = _num(v) + f" {unit}" if fig == "median" else _pct(v)
+        want = (f"{'<=' if kind == 'max' else '>='} "
+                + (f"{bound} {unit}" if fig == "median" else f"{100 * bound:.0f} %"))
+        ok = v is not None and (v <= bound if kind == "max" else v >= bound)
+        label = {"hard": "hard action", "refit": "refit", "median": "median delay (any alarm)"}[fig]
+        out.append((f"{name}: {label} {want}", shown, ok))
+    for name, r in sc.items():
+        if r["change"] is not None:
+            v = r["monitors"]["any"]["early"]
+            out.append((f"{name}: alarms dated before the change <= {100 * EARLY_MAX:.0f} %", _pct(v),
+                        v <= EARLY_MAX))
+    return out
 
 
 # ------------------------------------------------------------------------------------------------ run
@@ -355,10 +392,10 @@ def run(scenarios: list[str], n_models: int, frequency: str, seed: int = SEED) -
         summary["errors"] = len(errors)
         t0 = time.perf_counter()
         ref_first = page_reference(data[s]["Y"], data[s]["X"], freq.n_ref - 1, ar=bool(sc.ar))
-        ref_first = np.where(ref_first >= 0, ref_first + 1, -1)  # rows of Y start at period 1
+        ref_rows = [[int(f) + 1] if f >= 0 else [] for f in ref_first]  # rows of Y start at period 1
         timing[f"reference_{s}_s"] = time.perf_counter() - t0
         out["scenarios"][s] = {"what": sc.what, "change": change, "drift": summary, "monitors": rows,
-                               "reference": _row(ref_first, change)}
+                               "reference": _row(ref_rows, change)}
     return out
 
 
@@ -372,12 +409,13 @@ def _num(x: float | None) -> str:
 
 def markdown(res: dict[str, Any]) -> str:
     unit = "weeks" if res["frequency"] == "weekly" else "months"
-    lines = [f"| scenario ({res['models']} models, {res['frequency']}) | hard action | monitor | alarm | "
-             f"detected | median delay ({unit}) | p90 delay | dated before change |",
+    lines = [(f"| scenario ({res['models']} models, {res['frequency']}) | hard action | monitor | alarm | "
+              f"detected | median delay ({unit}) | p90 delay | dated before change |"),
              "|---|---:|---|---:|---:|---:|---:|---:|"]
     for s, r in res["scenarios"].items():
         head = f"{s}: {r['what']}"
-        hard = _pct(r["drift"]["hard"]) + (f" ({r['drift']['errors']} errors)" if r["drift"]["errors"] else "")
+        hard = (_pct(r["drift"]["hard"]) + f" (refit {_pct(r['drift']['refit'])})"
+                + (f" ({r['drift']['errors']} errors)" if r["drift"]["errors"] else ""))
         mons = [(k, v) for k, v in r["monitors"].items()] + [("reference Page CUSUM", r["reference"])]
         for j, (k, v) in enumerate(mons):
             lines.append(f"| {head if j == 0 else ''} | {hard if j == 0 else ''} | {k} | {_pct(v['alarm'])} | "
@@ -399,6 +437,9 @@ def main(argv: list[str] | None = None) -> None:
     res["machine"] = (f"{platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}, "
                       f"load {os.getloadavg()[0]:.1f}, {time.strftime('%Y-%m-%d %H:%M')}")
     print(markdown(res))
+    print()
+    for what, shown, ok in targets(res):
+        print(f"target {what}: {shown} {'met' if ok else 'NOT met'}")
     for s, r in res["scenarios"].items():
         print(f"{s}: verdicts {r['drift']['verdicts']}")
     print(f"ingest {res['timing']['ingest_s']:.1f} s, check {res['timing']['check_s']:.1f} s, "
