@@ -39,7 +39,7 @@ from drift.exceptions import SchemaVersionError, StoreError
 log = logging.getLogger(__name__)
 
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
 NO_ISSUE_KEY = "0001-01-01 00:00:00"
 
@@ -94,6 +94,10 @@ batches = sa.Table(
     sa.Column("claim", sa.String(64), unique=True),
     sa.Column("retracted_at", UTCDateTime),
     sa.Column("retract_note", sa.Text),
+    # size and modification time (ns) of the file when it was read: an unchanged file is recognised by
+    # them without reading it again (schema 5)
+    sa.Column("file_size", sa.BigInteger),
+    sa.Column("file_mtime_ns", sa.BigInteger),
 )
 
 observations = sa.Table(
@@ -548,8 +552,26 @@ class Store:
             row = conn.execute(sa.select(batches).where(batches.c.claim == claim)).first()
         return dict(row._mapping) if row is not None else None
 
+    def known_files(self, source: str, settings_hash: str) -> dict[tuple[str, int, int], dict[str, Any]]:
+        """The batches of a source that hold their claim under these settings and recorded their file's
+        size and modification time, keyed by (file, size, mtime_ns): one query per ingest of a source."""
+        b = batches
+        q = sa.select(b).where(b.c.source == source, b.c.settings_hash == settings_hash, b.c.claim.is_not(None),
+                               b.c.status == "ok", b.c.file_size.is_not(None), b.c.file_mtime_ns.is_not(None))
+        with self.connect() as conn:
+            rows = [dict(r._mapping) for r in conn.execute(q)]
+        return {(r["file"], int(r["file_size"]), int(r["file_mtime_ns"])): r for r in rows}
+
+    def note_file_stat(self, batch_id: int, size: int, mtime_ns: int) -> None:
+        """Record the size and modification time under which a batch's file was found unchanged (by its
+        content hash), so that the next ingest recognises it without reading it."""
+        with self.begin() as conn:
+            conn.execute(batches.update().where(batches.c.id == batch_id)
+                         .values(file_size=int(size), file_mtime_ns=int(mtime_ns)))
+
     def claim_batch(self, conn: Connection, *, source: str, file: str, content_hash: str, settings_hash: str,
-                    claim: str, started_at: datetime, reread: bool = False) -> int | None:
+                    claim: str, started_at: datetime, reread: bool = False, file_size: int | None = None,
+                    file_mtime_ns: int | None = None) -> int | None:
         """Start a batch in the open transaction ``conn`` by inserting its row with a unique ``claim``.
 
         Returns the batch id, or None when another batch holds the claim (this content was already stored
@@ -570,7 +592,7 @@ class Store:
         stmt = dialect_insert(batches).values(
             source=source, file=file, content_hash=content_hash, settings_hash=settings_hash, claim=claim,
             started_at=started_at, finished_at=None, stored=0, known=0, revised=0, quarantined=0,
-            status="running").on_conflict_do_nothing()
+            status="running", file_size=file_size, file_mtime_ns=file_mtime_ns).on_conflict_do_nothing()
         if conn.dialect.name == "postgresql":
             row = conn.execute(stmt.returning(batches.c.id)).first()
             return int(row[0]) if row is not None else None
@@ -945,9 +967,18 @@ def _migrate_3_to_4(conn: Connection, url: str) -> None:
         _add_column(conn, outbox, "recipients")
 
 
+def _migrate_4_to_5(conn: Connection, url: str) -> None:
+    """Schema 4 -> 5: ``batches.file_size`` and ``batches.file_mtime_ns`` (NULL on old rows: their files are
+    recognised by content hash once more, which records them)."""
+    have = {c["name"] for c in sa.inspect(conn).get_columns("batches")}
+    for name in ("file_size", "file_mtime_ns"):
+        if name not in have:
+            _add_column(conn, batches, name)
+
+
 #: schema migrations: from version -> step (each runs in the transaction of :func:`migrate`)
 MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3,
-                                                            3: _migrate_3_to_4}
+                                                            3: _migrate_3_to_4, 4: _migrate_4_to_5}
 
 
 def migrate(conn: Connection, url: str) -> int:

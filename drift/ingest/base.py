@@ -2,7 +2,9 @@
 
 A *batch* is one file (CSV, Parquet) or one query result (SQL). For each batch:
 
-1. the file is read once and hashed; a file whose content this source already stored with the same
+1. a file whose name, size and modification time match those recorded by the batch that stored it (with
+   the same parsing settings) is skipped without being read; otherwise it is read once and hashed; a file
+   whose content this source already stored with the same
    parsing settings (:func:`settings_hash`: the source's keys, the series' calendars and delays, the reader
    version), or stored and then retracted, is skipped without being parsed (its values are counted as
    known) - unless the ingest is a re-read (``reread``);
@@ -295,22 +297,39 @@ def _ingest(cfg: Config, run: _Run, source: SourceConfig) -> IngestSummary:
     log.info("ingesting source %s: %d file(s)", source.name, len(files))
     reader = READERS[source.kind]
     task = run.bar.task(f"{source.name}", len(files), show=len(files) >= PROGRESS_FILES)
+    # files stored before under these settings, by name, size and modification time: one query
+    seen = {} if run.reread else run.store.known_files(source.name, settings)
     for path in files:
         try:
+            st = _stat(path)
+            if st is not None and (str(path), *st) in seen:  # unchanged since it was stored: not even read
+                total = total + _skipped(source, str(path), seen[(str(path), *st)])
+                continue
             file = read_file(path)  # read once: hashed for the check below, then parsed
             if not run.reread:
                 held = run.store.find_claim(claim_key(source, file.digest, settings))
                 if held is not None:
+                    if st is not None and held["file"] == str(path) and held["status"] == "ok":
+                        run.store.note_file_stat(held["id"], *st)  # touched, same content: remember it
                     total = total + _skipped(source, str(path), held)
                     continue
             raw = reader(path, source, file)
-            total = total + _ingest_batch(run, source, raw, settings)
+            total = total + _ingest_batch(run, source, raw, settings, st)
         except InputError as exc:
             log.warning("source %s: %s", source.name, exc)
             total = total + _failed(source, str(path), exc)
         finally:
             run.bar.advance(task)
     return total
+
+
+def _stat(path: Path) -> tuple[int, int] | None:
+    """(size, modification time in ns) of a file, or None when it cannot be stat'ed (read_file says why)."""
+    try:
+        st = path.stat()
+    except OSError:
+        return None
+    return int(st.st_size), int(st.st_mtime_ns)
 
 
 def _skipped(source: SourceConfig, label: str, held: dict[str, Any]) -> IngestSummary:
@@ -353,7 +372,8 @@ def _as_utc(ts: pd.Timestamp) -> datetime:
 
 # ----------------------------------------------------------------------------------------- per batch
 
-def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str) -> IngestSummary:
+def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str,
+                  stat: tuple[int, int] | None = None) -> IngestSummary:
     """Validate a batch, then claim it and store it in one transaction (see the module docstring)."""
     t0 = time.monotonic()
     store, now, bar = run.store, run.now, run.bar
@@ -362,7 +382,8 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str)
     claim = claim_key(source, raw.content_hash, settings)
     with store.begin() as conn:
         batch_id = store.claim_batch(conn, source=source.name, file=raw.label, content_hash=raw.content_hash,
-                                     settings_hash=settings, claim=claim, started_at=now, reread=run.reread)
+                                     settings_hash=settings, claim=claim, started_at=now, reread=run.reread,
+                                     file_size=stat[0] if stat else None, file_mtime_ns=stat[1] if stat else None)
         if batch_id is None:
             log.info("source %s: %s was stored by another ingest running at the same time, skipped",
                      source.name, raw.label)

@@ -466,3 +466,55 @@ def test_sql_missing_period_column_reported(store, tmp_path):
     (s,) = ingest_all(make_config(tmp_path, [src]), store, now=NOW)
     assert s.failed_files == [("sql:q", s.failed_files[0][1])] and "no column 'day'" in s.failed_files[0][1]
     assert counts(store) == (0, 0, 0)
+
+
+# ------------------------------------------------------------------------------------------ unchanged files
+
+def test_unchanged_file_recognised_by_size_and_mtime_without_reading(store, tmp_path, monkeypatch):
+    # invented data; common practice, no source (a file's size and modification time as its fingerprint)
+    import os
+
+    import drift.ingest.base as base
+
+    path = write(tmp_path / "data.csv", "week,sales\n2024-01-01,1\n2024-01-08,2\n")
+    cfg = make_config(tmp_path, [csv_source()], [weekly_model("sales", [])])
+    (s,) = ingest_all(cfg, store, now=NOW)
+    assert (s.stored, s.skipped) == (2, 0)
+    reads: list[Path] = []
+    real = base.read_file
+    monkeypatch.setattr(base, "read_file", lambda p: reads.append(p) or real(p))
+    (s,) = ingest_all(cfg, store, now=LATER)
+    assert (s.stored, s.known, s.skipped, reads) == (0, 2, 1, [])  # not even read
+    # touched, same content: read and hashed once, skipped, and its new time remembered
+    st = path.stat()
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 5_000_000_000))
+    (s,) = ingest_all(cfg, store, now=LATER)
+    assert (s.stored, s.known, s.skipped, len(reads)) == (0, 2, 1, 1)
+    (s,) = ingest_all(cfg, store, now=LATER)
+    assert (s.skipped, len(reads)) == (1, 1)
+    # changed content (a revision) is read, and --reread reads an unchanged file again
+    write(path, "week,sales\n2024-01-01,1\n2024-01-08,3\n")
+    (s,) = ingest_all(cfg, store, now=LATER)
+    assert (s.revised, s.known, s.skipped, len(reads)) == (1, 1, 0, 2)
+    (s,) = ingest_all(cfg, store, now=LATER, reread=True)
+    assert (s.known, s.skipped, len(reads)) == (2, 0, 3)
+
+
+# common practice, no source: a store of schema 4 gains the file columns; its batches are recognised by
+# content hash once more, then by size and modification time
+def test_schema_4_store_gains_the_file_columns(tmp_path):
+    from drift.store import SCHEMA_VERSION, meta, open_store
+
+    url = f"sqlite:///{tmp_path / 'old.db'}"
+    store = open_store(url)
+    with store.begin() as conn:
+        conn.exec_driver_sql("ALTER TABLE batches DROP COLUMN file_size")
+        conn.exec_driver_sql("ALTER TABLE batches DROP COLUMN file_mtime_ns")
+        conn.execute(meta.update().where(meta.c.key == "schema_version").values(value="4"))
+    store.dispose()
+    store = open_store(url)
+    with store.connect() as conn:
+        cols = {c["name"] for c in sa.inspect(conn).get_columns("batches")}
+        version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar_one()
+    assert {"file_size", "file_mtime_ns"} <= cols and int(version) == SCHEMA_VERSION == 5
+    store.dispose()
