@@ -164,6 +164,36 @@ def _seasonal_naive(y: np.ndarray, s: float | None) -> np.ndarray:
     return out
 
 
+def _mase_scale(d: Design) -> dict[str, Any] | None:
+    """The MASE denominator: the mean absolute seasonal-naive error (one season back) over the reference
+    period, with the span and count it covers; None when it cannot be formed or is zero."""
+    base = _seasonal_naive(d.y, d.season_length)
+    err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
+    ok = np.flatnonzero(np.isfinite(err))
+    if ok.size == 0 or float(err[ok].mean()) <= 0:
+        return None
+    return {"mae": round(float(err[ok].mean()), 4), "n": int(ok.size),
+            "start": d.periods[int(ok[0])].date().isoformat(), "end": d.periods[int(ok[-1])].date().isoformat()}
+
+
+def _accuracy_block(d: Design, err: np.ndarray, mon: np.ndarray, window: int) -> dict[str, Any]:
+    """The as-deployed accuracy of one model: its one-step errors ``err`` and those of the seasonal-naive
+    baseline scored on the *same* periods (the last ``window`` rows of the monitored span ``mon`` where the
+    model has an error), MASE of both on one scale (:func:`_mase_scale`), and the window as used."""
+    base = _seasonal_naive(d.y, d.season_length)
+    e_model = np.where(mon, err, np.nan)[-window:]
+    scored = np.isfinite(e_model)
+    e_base = np.where(scored, (d.y - base)[-window:], np.nan)
+    scale = _mase_scale(d)
+    s = scale["mae"] if scale else None
+    rows = np.flatnonzero(scored) + (d.n - min(window, d.n))
+    return {"model": _accuracy(e_model, s), "baseline": _accuracy(e_base, s),
+            "window": int(min(window, int(mon.sum()))),
+            "start": d.periods[int(rows[0])].date().isoformat() if rows.size else None,
+            "end": d.periods[int(rows[-1])].date().isoformat() if rows.size else None,
+            "scale": scale}
+
+
 def _accuracy(err: np.ndarray, scale: float | None) -> dict[str, Any]:
     e = err[np.isfinite(err)]
     if e.size == 0:
@@ -495,16 +525,10 @@ def _screen(group: list[_Ctx]) -> None:
         fc = d.y - fe
         base = _seasonal_naive(d.y, d.season_length)
         mon_mask = np.arange(d.n) >= d.n_ref
-        actual = np.where(mon_mask, d.y, np.nan)
         c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
                                 "baseline": _list(np.where(mon_mask, base, np.nan))}
-        # MASE scale: in-sample mean absolute seasonal-naive error on the reference period
-        naive_err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
-        naive_err = naive_err[np.isfinite(naive_err)]
-        ref_scale = float(naive_err.mean()) if naive_err.size and naive_err.mean() > 0 else None
-        c.accuracy = {"model": _accuracy(np.where(mon_mask, d.y - fc, np.nan)[-chk.recent_window:], ref_scale),
-                      "baseline": _accuracy((actual - base)[-chk.recent_window:], ref_scale),
-                      "window": int(min(chk.recent_window, int(mon_mask.sum())))}
+        c.accuracy = _accuracy_block(d, fe, mon_mask, chk.recent_window)
+        ref_scale = (c.accuracy["scale"] or {}).get("mae")
         if c.model.horizon > 1:
             eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
             c.accuracy["h_step"] = {"horizon": c.model.horizon,
@@ -615,32 +639,67 @@ def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
 
 
 def _refit_action(c: _Ctx, alarm_idx: int) -> None:
-    """Date the break the monitors found and describe how the driver effects moved."""
-    d = c.design
+    """Date the break the monitors found, name the monitor that crossed and, separately, the driver whose
+    effect moved most (the smallest p-value of the change in the before/after regression).
+
+    The figures quoted are those put in the action (``monitor``, ``effects``, ``moved``) and in each
+    driver's ``break`` entry: one computation for the reason, the JSON and the tables.
+    """
+    d, m = c.design, c.model
     since = _date_break(c, alarm_idx)
     c.charts["break_index"] = since
-    parts: list[str] = []
+    since_s = d.periods[since].date().isoformat()
+    before_end = d.periods[since - 1].date().isoformat() if since > 0 else since_s
+    effects: list[dict[str, Any]] = []
     try:
         cols = list(d.driver_columns.values())
         if cols:
             sp = split_coefficients(c.y, c.X, since, cols)
-            for (s, j), b, a in zip(d.driver_columns.items(), sp.before, sp.after):
-                unit = next((dr.unit for dr in c.model.drivers if dr.series == s and dr.unit), None)
-                per = f" {c.model.unit} per {unit}" if unit else ""
-                if abs(a - b) > 1.96 * max(sp.se_after[cols.index(j)], 1e-12) or len(parts) == 0:
-                    parts.append(f"{s} effect {fmt_num(b)} → {fmt_num(a)}{per} ({change_words(b, a)})".replace(" ()", ""))
+            for k, s in enumerate(d.driver_columns):
+                effects.append({"driver": s, "before": _num(round(float(sp.before[k]), 6)),
+                                "after": _num(round(float(sp.after[k]), 6)),
+                                "se_before": _num(round(float(sp.se_before[k]), 6)),
+                                "se_after": _num(round(float(sp.se_after[k]), 6)),
+                                "pvalue_change": _num(sp.pvalue_diff[k]),
+                                "before_window": {"start": d.periods[0].date().isoformat(), "end": before_end,
+                                                  "n": int(sp.nobs_before)},
+                                "after_window": {"start": since_s, "end": d.periods[-1].date().isoformat(),
+                                                 "n": int(sp.nobs_after)}})
             c.charts["_split"] = sp
     except InsufficientDataError:
         pass
+    c.charts["_effects"] = {e["driver"]: e for e in effects}
     alarm = min((a for a in c.alarms if not a.get("warning") and a["test"].startswith("monitor-")),
                 key=lambda a: a["date"] or "9999")
-    since_s = d.periods[since].date().isoformat()
-    reason = (f"The relationship changed around {since_s}: " + ("; ".join(parts) + ". " if parts else "")
-              + f"{_test_words(alarm['test'], alarm.get('driver')).capitalize()} crossed its boundary on "
-              f"{alarm['date']} "
-              f"(false-alarm rate held at {c.cfg.check.level:.0%} over the monitoring horizon). "
-              f"Refit on data since {since_s}.")
-    c.actions.append(Action("refit", reason=reason, extra={"since": since_s}))
+    monitor = {k: alarm[k] for k in ("test", "driver", "date", "statistic", "level") if alarm.get(k) is not None}
+    ranked = [e for e in effects if e["pvalue_change"] is not None and e["before"] is not None
+              and e["after"] is not None]
+    moved = min(ranked, key=lambda e: e["pvalue_change"]) if ranked else None
+    level = c.cfg.check.level
+    text = (f"The relationship changed around {since_s}. "
+            f"{_sentence_start(_test_words(alarm['test'], alarm.get('driver')))} crossed its boundary on "
+            f"{alarm['date']} (false-alarm rate held at {level:.0%} over the monitoring horizon).")
+    if moved is not None:
+        unit = next((dr.unit for dr in m.drivers if dr.series == moved["driver"] and dr.unit), None)
+        per = f" {m.unit} per {unit}" if unit else ""
+        figures = (f"{fmt_num(moved['before'])} before {since_s} → {fmt_num(moved['after'])}{per} since "
+                   f"({change_words(moved['before'], moved['after'])}; p = {fmt_p(moved['pvalue_change'])} "
+                   f"for no change)")
+        if moved["pvalue_change"] < level:
+            text += f" The driver effect that moved most: {moved['driver']}, {figures}."
+        else:
+            text += (f" No single driver's effect moved significantly (the most: {moved['driver']}, {figures}): "
+                     f"the level or several coefficients shifted together.")
+    text += f" Refit on data since {since_s}."
+    c.actions.append(Action("refit", reason=text, extra={
+        "since": since_s, "monitor": monitor, "moved": moved["driver"] if moved is not None else None,
+        "effects": effects}))
+
+
+def _sentence_start(text: str) -> str:
+    """``text`` with its first letter capitalised and the rest left alone (``str.capitalize`` would turn
+    "recursive-CUSUM" into "recursive-cusum")."""
+    return text[:1].upper() + text[1:]
 
 
 def _test_words(name: str, driver: str | None = None) -> str:
@@ -709,11 +768,11 @@ def _deployed_replay(c: _Ctx) -> None:
         e = as_deployed_errors(m, d.y, d.X, b)
     if "forecast" in c.charts:
         c.charts["forecast"]["forecast"] = _list(np.where(mon, d.y - e, np.nan))
-    base = _seasonal_naive(d.y, d.season_length)
-    naive_err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
-    naive_err = naive_err[np.isfinite(naive_err)]
-    ref_scale = float(naive_err.mean()) if naive_err.size and naive_err.mean() > 0 else None
-    c.accuracy["model"] = _accuracy(np.where(mon, e, np.nan)[-chk.recent_window:], ref_scale)
+    h_step = c.accuracy.get("h_step")
+    c.accuracy = _accuracy_block(d, e, mon, chk.recent_window)
+    if h_step is not None:
+        c.accuracy["h_step"] = h_step
+    ref_scale = (c.accuracy["scale"] or {}).get("mae")
     if m.horizon > 1 and b is not None and logged is None:
         eh = h_step_errors(c.cfg, m, c.obs, c.as_of, d, np.tile(b, (d.n, 1)), m.horizon)
         c.accuracy["h_step"] = {"horizon": m.horizon,
@@ -917,7 +976,8 @@ def _freshness(c: _Ctx) -> None:
                 reason += f" It has been missing for more than {limit} periods."
             c.actions.append(Action("data-late", reason=reason,
                                     extra={"driver": s, "last_period": lp.date().isoformat(),
-                                           "missing_periods": int(missing)}))
+                                           "missing_periods": int(missing),
+                                           **({"feed_limit": limit} if missing > limit else {})}))
     c.charts["feeds"] = feeds
 
 
@@ -1001,6 +1061,11 @@ def _drivers_and_worth(c: _Ctx) -> None:
             if lastc is not None:
                 info["coef_recent"] = coefs["coef"][lastc]
                 info["ci_recent"] = [coefs["lower"][lastc], coefs["upper"][lastc]]
+                w = int(coefs.get("window") or window)
+                info["recent_window"] = {"start": d.periods[max(0, lastc - w + 1)].date().isoformat(),
+                                         "end": d.periods[lastc].date().isoformat(), "n": w}
+        if s in c.charts.get("_effects", {}):
+            info["break"] = c.charts["_effects"][s]  # the refit's before/after figures (same object)
         feed = c.charts.get("feeds", {}).get(s, {})
         info["last_period"] = last.get(s)
         info["next_due"] = feed.get("next_due")
@@ -1200,7 +1265,7 @@ def _payload(c: _Ctx) -> dict[str, Any]:
 
 # ------------------------------------------------------------------------------------------------ run
 def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: list[str] | None = None,
-              deliver: bool = True) -> CheckOutcome:
+              deliver: bool = True, record: bool = True) -> CheckOutcome:
     """Check the models as of a date (default: today, UTC), save verdicts, process alerts and deliver.
 
     A model that cannot be checked does not stop the run: it gets an error entry (``outcome.errors`` and
@@ -1210,11 +1275,13 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
     Raises
     ------
     ConfigError : an unknown model name.
+
+    ``record=False`` (``drift report``) only reads: no run row, no verdicts, no alerts (``run_id`` None).
     """
     day = as_of or datetime.now(timezone.utc).date()
     moment = as_of_moment(day)
     written = [cfg.model(n) for n in dict.fromkeys(models)] if models else list(cfg.models)
-    run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in written]})
+    run_id = store.start_run("check", as_of=day, detail={"models": [m.name for m in written]}) if record else None
     try:
         # each model as its monitoring epoch in force at the check date says (drift.epochs): the YAML, or
         # the reference period, lags and drivers a decision (drift accept) set since
@@ -1236,6 +1303,8 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
                                order=[m.name for m in chosen])
         # a model that could not be checked gets its error as its newest verdict (the digest and status
         # read the newest verdicts; an earlier check's verdict must not stand in for this one)
+        if not record:
+            return outcome
         store.save_verdicts(run_id, day, [*payloads, *failed])
         if deliver:
             _alerts_and_delivery(cfg, store, outcome)
@@ -1250,7 +1319,8 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
             store.finish_run(run_id, "ok", detail=detail)
         return outcome
     except BaseException as exc:
-        store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
+        if record:
+            store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
 
 

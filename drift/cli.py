@@ -296,6 +296,31 @@ def digest(config: str, since: str | None, send: bool) -> None:
 
 
 @cli.command()
+@config_opt
+@click.option("--model", "models", multiple=True, help="Only this model (repeatable).")
+@click.option("--as-of", "as_of", default=None, help="Check as the data stood at the end of this day (YYYY-MM-DD).")
+@click.option("--out", default="drift-report", show_default=True, type=click.Path(file_okay=False),
+              help="Folder for report.md, report.html and the charts.")
+def report(config: str, models: tuple[str, ...], as_of: str | None, out: str) -> None:
+    """Write the check report (Markdown, HTML and charts) for the models of a config; records nothing."""
+    day = _day(as_of, "--as-of")
+
+    def go() -> None:
+        from drift.pipeline import run_check
+        from drift.report import write_report
+
+        with _opened(config, need=("models",)) as (cfg, store):
+            outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=False, record=False)
+            md, html = write_report(cfg, store, outcome, Path(out))
+        click.echo(f"report: {md}")
+        click.echo(f"report (HTML): {html}")
+        if outcome.errors:
+            sys.exit(EXIT_UNCHECKED)
+
+    _run(go)
+
+
+@cli.command()
 @click.option("--out", default="drift-demo", show_default=True, type=click.Path(file_okay=False),
               help="Folder for the demo's data, store and report.")
 def demo(out: str) -> None:

@@ -1,106 +1,116 @@
-"""A readable report of one check run: Markdown with PNG charts beside it, and a self-contained HTML page.
+"""A readable report of one check: Markdown with PNG charts beside it, and a self-contained HTML page, both
+rendered from one template (``templates/report.j2``) with the same content; used by ``drift demo`` and
+``drift report``.
 
 Also the plain-text table that ``drift check`` prints without ``--json``.
 """
 
 from __future__ import annotations
 
-import html as _html
 import logging
+import re
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import jinja2
+from markupsafe import Markup
+
 from drift.check import CheckOutcome
 from drift.config import Config
-from drift.verdicts import ERROR, headline, label
+from drift.delivery.present import Table, accuracy_text, context_line, driver_table, tests_table
+from drift.verdicts import ERROR, KEEP, accuracy_short, fmt_p, headline, label
 
 log = logging.getLogger(__name__)
 
 FOOTER = ("These verdicts are statistical evidence, not certainty. Each one says what the data show and how "
           "strongly; whether to refit, re-lag or drop a driver stays with the people accountable for the model.")
 
+_TEMPLATES = Path(__file__).resolve().parent / "templates"
 
 
-def _charts(payload: dict[str, Any]) -> dict[str, bytes]:
+def _md_cell(value: Any) -> str:
+    """A Markdown table cell: a pipe would end the cell, a newline the row."""
+    return str(value).replace("|", "\\|").replace("\n", " ")
+
+
+_env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(_TEMPLATES)), autoescape=True,
+                          undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True,
+                          keep_trailing_newline=True)
+_env.filters["cell"] = _md_cell
+
+
+def _chart_set(payload: Mapping[str, Any]) -> Any:
+    from drift.delivery.charts import ChartSet, render_model_chart_set
+
     try:
-        from drift.delivery.charts import render_model_charts
-    except ImportError:  # pragma: no cover - charts module always ships
-        return {}
-    try:
-        return render_model_charts(payload)
+        return render_model_chart_set(payload)
     except Exception as exc:  # noqa: BLE001 - a chart must never sink the report
         log.warning("charts for %s failed: %s", payload.get("name"), exc)
-        return {}
+        return ChartSet(images={}, notes={"charts": f"no charts: {exc}"})
+
+
+def _safe(name: str) -> str:
+    return "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)
+
+
+def _section(m: Mapping[str, Any], i: int, folder: Path) -> dict[str, Any]:
+    from drift.delivery.charts import data_uri
+
+    name = str(m.get("name"))
+    actions = [{"label": label(a.get("action")), "severity": a.get("severity", "act"), "reason": a.get("reason", "")}
+               for a in m.get("actions") or []]
+    if m.get("verdict") == ERROR:
+        actions = [{"label": label(ERROR), "severity": "act", "reason": m.get("reason") or "no reason recorded"}]
+    elif not actions:
+        actions = [{"label": label(KEEP), "severity": "",
+                    "reason": "the monitors found no change and every feed is on time."}]
+    images, notes = [], []
+    if m.get("verdict") != ERROR:
+        cs = _chart_set(m)
+        for kind, png in cs.images.items():
+            fname = f"{i:02d}-{_safe(name)}-{kind}.png"
+            (folder / fname).write_bytes(png)
+            alt = f"{kind.replace('_', ' ')} chart for {name}"
+            images.append({"file": fname, "src": Markup(data_uri(png)), "alt": alt})
+        notes = [f"{kind.replace('_', ' ')} chart: {why}" for kind, why in cs.notes.items()]
+    return {"name": name, "anchor": f"model-{i}", "headline": headline(m.get("verdict")),
+            "context": context_line(m), "actions": actions, "drivers": driver_table(m),
+            "accuracy": accuracy_text(m), "tests": tests_table(m), "images": images, "notes": notes}
 
 
 def write_report(cfg: Config, store: Any, outcome: CheckOutcome, folder: Path) -> tuple[Path, Path]:
-    """Write ``report.md`` (+ PNG charts) and ``report.html`` into ``folder``; return both paths."""
-    import base64
+    """Write ``report.md`` (+ PNG charts) and ``report.html`` into ``folder``; return both paths.
 
+    Both come from one template with the same content: the overview table, per model its actions, driver
+    table, accuracy, tests and charts (a chart that could not be drawn is named with the reason).
+    """
+    folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    md = [f"# drift check as of {outcome.as_of.isoformat()}", ""]
-    need = [m for m in outcome.models if m["verdict"] != "keep"]
-    md.append(f"{len(outcome.models)} models checked; {len(need)} need attention.")
-    md.append("")
-    md.append("| model | verdict | actions |")
-    md.append("|---|---|---|")
-    for m in outcome.models:
-        acts = ", ".join(label(a["action"]) + (f" ({a['driver']})" if a.get("driver") else "") for a in m["actions"])
-        md.append(f"| {m['name']} | {label(m['verdict'])} | {acts or '—'} |")
-    for name, err in outcome.errors.items():
-        md.append(f"| {name} | {label(ERROR)} | {err} |")
-    md.append("")
-    html_parts = []
-    for m in outcome.models:
-        md.append(f"## {m['name']}: {label(m['verdict'])}")
-        md.append("")
-        md.append(f"Target `{m['target']}` ({m['unit']}), reference {m['reference']['start']} to "
-                  f"{m['reference']['end']}, monitored since {m['monitor_start']}, data up to {m['last_period']}.")
-        md.append("")
-        for a in m["actions"]:
-            md.append(f"- **{label(a['action'])}** ({a['severity']}): {a['reason']}")
-        if not m["actions"]:
-            md.append("- No action: the monitors found no change and every feed is on time.")
-        md.append("")
-        if m["drivers"]:
-            md.append("| driver | lag | form | coef. reference | coef. recent (95% interval) | worth (Clark–West p) |")
-            md.append("|---|---|---|---|---|---|")
-            for d in m["drivers"]:
-                ci = d.get("ci_recent") or [None, None]
-                w = d.get("worth") or {}
-                md.append(f"| {d['series']} | {d['lag']} | {d['form']} | {_n(d.get('coef_reference'))} | "
-                          f"{_n(d.get('coef_recent'))} [{_n(ci[0])}, {_n(ci[1])}] | {_n(w.get('pvalue'))} |")
-            md.append("")
-        acc = m.get("accuracy", {})
-        if acc.get("model", {}).get("mae") is not None:
-            md.append(f"As-deployed one-step accuracy over the last {acc.get('window')} periods: MAE "
-                      f"{_n(acc['model']['mae'])}, RMSE {_n(acc['model']['rmse'])}, MASE {_n(acc['model']['mase'])}, "
-                      f"bias {_n(acc['model']['bias'])} (seasonal-naive baseline MAE {_n(acc['baseline'].get('mae'))}).")
-            md.append("")
-        charts = _charts(m)
-        imgs = []
-        for kind, png in charts.items():
-            fname = f"{_safe(m['name'])}-{kind}.png"
-            (folder / fname).write_bytes(png)
-            md.append(f"![{kind} chart for {m['name']}]({fname})")
-            imgs.append(f'<img alt="{_html.escape(kind)} chart for {_html.escape(m["name"])}" '
-                        f'src="data:image/png;base64,{base64.b64encode(png).decode()}" style="max-width:100%">')
-        md.append("")
-        acts_html = "".join(f"<li><b>{_html.escape(a['action'])}</b>: {_html.escape(a['reason'])}</li>"
-                            for a in m["actions"]) or "<li>No action.</li>"
-        html_parts.append(f"<section><h2>{_html.escape(m['name'])}: {_html.escape(label(m['verdict']))}"
-                          f"</h2><ul>{acts_html}</ul>{''.join(imgs)}</section>")
-    md.append("---")
-    md.append(FOOTER)
-    md_path = folder / "report.md"
-    md_path.write_text("\n".join(md) + "\n", encoding="utf-8")
-    html_path = folder / "report.html"
-    html_path.write_text(
-        "<!doctype html><html><head><meta charset='utf-8'><title>drift check "
-        f"{outcome.as_of.isoformat()}</title><style>body{{font-family:sans-serif;max-width:960px;margin:auto;"
-        "padding:1em;color:#1d2433}} section{{border-top:1px solid #ccd;margin-top:1.5em}}</style></head><body>"
-        f"<h1>drift check as of {outcome.as_of.isoformat()}</h1>{''.join(html_parts)}"
-        f"<footer><p><small>{_html.escape(FOOTER)}</small></p></footer></body></html>", encoding="utf-8")
+    for old in folder.glob("*.png"):
+        old.unlink()
+    entries = outcome.entries()
+    need = [m for m in entries if m["verdict"] != KEEP]
+    summary = (f"{len(entries)} model{'s' if len(entries) != 1 else ''} asked for; "
+               f"{len(entries) - len(outcome.errors)} checked; {len(need)} need attention.")
+    overview = Table(caption="", headers=("model", "verdict", "actions", "accuracy"), rows=tuple(
+        (str(m["name"]), label(m["verdict"]),
+         ", ".join(label(a["action"]) + (f" ({a['driver']})" if a.get("driver") else "")
+                   for a in m.get("actions") or []) or "—",
+         accuracy_short(m.get("accuracy")) or "—") for m in entries))
+    sections = [_section(m, i, folder) for i, m in enumerate(entries)]
+    ctx = {"title": f"drift check as of {outcome.as_of.isoformat()}", "summary": summary, "overview": overview,
+           "sections": sections, "footer": FOOTER}
+    tpl = _env.get_template("report.j2")
+    md = tpl.render(fmt="md", **ctx)
+    # quotes need no escaping in Markdown (< > & stay escaped: the file may be shown as HTML)
+    # ('<' stays escaped before anything that could start a tag; "< 0.005" and '>' cannot start one)
+    md = md.replace("&#39;", "'").replace("&#34;", '"').replace("&gt;", ">").replace("&lt; ", "< ")
+    md = re.sub(r"\n{3,}", "\n\n", md).lstrip("\n")
+    html = tpl.render(fmt="html", **ctx)
+    md_path, html_path = folder / "report.md", folder / "report.html"
+    md_path.write_text(md, encoding="utf-8")
+    html_path.write_text(html, encoding="utf-8")
     return md_path, html_path
 
 
@@ -108,10 +118,6 @@ def _n(x: Any) -> str:
     from drift.verdicts import fmt_num
 
     return "—" if x is None else fmt_num(float(x))
-
-
-def _safe(name: str) -> str:
-    return "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)
 
 
 def format_table(outcome: CheckOutcome) -> str:
@@ -124,10 +130,16 @@ def format_table(outcome: CheckOutcome) -> str:
         for a in m["actions"]:
             lines.append(f"  - {label(a['action'])}: {a['reason']}")
         for d in m["drivers"]:
-            lines.append(f"    {d['series']:<28} lag {d['lag']}  coef ref {_n(d.get('coef_reference')):>8}  "
-                         f"recent {_n(d.get('coef_recent')):>8}")
+            rw = d.get("recent_window") or {}
+            brk = d.get("break") or {}
+            lines.append(f"    {d['series']:<28} lag {d['lag']}  coef reference fit {_n(d.get('coef_reference')):>8}  "
+                         f"last {rw.get('n', '?')} periods {_n(d.get('coef_recent')):>8}"
+                         + (f"  before/since {brk.get('after_window', {}).get('start')} {_n(brk.get('before'))} / "
+                            f"{_n(brk.get('after'))}" if brk else ""))
+        if accuracy_text(m):
+            lines.append(f"    {accuracy_text(m)}")
         for t in m["tests"]:
-            lines.append(f"    {t['test']:<16} stat {_n(t.get('statistic')):>8}  p {_n(t.get('pvalue')):>8}"
+            lines.append(f"    {t['test']:<16} stat {_n(t.get('statistic')):>8}  p {fmt_p(t.get('pvalue'), t.get('test')):>8}"
                          + (f"  signalled {t['date']}" if t.get("date") else ""))
     for name, err in outcome.errors.items():
         lines.append("")

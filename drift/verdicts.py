@@ -45,6 +45,7 @@ stale difference as a gain), and every other lag would look better than the curr
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -196,3 +197,51 @@ def window_words(used: int, window: int) -> str:
     if used >= window:
         return f"the last {window} period{'s' if window != 1 else ''}"
     return f"{used} of the last {window} periods"
+
+
+def _window_of(acc: Mapping[str, Any], n: int | None) -> str:
+    window = acc.get("window")
+    if not isinstance(window, int) or window <= 0:
+        return f"{n} periods" if n is not None else "the recent periods"
+    return window_words(int(n if n is not None else window), window)
+
+
+def accuracy_sentence(acc: Mapping[str, Any] | None, unit: str | None = None) -> str:
+    """The accuracy block of a payload in one paragraph: the window as used (periods scored, first and last),
+    the model's MAE, RMSE and bias, the seasonal-naive baseline's MAE on the same periods, and the MASE of
+    both on the one scale it says (the reference period's seasonal-naive MAE). "" without figures."""
+    if not isinstance(acc, Mapping):
+        return ""
+    m = acc.get("model") if isinstance(acc.get("model"), Mapping) else {}
+    b = acc.get("baseline") if isinstance(acc.get("baseline"), Mapping) else {}
+    if not m or m.get("mae") is None:
+        return ""
+    u = f" {unit}" if unit else ""
+    span = f" ({acc['start']} to {acc['end']})" if acc.get("start") and acc.get("end") else ""
+    out = (f"One-step as-deployed accuracy over {_window_of(acc, m.get('n'))}{span}: MAE {fmt_num(m.get('mae'))}"
+           f"{u}, RMSE {fmt_num(m.get('rmse'))}, bias {fmt_num(m.get('bias'))}.")
+    if b.get("mae") is not None:
+        out += f" A seasonal-naive forecast on the same periods: MAE {fmt_num(b.get('mae'))}{u}."
+    scale = acc.get("scale") if isinstance(acc.get("scale"), Mapping) else None
+    if m.get("mase") is not None:
+        vs = f" vs {fmt_num(b.get('mase'))} for the seasonal-naive forecast" if b.get("mase") is not None else ""
+        on = (f" (each MAE divided by the seasonal-naive MAE of the reference period, {fmt_num(scale['mae'])}{u})"
+              if scale and scale.get("mae") is not None else " (MAE divided by the reference period's "
+              "seasonal-naive MAE)")
+        out += f" MASE {fmt_num(m.get('mase'))}{vs}{on}."
+    return out
+
+
+def accuracy_short(acc: Mapping[str, Any] | None) -> str:
+    """A table cell: ``MASE 1.46 vs 1.57 seasonal naive (52 of 52)``; MAE when there is no MASE."""
+    if not isinstance(acc, Mapping):
+        return ""
+    m = acc.get("model") if isinstance(acc.get("model"), Mapping) else {}
+    b = acc.get("baseline") if isinstance(acc.get("baseline"), Mapping) else {}
+    key, name = ("mase", "MASE") if m.get("mase") is not None else ("mae", "MAE")
+    if m.get(key) is None:
+        return ""
+    out = f"{name} {fmt_num(m.get(key))}"
+    if b.get(key) is not None:
+        out += f" vs {fmt_num(b.get(key))} seasonal naive"
+    return out + f" ({_window_of(acc, m.get('n'))})"

@@ -47,8 +47,9 @@ import sqlalchemy as sa
 
 from drift.config import Config
 from drift.delivery import charts as _charts
+from drift.delivery.present import accuracy_text, driver_table
 from drift.store import Store, alert_snoozes, alerts, outbox, runs, utcnow, verdicts
-from drift.verdicts import LABEL, ORDER
+from drift.verdicts import LABEL, ORDER, accuracy_short, fmt_num, fmt_p, label
 
 log = logging.getLogger(__name__)
 
@@ -202,6 +203,7 @@ def _rank(verdict: str | None) -> int:
 
 
 def _num(x: Any, digits: int = DIGITS) -> str:
+    """A figure as the reasons print it (:func:`drift.verdicts.fmt_num`), "–" for none."""
     if isinstance(x, (jinja2.Undefined, bool)):
         return "–"
     try:
@@ -210,7 +212,7 @@ def _num(x: Any, digits: int = DIGITS) -> str:
         return "–"
     if not math.isfinite(v):
         return "–"
-    return f"{v:.{digits}g}"
+    return fmt_num(v, digits)
 
 
 def _aware(now: datetime | None) -> datetime:
@@ -273,30 +275,19 @@ def _evidence(payload: Mapping[str, Any]) -> str:
              if isinstance(t, Mapping) and isinstance(t.get("pvalue"), (int, float)) and math.isfinite(t["pvalue"])]
     if tests:
         t = min(tests, key=lambda t: t["pvalue"])
-        return f"smallest p-value: {t.get('test', 'test')} {_num(t['pvalue'], 2)}"
+        return f"smallest p-value: {t.get('test', 'test')} {fmt_p(t['pvalue'], t.get('test'))}"
     return ""
 
 
 def _accuracy(payload: Mapping[str, Any]) -> str:
-    acc = payload.get("accuracy") or {}
-    if not isinstance(acc, Mapping):
-        return ""
-    got_m, got_b = acc.get("model"), acc.get("baseline")
-    m: Mapping[str, Any] = got_m if isinstance(got_m, Mapping) else {}
-    b: Mapping[str, Any] = got_b if isinstance(got_b, Mapping) else {}
-    if m.get("mase") is not None:
-        out = f"MASE {_num(m.get('mase'))}"
-        if b.get("mase") is not None:
-            out += f" vs {_num(b.get('mase'))} baseline"
-    elif m.get("mae") is not None:
-        out = f"MAE {_num(m.get('mae'))}"
-        if b.get("mae") is not None:
-            out += f" vs {_num(b.get('mae'))} baseline"
-    else:
-        return ""
-    if m.get("n") is not None:
-        out += f" (n={m.get('n')})"
-    return out
+    acc = payload.get("accuracy")
+    return accuracy_short(acc) if isinstance(acc, Mapping) else ""
+
+
+def condition_words(condition: str) -> str:
+    """An alert's condition key in the vocabulary's words: ``data-late:x1`` -> ``data late: x1``."""
+    code, _, rest = str(condition).partition(":")
+    return label(code) + (f": {rest}" if rest else "")
 
 
 def _late(payload: Mapping[str, Any]) -> tuple[str, ...]:
@@ -476,7 +467,8 @@ def _sections(lines: Sequence[ModelLine], changed: Sequence[Change]) -> tuple[li
             images = [{"kind": k, "src": _charts.data_uri(png), "alt": f"{m.name}: {k.replace('_', ' ')} chart"}
                       for k, png in cs.images.items()]
             notes = list(cs.notes.values())
-        out.append({"m": m, "images": images, "notes": notes,
+        out.append({"m": m, "images": images, "notes": notes, "driver_table": driver_table(m.payload),
+                    "accuracy_text": accuracy_text(m.payload),
                     "drivers": [d for d in m.payload.get("drivers") or [] if isinstance(d, Mapping)],
                     "alarms": [a for a in m.payload.get("alarms") or [] if isinstance(a, Mapping)],
                     "accuracy": m.payload.get("accuracy") if isinstance(m.payload.get("accuracy"), Mapping) else {},
@@ -504,7 +496,7 @@ def _render(cfg: Config, day: date, now: datetime, lines: Sequence[ModelLine], c
         "headline": headline, "counts": counts, "n": n, "compared": compared, "changed": changed,
         "open_alerts": open_alerts, "models": lines, "sections": sections, "uncharted": uncharted,
         "anchors": anchors, "footer": FOOTER, "verdict_words": VERDICT_WORDS, "state_words": STATE_WORDS,
-        "num": _num, "subject": subject, "all_sections": n <= ALL_SECTIONS_MAX,
+        "num": _num, "subject": subject, "condition_words": condition_words, "all_sections": n <= ALL_SECTIONS_MAX,
     }
     html = _html_env.get_template("digest.html.j2").render(**ctx)
     text = _text_env.get_template("digest.txt.j2").render(**ctx)

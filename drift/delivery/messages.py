@@ -25,6 +25,8 @@ from typing import Any
 
 import jinja2
 
+from drift.verdicts import accuracy_sentence, fmt_num, fmt_p
+
 #: the footer of every message (plain words; also used by the folder pages)
 FOOTER = ("This is statistical evidence, not certainty: whether to refit, re-lag or drop anything "
           "is the model owner's decision.")
@@ -38,8 +40,6 @@ CHART_KINDS: dict[str, tuple[str, ...]] = {
     "watch": ("cusum", "forecast"),
 }
 
-#: number of significant digits shown for statistics and coefficients
-_DIGITS = 4
 #: at most this many test results are listed per message (the payload may carry many)
 _MAX_TESTS = 8
 
@@ -67,7 +67,7 @@ class RenderedMessage:
 
 
 def fmt(value: Any) -> str:
-    """A number or date for people: ``None``/NaN -> ``n/a``, floats to 4 significant digits."""
+    """A number or date for people: ``None``/NaN -> ``n/a``, floats as in the reasons (:func:`fmt_num`)."""
     if value is None:
         return "n/a"
     if isinstance(value, bool):
@@ -75,7 +75,7 @@ def fmt(value: Any) -> str:
     if isinstance(value, float):
         if not math.isfinite(value):
             return "n/a"
-        return f"{value:.{_DIGITS}g}"
+        return fmt_num(value)  # the reasons' own format: a figure reads the same in both
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(fmt(v) for v in value) + "]"
     return str(value)
@@ -146,12 +146,26 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
     if action == "relag" and detail.get("lag") is not None:
         out.append(("Lag that fits best now", fmt(detail["lag"])))
     if drv.get("coef_reference") is not None or drv.get("coef_recent") is not None:
-        out.append(("Coefficient, reference period", fmt(drv.get("coef_reference"))))
+        ref = ctx.get("reference") if isinstance(ctx.get("reference"), Mapping) else {}
+        span = f" ({ref['start']} to {ref['end']})" if ref.get("start") and ref.get("end") else ""
+        out.append((f"Coefficient, reference period{span}", fmt(drv.get("coef_reference"))))
         recent = fmt(drv.get("coef_recent"))
         ci = drv.get("ci_recent")
         if isinstance(ci, (list, tuple)) and len(ci) == 2:
             recent += f" (interval {fmt(ci[0])} to {fmt(ci[1])})"
-        out.append(("Coefficient, recent window", recent))
+        rw = drv.get("recent_window") if isinstance(drv.get("recent_window"), Mapping) else {}
+        which = (f"last {rw['n']} periods ({rw.get('start')} to {rw.get('end')})" if rw.get("n")
+                 else "recent window")
+        out.append((f"Coefficient, {which}", recent))
+    for e in detail.get("effects") or [] if action == "refit" else []:
+        if not isinstance(e, Mapping) or e.get("driver") != detail.get("moved"):
+            continue
+        bw = e.get("before_window") or {}
+        aw = e.get("after_window") or {}
+        out.append((f"Effect of {fmt(e['driver'])} before the break ({bw.get('start')} to {bw.get('end')})",
+                    fmt(e.get("before"))))
+        out.append((f"Effect of {fmt(e['driver'])} since the break ({aw.get('start')} to {aw.get('end')})",
+                    fmt(e.get("after"))))
     if detail.get("last_period") is not None or (action == "data-late" and drv.get("last_period")):
         out.append(("Last period received", fmt(detail.get("last_period") or drv.get("last_period"))))
     if action == "data-late" and drv.get("next_due") is not None:
@@ -169,7 +183,7 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
             continue
         parts = [f"statistic {fmt(t.get('statistic'))}"]
         if t.get("pvalue") is not None:
-            parts.append(f"p-value {fmt(t.get('pvalue'))}")
+            parts.append(f"p-value {fmt_p(t.get('pvalue'), t.get('test'))}")
         if t.get("threshold") is not None:
             lvl = f" at level {fmt(t.get('level'))}" if t.get("level") is not None else ""
             parts.append(f"threshold {fmt(t.get('threshold'))}{lvl}")
@@ -177,13 +191,8 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
             parts.append(f"dated {fmt(t.get('date'))}")
         out.append((f"Test: {_test_label(t)}", ", ".join(parts)))
     acc = ctx.get("accuracy") or {}
-    model_acc, base_acc = acc.get("model") or {}, acc.get("baseline") or {}
-    for k, label in (("mae", "MAE"), ("rmse", "RMSE"), ("mase", "MASE"), ("bias", "Bias")):
-        if model_acc.get(k) is not None:
-            val = fmt(model_acc.get(k))
-            if base_acc.get(k) is not None:
-                val += f" (baseline {fmt(base_acc.get(k))})"
-            out.append((f"{label}, monitoring period", val))
+    if isinstance(acc, Mapping) and (acc.get("model") or {}).get("mae") is not None:
+        out.append(("Accuracy", accuracy_sentence(acc, ctx.get("unit"))))
     prev = notice.get("previous")
     if notice.get("event") == "worse" and isinstance(prev, Mapping):
         out.append(("Previously", _describe(prev)))

@@ -35,7 +35,8 @@ def test_script_in_model_name_is_escaped() -> None:
     (action("drop-driver", driver="k000_temp"), ["k000_temp", "0.5", "0.02", "-0.3 to 0.34"]),
     (action("relag", driver="k000_promo", lag=3), ["Lag that fits best now: 3", "Lag in the deployed model: 1"]),
     (action("data-late", driver="k000_temp", last_period="2025-11-24"), ["2025-11-24", "2025-12-01T00:00:00+00:00"]),
-    (action("watch", "watch"), ["MAE, monitoring period: 4.1 (baseline 4.5)"]),
+    (action("watch", "watch"), ["over 52 periods: MAE 4.1", "seasonal-naive forecast on the same periods: MAE 4.5",
+                                "MASE 0.8 vs 0.9 for the seasonal-naive forecast"]),
 ])
 def test_every_message_states_action_reason_numbers_as_of_footer(a: dict[str, Any], numbers: list[str]) -> None:
     p = payload("k000", [a])
@@ -77,7 +78,7 @@ def test_thin_notices_render(n: dict[str, Any]) -> None:
 
 
 def test_fmt() -> None:
-    assert fmt(None) == "n/a" and fmt(float("nan")) == "n/a" and fmt(1.23456) == "1.235" and fmt(3) == "3"
+    assert fmt(None) == "n/a" and fmt(float("nan")) == "n/a" and fmt(1.23456) == "1.23" and fmt(3) == "3"
     assert fmt([0.8, 1.6]) == "[0.8, 1.6]"
 
 

@@ -1,0 +1,214 @@
+"""What drift says matches what it found: every number in a reason is one of the payload's own figures,
+the report and the digest show those same figures, and each verdict is spelled one way.
+
+Scenarios: the demo (invented, drift/demo.py) and a second invented simulation (tests/check_scenarios.py)
+where one model has both a confirmed change and a late feed. The rule checked is the project's own
+("one number, one place"; common practice, no source).
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pytest
+
+from drift.check import CheckOutcome, analyse, as_of_moment
+from drift.delivery.digest import build_digest
+from drift.demo import run_demo
+from drift.report import format_table, write_report
+from drift.verdicts import LABEL, accuracy_sentence, fmt_num, fmt_p
+from tests.check_scenarios import N_REF, Scenario, config, known_by, observations, simulate
+
+#: a figure in running text: 2.08, -85.3, 1,234, 7.7e-09, 45% (dates and identifiers are cut out first)
+_NUMBER = re.compile(r"(?<![\w.-])-?\d[\d,]*(?:\.\d+)?(?:e[-+]\d+)?")
+_DATE = re.compile(r"\d{4}-\d{2}-\d{2}(?:[ T]\d{2}:\d{2}(?::\d{2})?)?")
+
+
+def _figures(obj: Any) -> Iterator[float]:
+    if isinstance(obj, bool):
+        return
+    if isinstance(obj, (int, float)):
+        yield float(obj)
+    elif isinstance(obj, Mapping):
+        for k, v in obj.items():
+            if k != "charts":
+                yield from _figures(v)
+    elif isinstance(obj, (list, tuple)):
+        for v in obj:
+            yield from _figures(v)
+
+
+def _printed(payload: Mapping[str, Any], cfg_level: float) -> set[str]:
+    """Every way the payload's own figures are printed (fmt_num, fmt_p, integers, percentages)."""
+    out = {"0", "1", "5", str(int(cfg_level * 100))}
+    for x in _figures(payload):
+        out.add(fmt_num(x))
+        out.add(fmt_p(x))
+        if float(x).is_integer():
+            out.add(str(int(x)))
+    return out
+
+
+def _numbers(text: str, name: str) -> list[str]:
+    text = _DATE.sub(" ", text).replace(name, " ")
+    text = re.sub(r"\b[A-Za-z_]+\d+\w*", " ", text)  # identifiers such as x1, web_orders_east
+    return [m.group(0).rstrip(".") for m in _NUMBER.finditer(text)]
+
+
+def _check_reasons(payload: Mapping[str, Any], level: float) -> None:
+    printed = _printed(payload, level)
+    for a in payload["actions"]:
+        for n in _numbers(a["reason"], payload["name"]):
+            if a["action"] == "refit" and re.search(rf"by about {re.escape(n)}%", a["reason"]):
+                moved = next(e for e in a["effects"] if e["driver"] == a["moved"])
+                pct = abs(moved["after"] - moved["before"]) / abs(moved["before"]) * 100
+                assert n == f"{pct:.0f}"
+                continue
+            assert n in printed, (payload["name"], a["action"], n, a["reason"])
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    return run_demo(tmp_path_factory.mktemp("demo"))
+
+
+@pytest.fixture(scope="module")
+def demo_json(demo: Any) -> dict[str, Any]:
+    from drift.config import load_config
+    from drift.pipeline import run_check
+    from drift.store import open_store
+
+    cfg = load_config(demo.config)
+    store = open_store(cfg.store_url())
+    try:
+        from drift.demo import AS_OF
+
+        out = run_check(cfg, store, as_of=AS_OF, record=False)
+    finally:
+        store.dispose()
+    return {m["name"]: m for m in out.models}
+
+
+def test_demo_every_number_in_a_reason_is_a_payload_figure(demo_json: dict[str, Any]) -> None:
+    for p in demo_json.values():
+        _check_reasons(p, 0.05)
+
+
+def test_demo_east_one_pair_of_numbers(demo: Any, demo_json: dict[str, Any]) -> None:
+    east = demo_json["east"]
+    (refit,) = [a for a in east["actions"] if a["action"] == "refit"]
+    moved = next(e for e in refit["effects"] if e["driver"] == refit["moved"])
+    assert refit["moved"] == "web_orders_east"
+    pair = f"{fmt_num(moved['before'])} before {refit['since']} → {fmt_num(moved['after'])}"
+    assert pair in refit["reason"]
+    # the driver entry carries the same figures, and the report's driver table shows them
+    drv = next(d for d in east["drivers"] if d["series"] == "web_orders_east")
+    assert (drv["break"]["before"], drv["break"]["after"]) == (moved["before"], moved["after"])
+    md = demo.report.read_text(encoding="utf-8")
+    row = next(line for line in md.splitlines() if line.startswith("| web_orders_east |"))
+    assert f"| {fmt_num(moved['before'])} | {fmt_num(moved['after'])} |" in row
+    assert f"effect before the break ({moved['before_window']['start']} to {moved['before_window']['end']})" in md
+    # the monitor named is the one that crossed first, the driver named is the one that moved most
+    assert refit["monitor"]["test"] == "monitor-cusum" and refit["monitor"]["date"] in refit["reason"]
+    first = min((a for a in east["alarms"] if a["test"].startswith("monitor-") and not a.get("warning")),
+                key=lambda a: a["date"])
+    assert (first["test"], first["date"]) == (refit["monitor"]["test"], refit["monitor"]["date"])
+    assert moved["pvalue_change"] == min(e["pvalue_change"] for e in refit["effects"])
+
+
+def test_demo_accuracy_is_one_window_and_one_scale(demo: Any, demo_json: dict[str, Any]) -> None:
+    md = demo.report.read_text(encoding="utf-8")
+    for name, p in demo_json.items():
+        acc = p["accuracy"]
+        m, b = acc["model"], acc["baseline"]
+        assert m["n"] == b["n"]  # the baseline scored on the model's periods
+        assert m["mase"] == pytest.approx(m["mae"] / acc["scale"]["mae"], abs=1e-4)
+        assert b["mase"] == pytest.approx(b["mae"] / acc["scale"]["mae"], abs=1e-4)
+        sentence = accuracy_sentence(acc, p["unit"])
+        assert sentence in md
+        used = "the last 52 periods" if m["n"] == 52 else f"{m['n']} of the last 52 periods"
+        assert f"over {used} ({acc['start']} to {acc['end']})" in sentence, name
+    # west lost its feed: its errors cover 48 of the 52 periods, and every output says so
+    assert demo_json["west"]["accuracy"]["model"]["n"] == 48
+    assert "48 of the last 52 periods" in md
+
+
+def test_demo_west_is_data_late_with_the_cost(demo_json: dict[str, Any]) -> None:
+    west = demo_json["west"]
+    assert west["verdict"] == "data-late"
+    assert [a["action"] for a in west["actions"]] == ["data-late"]
+    (late,) = west["actions"]
+    drv = next(d for d in west["drivers"] if d["series"] == "web_orders_west")
+    w = late["without"]
+    assert (w["mae_with"], w["mae_without"], w["n"]) == (drv["worth"]["mae_with"], drv["worth"]["mae_without"],
+                                                        drv["worth"]["n"])
+    assert f"from {fmt_num(w['mae_with'])} to {fmt_num(w['mae_without'])} parcels" in late["reason"]
+
+
+def test_demo_verdicts_spelled_one_way(demo: Any) -> None:
+    texts = {"report.md": demo.report.read_text(encoding="utf-8"),
+             "digest.txt": demo.digest.with_suffix(".txt").read_text(encoding="utf-8")}
+    html = demo.report_html.read_text(encoding="utf-8") + demo.digest.read_text(encoding="utf-8")
+    texts["html text"] = re.sub(r"<[^>]+>", " ", re.sub(r"<(style|script)[^>]*>.*?</\1>", " ", html, flags=re.DOTALL))
+    wrong = ["Data late", "data-late", "DATA LATE", "KEEP", "Keep", "REFIT", "Refit —", "NOT CHECKED",
+             "Re-lag", "Drop a driver", "no change found —"]
+    for where, text in texts.items():
+        for w in wrong:
+            assert w not in text, (where, w)
+    assert f"west — {LABEL['data-late']}" in texts["report.md"]
+
+
+# ------------------------------------------------------------------------------------- a second scenario
+def test_second_scenario_refit_heads_a_late_feed_and_numbers_agree(tmp_path: Path) -> None:
+    # invented scenario (simulation): the x1 effect falls from 2.0 to 0.5 at week 20 of monitoring, and
+    # the x1 feed stops two weeks before the check
+    cfg = config(tmp_path)
+    sc = Scenario(seed=321, n_mon=90, b1_after=0.5, change_at=N_REF + 20, stop_x1_after=N_REF + 90 - 3)
+    periods, values = simulate(sc)
+    obs = observations(periods, values)
+    day = (periods[-1] + pd.Timedelta(days=7)).date()
+    moment = as_of_moment(day)
+    payloads, errors = analyse(cfg, cfg.models, known_by(obs, moment), moment)
+    assert not errors
+    (p,) = payloads
+    assert p["verdict"] == "refit"
+    assert [a["action"] for a in p["actions"]][:2] == ["refit", "data-late"]
+    _check_reasons(p, cfg.check.level)
+    (refit,) = [a for a in p["actions"] if a["action"] == "refit"]
+    assert refit["moved"] == "x1"
+    json.dumps(p["actions"], allow_nan=False)
+    # the report and the terminal table show the refit first and the late feed beside it, same figures
+    out = CheckOutcome(run_id=None, as_of=day, models=[p], order=[p["name"]])
+    md, _html = write_report(cfg, None, out, tmp_path / "report")
+    text = md.read_text(encoding="utf-8")
+    assert "| sim | refit | refit, data late (x1) |" in text
+    moved = next(e for e in refit["effects"] if e["driver"] == "x1")
+    assert f"| {fmt_num(moved['before'])} | {fmt_num(moved['after'])} |" in text
+    assert accuracy_sentence(p["accuracy"], p["unit"]) in text
+    table = format_table(out)
+    assert table.index("  - refit:") < table.index("  - data late:")
+
+
+def test_digest_shows_the_late_feed_beside_the_refit(demo: Any) -> None:
+    text = demo.digest.with_suffix(".txt").read_text(encoding="utf-8")
+    assert "east: refit" in text and "west: data late" in text
+
+
+def test_build_digest_accuracy_uses_the_one_formatter(demo: Any) -> None:
+    from drift.config import load_config
+    from drift.store import open_store
+
+    cfg = load_config(demo.config)
+    store = open_store(cfg.store_url())
+    try:
+        d = build_digest(cfg, store)
+    finally:
+        store.dispose()
+    east = next(m for m in d.models if m.name == "east")
+    assert east.accuracy.startswith("MASE 1.46 vs ")
+    assert "the last 52 periods" in east.accuracy
