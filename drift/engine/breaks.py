@@ -14,7 +14,8 @@ sample sizes). A break index is the index, in the coordinates of the input array
 observation of the new regime*.
 
 Models of a batch whose data cannot support a test (too few usable rows, collinear regressors within a
-regime) get NaN statistics and p-values (break index -1); :class:`~drift.exceptions.InsufficientDataError`
+regime, regressors that fit y exactly: ``params["exact_fit"]``) get NaN statistics and p-values (break
+index -1); :class:`~drift.exceptions.InsufficientDataError`
 is raised only when no model of the batch can be tested, so a single model that cannot be tested raises.
 """
 
@@ -47,6 +48,12 @@ _RANK_RTOL = 1e-10
 _EIG_EPS = 100.0
 # a residual sum of squares below _RSS_RTOL * the restricted RSS counts as an exact (noise-free) fit.
 _RSS_RTOL = 1e-13
+# a restricted (no-break) RSS below _EXACT_RTOL * y'y (residual norm under 1e-10 of y's, far above the
+# rounding of about n * eps^2 * y'y) means the regressors fit y exactly: every RSS is then rounding and each
+# F is 0/0, so the model cannot be tested (it was reported as a certain break, F = inf).
+_EXACT_RTOL = 1e-20
+_EXACT_HINT = ("the regressors fit y exactly (residual norm below 1e-10 of y's), so there is no residual "
+               "variation to test")
 # cap on elements of the (models x time x q x k) cumulative arrays held at once by sup_f
 _CHUNK_ELEMENTS = 4_000_000
 
@@ -178,6 +185,11 @@ def _f_ratio(num: FloatArray, df1: Any, den: FloatArray, df2: Any, total: FloatA
     return np.where(exact, np.where(num > tiny, np.inf, np.nan), F)
 
 
+def _exact_fit(rss: FloatArray, y: FloatArray) -> BoolArray:
+    """Per model: the restricted fit is exact (y zeroed at unusable rows, as :func:`_prepare` leaves it)."""
+    return np.asarray(rss <= _EXACT_RTOL * np.einsum("mn,mn->m", y, y))
+
+
 def _squeeze(a: Any, batched: bool) -> Any:
     if batched:
         return a
@@ -241,7 +253,8 @@ def chow(y: object, X: object, at: object) -> TestResult:
     Raises
     ------
     InsufficientDataError
-        When no model has more than k usable rows in each regime with full-rank regressors in each.
+        When no model has more than k usable rows in each regime with full-rank regressors in each, or
+        every such model is fitted exactly by its regressors (``params["exact_fit"]``).
     ValueError, TypeError
         Bad shapes, infinite values, or ``at`` out of range.
 
@@ -268,13 +281,18 @@ def chow(y: object, X: object, at: object) -> TestResult:
     n2 = mask.sum(axis=1) - n1
     nn = n1 + n2
     enough = (n1 > k) & (n2 > k)
-    ok = enough & (full.rank == k) & (f1.rank == k) & (f2.rank == k)
+    valid = enough & (full.rank == k) & (f1.rank == k) & (f2.rank == k)
+    exact = _exact_fit(full.rss, ya)
+    ok = valid & ~exact
     if not ok.any():
         if not enough.any():
             raise InsufficientDataError(
                 "Chow break test (each regime needs more than k observations)", k + 1,
                 int(np.minimum(n1, n2).max()),
                 hint="use predictive_failure when the post-break segment is short")
+        if valid.any():
+            raise InsufficientDataError("Chow break test (residual variation)", 2 * k + 1, int(nn.max()),
+                                        hint=_EXACT_HINT)
         raise InsufficientDataError(
             "Chow break test (regressors must have full rank k in each regime)", k, int(np.minimum(f1.rank, f2.rank).max()),
             hint="regressors are collinear within a regime; drop a column or use predictive_failure")
@@ -293,7 +311,8 @@ def chow(y: object, X: object, at: object) -> TestResult:
         method="Chow break test (Chow 1960)",
         params={"at": _squeeze(atv, batched), "k": k, "n1": _squeeze(n1, batched), "n2": _squeeze(n2, batched),
                 "df": (k, _squeeze(df2, batched)),
-                "rss": (_squeeze(full.rss, batched), _squeeze(f1.rss, batched), _squeeze(f2.rss, batched))},
+                "rss": (_squeeze(full.rss, batched), _squeeze(f1.rss, batched), _squeeze(f2.rss, batched)),
+                "exact_fit": _squeeze(exact, batched)},
         break_index=_squeeze(np.where(ok, atv, -1), batched),
     )
 
@@ -316,7 +335,8 @@ def predictive_failure(y: object, X: object, at: object) -> TestResult:
     Raises
     ------
     InsufficientDataError
-        When no model has n1 > k pre-break rows with full-rank regressors and n2 >= 1.
+        When no model has n1 > k pre-break rows with full-rank regressors and n2 >= 1, or every such
+        model is fitted exactly by its regressors (``params["exact_fit"]``).
 
     Notes
     -----
@@ -337,11 +357,15 @@ def predictive_failure(y: object, X: object, at: object) -> TestResult:
     n1 = (mask & (t < atv[:, None])).sum(axis=1)
     n2 = mask.sum(axis=1) - n1
     enough = (n1 > k) & (n2 >= 1)
-    ok = enough & (f1.rank == k)
+    exact = _exact_fit(full.rss, ya)
+    ok = enough & (f1.rank == k) & ~exact
     if not ok.any():
         if not enough.any():
             raise InsufficientDataError("predictive-failure test (pre-break rows must exceed k, one post-break row)",
                                         k + 1, int(n1.max()))
+        if (enough & (f1.rank == k)).any():
+            raise InsufficientDataError("predictive-failure test (residual variation)", k + 2,
+                                        int((n1 + n2).max()), hint=_EXACT_HINT)
         raise InsufficientDataError("predictive-failure test (pre-break regressors must have full rank k)",
                                     k, int(f1.rank.max()), hint="regressors are collinear before the break")
     df1 = np.where(n2 >= 1, n2, 1)
@@ -358,7 +382,8 @@ def predictive_failure(y: object, X: object, at: object) -> TestResult:
         method="Chow predictive-failure test (Chow 1960)",
         params={"at": _squeeze(atv, batched), "k": k, "n1": _squeeze(n1, batched), "n2": _squeeze(n2, batched),
                 "df": (_squeeze(df1, batched), _squeeze(df2, batched)),
-                "rss": (_squeeze(full.rss, batched), _squeeze(f1.rss, batched))},
+                "rss": (_squeeze(full.rss, batched), _squeeze(f1.rss, batched)),
+                "exact_fit": _squeeze(exact, batched)},
         break_index=_squeeze(np.where(ok, atv, -1), batched),
     )
 
@@ -466,12 +491,14 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
         the number of candidate dates (``candidates``) and how many of them were left out because a
         regime cannot estimate the tested coefficients (``singular_candidates``: exact collinearity within
         a regime, e.g. a dummy that is zero on one side; never an ill-conditioned but valid design). The
-        sup, ave and exp statistics run over the others.
+        sup, ave and exp statistics run over the others. ``exact_fit`` marks models whose regressors fit
+        y exactly without a break (every F is 0/0): they get NaN, like models that cannot be tested.
 
     Raises
     ------
     InsufficientDataError
-        When no model has a candidate break with both regimes estimable.
+        When no model has a candidate break with both regimes estimable, or every such model is fitted
+        exactly by its regressors.
     ValueError, TypeError
         Bad shapes, ``trim`` or ``test_columns``.
 
@@ -503,9 +530,15 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
     if not cand.any():
         raise InsufficientDataError(f"sup-F break test (trim {tr}: each regime needs max(ceil(trim*n), k+1) rows)",
                                     int(2 * (k + 1)), int(nn.max()))
-    F, _, _, rank, singular = _sup_f_path(ya, Xa, mask, cols, cand)
-    has = ~np.all(np.isnan(F), axis=1)
+    F, rss, _, rank, singular = _sup_f_path(ya, Xa, mask, cols, cand)
+    exact = _exact_fit(rss, ya)
+    tested = ~np.all(np.isnan(F), axis=1)
+    F = np.where(exact[:, None], np.nan, F)
+    has = tested & ~exact
     if not has.any():
+        if tested.any():
+            raise InsufficientDataError("sup-F break test (residual variation)", int(2 * (k + 1)), int(nn.max()),
+                                        hint=_EXACT_HINT)
         raise InsufficientDataError("sup-F break test (regressors must have full rank in each regime)", k,
                                     int(rank.max()), hint=f"regressors are collinear or constant in a regime "
                                     f"({int(singular.max())} candidate dates with a singular regime)")
@@ -532,7 +565,8 @@ def sup_f(y: object, X: object, trim: float = 0.15, *,
         params={"trim": tr, "test_columns": tuple(cols), "q": q, "k": k, "scale": "chi2",
                 "min_segment": _squeeze(lo, batched),
                 "candidates": _squeeze(cand.sum(axis=1), batched),
-                "singular_candidates": _squeeze(singular, batched)},
+                "singular_candidates": _squeeze(singular, batched),
+                "exact_fit": _squeeze(exact, batched)},
         break_index=_squeeze(bidx, batched),
         f_path=_squeeze(F, batched),
         ave_f=_squeeze(ave, batched), ave_pvalue=_squeeze(p_ave, batched),

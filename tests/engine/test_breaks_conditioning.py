@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from drift.engine.breaks import sup_f
+from drift.engine.breaks import chow, predictive_failure, sup_f
+from drift.exceptions import InsufficientDataError
 
 
 def _rss(y: np.ndarray, X: np.ndarray) -> float:
@@ -97,3 +98,46 @@ def test_sup_f_reports_candidates_with_a_singular_regime() -> None:
     assert r.params["candidates"] == n - 2 * lo + 1
     assert r.params["singular_candidates"] == 20 - lo + 1  # candidates 9..20: nothing of it before
     assert np.isnan(r.f_path[lo:21]).all() and np.isfinite(r.f_path[21:n - lo + 1]).all()
+
+
+# ---------------------------------------------------------------- exact fits without a break
+def _exact_fit_data(n: int = 40) -> tuple[np.ndarray, np.ndarray]:
+    # y = X b exactly (no noise, no break): common practice, no source. Every RSS is rounding, so an F is
+    # 0/0: there is nothing to test, never a "certain break" (F = inf, p = 0).
+    rng = np.random.default_rng(20261203)
+    X = np.column_stack([np.ones(n), rng.standard_normal(n)])
+    return X @ np.array([1.0, 2.0]), X
+
+
+def test_exact_fit_without_break_is_not_a_break() -> None:
+    y, X = _exact_fit_data()
+    for call in (lambda: sup_f(y, X), lambda: chow(y, X, 20), lambda: predictive_failure(y, X, 30)):
+        with pytest.raises(InsufficientDataError, match="fit y exactly"):
+            call()
+
+
+def test_exact_fit_model_in_a_batch_gets_nan_and_is_counted() -> None:
+    # in a batch, the exact-fit model gets NaN (it cannot be tested) and params say why; the other is
+    # tested as alone
+    y, X = _exact_fit_data()
+    noisy = y + np.random.default_rng(5).standard_normal(y.size)
+    Y, XX = np.stack([y, noisy]), np.stack([X, X])
+    r = sup_f(Y, XX)
+    alone = sup_f(noisy, X)
+    assert np.isnan(r.statistic[0]) and r.break_index[0] == -1
+    assert r.statistic[1] == pytest.approx(alone.statistic)
+    assert r.params["exact_fit"].tolist() == [True, False]
+    c = chow(Y, XX, 20)
+    assert np.isnan(c.statistic[0]) and c.statistic[1] == pytest.approx(chow(noisy, X, 20).statistic)
+    assert c.params["exact_fit"].tolist() == [True, False]
+
+
+def test_noise_free_break_on_a_large_level_is_still_found() -> None:
+    # the exact-fit rule is relative to y's size: a series around 1e8 with unit noise is not an exact fit
+    rng = np.random.default_rng(20261204)
+    n = 60
+    X = np.column_stack([np.ones(n), rng.standard_normal(n)])
+    y = 1e8 + X @ np.array([0.0, 2.0]) + rng.standard_normal(n) + 3.0 * (np.arange(n) >= 30)
+    r = sup_f(y, X)
+    assert np.isfinite(r.statistic) and not r.params["exact_fit"]
+    assert abs(r.break_index - 30) <= 2
