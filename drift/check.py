@@ -1268,6 +1268,9 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
               deliver: bool = True, record: bool = True) -> CheckOutcome:
     """Check the models as of a date (default: today, UTC), save verdicts, process alerts and deliver.
 
+    ``deliver=False`` (``check --no-deliver``) still opens and updates alerts and queues their notices in the
+    outbox; only the sending is left to ``drift deliver`` or the daemon.
+
     A model that cannot be checked does not stop the run: it gets an error entry (``outcome.errors`` and
     ``outcome.failed``). The run is recorded ``ok`` when every model was checked, ``partial`` when some
     were not (its detail counts them: ``checked``, ``failed``, ``errors``).
@@ -1306,8 +1309,7 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         if not record:
             return outcome
         store.save_verdicts(run_id, day, [*payloads, *failed])
-        if deliver:
-            _alerts_and_delivery(cfg, store, outcome)
+        _alerts_and_delivery(cfg, store, outcome, send=deliver)
         detail = {"models": len(chosen), "checked": len(payloads), "failed": len(errors), "errors": errors,
                   "verdicts": {p["name"]: p["verdict"] for p in payloads}}
         if errors:
@@ -1340,13 +1342,14 @@ def _quarantine_hint(store: Any, models: Sequence[ModelConfig], obs: pd.DataFram
             errors[m.name] += ". Ingest refused them: " + "; ".join(notes) + " (drift quarantine lists them)"
 
 
-def _alerts_and_delivery(cfg: Config, store: Any, outcome: CheckOutcome) -> None:
+def _alerts_and_delivery(cfg: Config, store: Any, outcome: CheckOutcome, *, send: bool = True) -> None:
+    """Open/update the alerts and queue their notices; with ``send``, deliver what is due."""
     try:
         from drift.delivery.alerts import process_alerts
     except ImportError:  # delivery not installed in this build
         return
     process_alerts(cfg, store, outcome)
-    if cfg.alerts.channels:
+    if send and cfg.alerts.channels:
         from drift.delivery.outbox import deliver_pending
 
         deliver_pending(cfg, store)

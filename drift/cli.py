@@ -214,7 +214,9 @@ def quarantine(config: str, source: str | None, include_resolved: bool, limit: i
 @click.option("--model", "models", multiple=True, help="Only this model (repeatable).")
 @click.option("--as-of", "as_of", default=None, help="Check as the data stood at the end of this day (YYYY-MM-DD).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout and nothing else.")
-@click.option("--no-deliver", is_flag=True, help="Record verdicts and alerts but do not send anything now.")
+@click.option("--no-deliver", is_flag=True,
+              help="Record verdicts and alerts and queue their notices, but do not send anything now "
+                   "(drift deliver or the daemon sends them).")
 def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool, no_deliver: bool) -> None:
     """Check each model for changes in its driver relationship, and record verdicts."""
     day = _day(as_of, "--as-of")
@@ -244,13 +246,15 @@ def _strict(obj: Any) -> Any:
 @cli.command()
 @config_opt
 @click.option("--resend", "resend", multiple=True, type=int, metavar="ID",
-              help="Queue this uncertain outbox row again and send it (repeatable; see drift status).")
+              help="Queue this uncertain or given-up outbox row again and send it (repeatable; see drift "
+                   "status). An uncertain notice may then arrive twice.")
 @click.option("--accept", "accept", multiple=True, type=int, metavar="ID",
               help="Record this uncertain outbox row as delivered (repeatable).")
 def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> None:
-    """Send whatever is pending in the outbox now (failed sends stay pending and are retried later)."""
+    """Send whatever is pending in the outbox now, without waiting for retry backoffs (failed sends stay
+    pending and are retried later)."""
     def go() -> None:
-        from drift.delivery.outbox import not_uncertain, resolve_uncertain
+        from drift.delivery.outbox import resolve_uncertain, row_statuses
         from drift.pipeline import run_deliver
 
         with _opened(config) as (cfg, store):
@@ -258,16 +262,22 @@ def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> No
             if both:
                 _fail(EXIT_CONFIG, f"outbox row {', '.join(map(str, both))}: give each row to --resend or "
                                    "--accept, not both")
-            wrong = not_uncertain(store, [*resend, *accept])
+            found = row_statuses(store, [*resend, *accept])
+            wrong = {i: found[i] for i in resend if found[i] not in ("uncertain", "dead")}
+            wrong.update({i: found[i] for i in accept if found[i] != "uncertain"})
             if wrong:
-                _fail(EXIT_CONFIG, "only uncertain outbox rows can be resent or accepted; "
-                      + "; ".join(f"row {i} is {st}" for i, st in sorted(wrong.items())))
+                _fail(EXIT_CONFIG, "only uncertain outbox rows can be accepted, and only uncertain or given-up "
+                      "(dead) ones resent; " + "; ".join(f"row {i} is {st}" for i, st in sorted(wrong.items())))
             if accept:
                 n = resolve_uncertain(store, list(accept), resend=False)
                 click.echo(f"{n} uncertain notice{'s' if n != 1 else ''} recorded as delivered")
             if resend:
+                unsure = sorted(i for i in set(resend) if found[i] == "uncertain")
                 n = resolve_uncertain(store, list(resend), resend=True)
-                click.echo(f"{n} uncertain notice{'s' if n != 1 else ''} queued again")
+                click.echo(f"{n} notice{'s' if n != 1 else ''} queued again")
+                if unsure:
+                    click.echo(f"  row{'s' if len(unsure) != 1 else ''} {', '.join(map(str, unsure))} may have "
+                               "arrived the first time: the recipients may receive it twice")
             report = run_deliver(cfg, store)
         click.echo(report.describe() if hasattr(report, "describe") else str(report))
 

@@ -437,6 +437,9 @@ class AlertsConfig(_Strict):
     digest_path: str = "digests/"
     notify_cleared: bool = False
     sending_timeout: timedelta = timedelta(minutes=15)
+    #: tries of one notice before it is given up (outbox status ``dead``, shown by status and the digest);
+    #: with the default backoff the 20th try comes about 3.4 days after the first
+    max_attempts: int = Field(20, ge=1)
 
     _dur = field_validator("retry_backoff", "retry_max_backoff", "sending_timeout", mode="before")(
         lambda cls, v: parse_duration(v)

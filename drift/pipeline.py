@@ -43,10 +43,10 @@ def run_ingest(cfg: Config, store: Any, *, sources: list[str] | None = None,
 
 
 def run_deliver(cfg: Config, store: Any) -> Any:
-    """Send whatever is pending in the outbox now."""
+    """Send whatever is pending in the outbox now, also rows still waiting out a retry backoff."""
     from drift.delivery.outbox import deliver_pending
 
-    return deliver_pending(cfg, store)
+    return deliver_pending(cfg, store, all_pending=True)
 
 
 def run_digest(cfg: Config, store: Any, *, since: Any = None, send: bool = False) -> Any:

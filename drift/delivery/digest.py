@@ -158,6 +158,18 @@ class OpenAlert:
 
 
 @dataclass(frozen=True)
+class Undelivered:
+    """A notice that may not have reached its recipients: given up (``dead``) or ``uncertain``."""
+
+    id: int
+    channel: str
+    subject: str
+    status: str
+    error: str
+    created_at: datetime | None
+
+
+@dataclass(frozen=True)
 class Digest:
     """A built digest.
 
@@ -169,6 +181,7 @@ class Digest:
     models : every model's line, most pressing first.
     changed : what moved since the state compared against.
     open_alerts : open alerts, most severe first.
+    undelivered : notices given up or uncertain (outbox rows waiting on an operator), oldest first.
     compared_with : words naming the state compared against ("the digest of 2025-12-22", ...).
     run_id : the ``runs`` row (only from :func:`run_digest`).
     queued : idempotency keys of outbox rows written by this run (``send=True``).
@@ -183,6 +196,7 @@ class Digest:
     changed: tuple[Change, ...]
     open_alerts: tuple[OpenAlert, ...]
     compared_with: str
+    undelivered: tuple[Undelivered, ...] = ()
     run_id: int | None = None
     queued: tuple[str, ...] = ()
 
@@ -395,6 +409,15 @@ def _open_alerts(store: Store) -> list[OpenAlert]:
     return out
 
 
+def _undelivered(store: Store) -> list[Undelivered]:
+    o = outbox
+    with store.connect() as conn:
+        got = conn.execute(sa.select(o.c.id, o.c.channel, o.c.subject, o.c.status, o.c.last_error, o.c.created_at)
+                           .where(o.c.status.in_(("dead", "uncertain"))).order_by(o.c.id)).fetchall()
+    return [Undelivered(id=int(r.id), channel=str(r.channel), subject=str(r.subject), status=str(r.status),
+                        error=str(r.last_error or ""), created_at=r.created_at) for r in got]
+
+
 def _chart_kinds(m: ModelLine) -> list[str]:
     want: set[str] = set(CHARTS_FOR.get(m.verdict, CHARTS_FOR["watch"]))
     for a in m.actions:
@@ -446,10 +469,11 @@ def build_digest(cfg: Config, store: Store, *, since: datetime | date | str | No
                    key=lambda m: ({"act": 0, "watch": 1, "steady": 2}[m.state], -_rank(m.verdict), m.name))
     changed = _changes(lines)
     open_alerts = _open_alerts(store)
-    html, text, subject = _render(cfg, day, now, lines, changed, open_alerts, compared)
+    undelivered = _undelivered(store)
+    html, text, subject = _render(cfg, day, now, lines, changed, open_alerts, compared, undelivered)
     return Digest(date=day, path=digest_path(cfg, day), html=html, text=text, subject=subject,
                   models=tuple(lines), changed=tuple(changed), open_alerts=tuple(open_alerts),
-                  compared_with=compared)
+                  compared_with=compared, undelivered=tuple(undelivered))
 
 
 def _sections(lines: Sequence[ModelLine], changed: Sequence[Change]) -> tuple[list[dict[str, Any]], int]:
@@ -477,7 +501,8 @@ def _sections(lines: Sequence[ModelLine], changed: Sequence[Change]) -> tuple[li
 
 
 def _render(cfg: Config, day: date, now: datetime, lines: Sequence[ModelLine], changed: Sequence[Change],
-            open_alerts: Sequence[OpenAlert], compared: str) -> tuple[str, str, str]:
+            open_alerts: Sequence[OpenAlert], compared: str,
+            undelivered: Sequence[Undelivered] = ()) -> tuple[str, str, str]:
     counts = {s: sum(1 for m in lines if m.state == s) for s in ("act", "watch", "steady")}
     n = len(lines)
     if n == 0:
@@ -494,7 +519,7 @@ def _render(cfg: Config, day: date, now: datetime, lines: Sequence[ModelLine], c
     ctx = {
         "day": day.isoformat(), "generated": now.astimezone(ZoneInfo(cfg.timezone)).strftime("%Y-%m-%d %H:%M %Z"),
         "headline": headline, "counts": counts, "n": n, "compared": compared, "changed": changed,
-        "open_alerts": open_alerts, "models": lines, "sections": sections, "uncharted": uncharted,
+        "open_alerts": open_alerts, "undelivered": undelivered, "models": lines, "sections": sections, "uncharted": uncharted,
         "anchors": anchors, "footer": FOOTER, "verdict_words": VERDICT_WORDS, "state_words": STATE_WORDS,
         "num": _num, "subject": subject, "condition_words": condition_words, "all_sections": n <= ALL_SECTIONS_MAX,
     }

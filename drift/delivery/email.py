@@ -19,15 +19,26 @@ cannot connect; greeting not 220; EHLO and HELO      ChannelUnavailable: retried
 refused; TLS or login fails; a credential variable   channel's other rows wait for the next round
 is missing; a ``421`` reply at any step; the
 connection drops or times out before the data
-MAIL, RCPT (every recipient), the DATA command or    DeliveryError: retried later
-the final reply refused with another 4xx/5xx code;
-the data could not be written out in full
+MAIL refused (4xx or 5xx: it concerns the sender or  DeliveryError: retried later, until
+the session, e.g. TLS required, and is the same for  ``alerts.max_attempts`` tries
+every notice); RCPT (every recipient, one at least
+with 4xx), the DATA command or the final reply
+refused with a 4xx code; the data could not be
+written out in full
+the DATA command or the final reply refused with a   DeliveryRefused: the row is dead (given
+5xx code; every recipient refused, each with a 5xx   up, shown by status and the digest)
+code
+some recipients refused at RCPT, the others took     PartialDelivery: recorded per recipient;
+the message                                          the ones refused with 4xx are retried
+                                                     alone, a 5xx one makes the row dead
 the connection drops or times out after the whole    DeliveryUncertain: the server may have
 message was written, before the final reply          accepted it; never re-sent automatically
 ===================================================  ===========================================
 
 A refusal after the data (a 4xx/5xx final reply) is certain: the server answered that it did not take
-the message. Only silence after the data is uncertain.
+the message. Only silence after the data is uncertain. A 5xx reply is permanent (RFC 5321 section 4.2.1:
+"the SMTP client SHOULD NOT repeat the exact request"); a 4xx one is transient. The row's ``recipients``
+record says who got the message: a later try (or an operator's resend) goes to the others only.
 
 Credentials are read from the variables named by ``username_env`` / ``password_env`` at send time, never
 from the YAML, and never appear in a log line or an error message (errors name the variable only).
@@ -53,8 +64,10 @@ from drift.delivery.outbox import (
     Channel,
     ChannelUnavailable,
     DeliveryError,
+    DeliveryRefused,
     DeliveryUncertain,
     OutboxMessage,
+    PartialDelivery,
     register_channel,
 )
 
@@ -220,6 +233,10 @@ class EmailSender(Channel):
                                      "in the config")
         try:
             smtp.login(user, password)
+        except UnicodeError:  # smtplib sends AUTH as ASCII: nothing has been sent yet
+            raise ChannelUnavailable(f"the SMTP user name or password (from {self.spec.username_env}/"
+                                     f"{self.spec.password_env}) is not plain ASCII, which SMTP AUTH here cannot "
+                                     "carry") from None
         except smtplib.SMTPException as exc:
             code = getattr(exc, "smtp_code", None)
             raise ChannelUnavailable(f"SMTP login to {self.spec.host} failed (credentials from "
@@ -227,7 +244,12 @@ class EmailSender(Channel):
         except OSError as exc:
             raise ChannelUnavailable(f"SMTP login to {self.spec.host} failed: {exc.__class__.__name__}") from None
 
-    def send(self, msg: OutboxMessage) -> None:
+    def send(self, msg: OutboxMessage) -> dict[str, dict[str, Any]]:
+        # recipients that already got it (an earlier try) or were refused for good are not sent to again
+        to = [r for r in self.spec.to if msg.recipients.get(r, {}).get("status") != "sent"
+              and not msg.recipients.get(r, {}).get("permanent")]
+        if not to:
+            return {}
         try:
             em = self.build(msg)
             data = em.as_bytes(policy=email.policy.SMTP)  # CRLF line ends, as the wire wants them
@@ -241,38 +263,54 @@ class EmailSender(Channel):
         smtp = self._connect()
         try:
             self._login(smtp)
-            self._transfer(smtp, data, msg.handing_over)
+            outcome = self._transfer(smtp, data, msg.handing_over, to)
         finally:
             _quiet_close(smtp)
-        log.info("e-mail %s sent to %d recipient(s) via %s", msg.key[:12], len(self.spec.to), self.name)
+        log.info("e-mail %s sent to %d recipient(s) via %s", msg.key[:12], len(outcome), self.name)
+        return outcome
 
-    def _transfer(self, smtp: smtplib.SMTP, data: bytes, handing_over: Callable[[], None]) -> None:
+    def _transfer(self, smtp: smtplib.SMTP, data: bytes, handing_over: Callable[[], None],
+                  to: Sequence[str]) -> dict[str, dict[str, Any]]:
         """MAIL, RCPT, DATA, the data and the final reply, each failure placed before or after the data
-        went out (the table in the module docstring); ``handing_over`` is called just before the data."""
+        went out (the table in the module docstring); ``handing_over`` is called just before the data.
+        Returns ``{recipient: {"status": "sent"}}``; raises PartialDelivery when some were refused."""
         host = self.spec.host
 
-        def refused(step: str, code: int, resp: Any) -> DeliveryError:
+        def refused(step: str, code: int, resp: Any, recipients: dict[str, dict[str, Any]] | None = None
+                    ) -> DeliveryError:
             text = f"SMTP server {host} refused {step}: {code} {_text(resp)}"
-            return ChannelUnavailable(text) if code == _CLOSING else DeliveryError(text)
+            if code == _CLOSING:
+                return ChannelUnavailable(text)
+            err = DeliveryRefused(text) if 500 <= code < 600 else DeliveryError(text)
+            err.recipients = recipients  # type: ignore[attr-defined]
+            return err
 
+        refusals: dict[str, dict[str, Any]] = {}
+        accepted: list[str] = []
         try:
             code, resp = smtp.mail(self.spec.sender)
-            if code != 250:
-                raise refused("the sender (MAIL)", code, resp)
-            accepted = 0
-            refusals = []
-            for rcpt in self.spec.to:
+            if code != 250:  # about the sender or the session, the same for every notice: retried even on 5xx
+                text = f"SMTP server {host} refused the sender (MAIL): {code} {_text(resp)}"
+                raise ChannelUnavailable(text) if code == _CLOSING else DeliveryError(text)
+            for rcpt in to:
                 code, resp = smtp.rcpt(rcpt)
                 if code in (250, 251):
-                    accepted += 1
+                    accepted.append(rcpt)
                 elif code == _CLOSING:
                     raise refused(f"the recipient {rcpt} (RCPT)", code, resp)
                 else:
-                    refusals.append(f"{rcpt}: {code} {_text(resp)}")
-            if accepted == 0:
-                raise DeliveryError(f"SMTP server {host} refused every recipient ({'; '.join(refusals)})")
+                    refusals[rcpt] = {"status": "refused", "permanent": 500 <= code < 600,
+                                      "reply": f"{code} {_text(resp)}"[:300]}
+            if not accepted:
+                text = "; ".join(f"{r}: {v['reply']}" for r, v in refusals.items())
+                every = f"SMTP server {host} refused every recipient ({text})"
+                err = (DeliveryRefused(every) if all(v["permanent"] for v in refusals.values())
+                       else DeliveryError(every))
+                err.recipients = refusals  # type: ignore[attr-defined]
+                raise err
             if refusals:
-                log.warning("SMTP server %s refused some recipients: %s", host, "; ".join(refusals))
+                log.warning("SMTP server %s refused some recipients: %s", host,
+                            "; ".join(f"{r}: {v['reply']}" for r, v in refusals.items()))
             code, resp = smtp.docmd("data")
             if code != 354:
                 raise refused("to take the message (DATA)", code, resp)
@@ -296,14 +334,20 @@ class EmailSender(Channel):
                                 f"({exc.__class__.__name__}); it was not complete, so not delivered") from None
         try:
             code, resp = smtp.getreply()
-        except (smtplib.SMTPServerDisconnected, OSError) as exc:
-            raise DeliveryUncertain(f"SMTP server {host} did not answer after the whole message was sent "
-                                    f"({exc.__class__.__name__}); it may have been delivered") from None
-        except smtplib.SMTPException as exc:
-            raise DeliveryUncertain(f"SMTP server {host} gave an unreadable answer after the whole message was "
-                                    f"sent ({exc.__class__.__name__}); it may have been delivered") from None
+        except (smtplib.SMTPServerDisconnected, OSError, smtplib.SMTPException) as exc:
+            what = ("did not answer" if isinstance(exc, (smtplib.SMTPServerDisconnected, OSError))
+                    else "gave an unreadable answer")
+            err = DeliveryUncertain(f"SMTP server {host} {what} after the whole message was sent "
+                                    f"({exc.__class__.__name__}); it may have been delivered")
+            err.recipients = {**refusals, **{r: {"status": "uncertain"} for r in accepted}}  # type: ignore[attr-defined]
+            raise err from None
         if code != 250:
-            raise refused("the message after its data", code, resp)
+            raise refused("the message after its data", code, resp, refusals or None)
+        got = {r: {"status": "sent"} for r in accepted}
+        if refusals:
+            raise PartialDelivery(f"SMTP server {host} took the message for {', '.join(accepted)} only",
+                                  {**got, **refusals})
+        return got
 
 
 def header_text(value: Any) -> str:

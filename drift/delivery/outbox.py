@@ -5,11 +5,20 @@ Life of an outbox row::
     pending --claim--> sending --hand-over--> delivering --sent ok--> sent
        ^                  |                      |  \\--DeliveryUncertain / unexpected error--> uncertain
        |                  |                      \\--DeliveryError (known not delivered)--> pending, backoff
-       |                  \\--DeliveryError before the hand-over--> pending, attempts+1, backoff
+       |                  \\--DeliveryError or unexpected error before the hand-over--> pending, backoff
+       |   any failure: DeliveryRefused (a permanent refusal), every recipient refused for good,
+       |                or the alerts.max_attempts-th failed try --> dead
        |   found on a later run, claim expired:
        |     sending    -> pending (nothing had left; for a channel that reports its hand-over)
        |     delivering -> idempotent channel: pending again; other channels: uncertain
-       \\---------------- resolve_uncertain(resend=True) by an operator ------------------/
+       \\------ resolve_uncertain(resend=True) by an operator (uncertain or dead rows) ------/
+
+Recipients
+    A channel with several recipients (e-mail) records what each one answered in ``recipients`` (JSON
+    ``{address: {status: sent | refused | uncertain, permanent, reply, at}}``). A try that reached some
+    recipients and not others raises :class:`PartialDelivery`: the row goes back to pending for the ones
+    refused for now (a later try sends to them alone) and becomes ``dead`` once only recipients refused for
+    good are left; it is ``sent`` only when every recipient got it.
 
 Rows
     :func:`enqueue` writes one row per channel inside the caller's transaction (the one that writes the
@@ -68,7 +77,6 @@ import logging
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
-from functools import partial
 from typing import Any, ClassVar
 
 import sqlalchemy as sa
@@ -104,6 +112,18 @@ class ClaimLost(DeliveryError):
     """This run's claim on a row expired and another run took it over; nothing was sent."""
 
 
+class DeliveryRefused(DeliveryError):
+    """The receiver refused this message for good (an SMTP 5xx reply): the row becomes ``dead``, not retried."""
+
+
+class PartialDelivery(DeliveryError):
+    """Some recipients got the message and others did not; ``recipients`` says which (see the module docstring)."""
+
+    def __init__(self, message: str, recipients: Mapping[str, Mapping[str, Any]]) -> None:
+        super().__init__(message)
+        self.recipients = {str(k): dict(v) for k, v in recipients.items()}
+
+
 @dataclass(frozen=True)
 class OutboxMessage:
     """One outbox row as a channel sees it."""
@@ -115,6 +135,8 @@ class OutboxMessage:
     notice: dict[str, Any]
     attempts: int
     alert_id: int | None
+    #: what each recipient answered on earlier tries (``{address: {status, permanent, reply, at}}``)
+    recipients: Mapping[str, Mapping[str, Any]] = field(default_factory=dict, compare=False)
     #: set by :func:`deliver_pending`: records the hand-over (see the module docstring)
     handover: Callable[[], None] | None = field(default=None, compare=False, repr=False)
 
@@ -147,8 +169,9 @@ class Channel:
         self.spec = spec
         self.name = name
 
-    def send(self, msg: OutboxMessage) -> None:  # pragma: no cover - interface
-        """Deliver one message or raise DeliveryError / ChannelUnavailable / DeliveryUncertain."""
+    def send(self, msg: OutboxMessage) -> Mapping[str, Mapping[str, Any]] | None:  # pragma: no cover
+        """Deliver one message or raise DeliveryError / ChannelUnavailable / DeliveryRefused / PartialDelivery /
+        DeliveryUncertain. May return what each recipient answered (recorded in ``recipients``)."""
         raise NotImplementedError
 
     def flush(self, delivered: Sequence[OutboxMessage]) -> None:
@@ -274,6 +297,7 @@ class DeliveryReport:
     sent : rows delivered and marked sent.
     failed : rows tried and put back to pending (with backoff).
     uncertain : rows newly marked uncertain (not re-sent automatically).
+    dead : rows given up in this call (a permanent refusal, or ``alerts.max_attempts`` tries).
     recovered : stale claimed rows put back to pending in this call (idempotent channels, or rows whose
         process died before the hand-over).
     deferred : due rows not tried (their channel was unavailable or is no longer configured).
@@ -284,6 +308,7 @@ class DeliveryReport:
     sent: int = 0
     failed: int = 0
     uncertain: int = 0
+    dead: int = 0
     recovered: int = 0
     deferred: int = 0
     pending: int = 0
@@ -291,15 +316,24 @@ class DeliveryReport:
 
     @property
     def ok(self) -> bool:
-        return self.failed == 0 and self.uncertain == 0 and self.deferred == 0
+        return self.failed == 0 and self.uncertain == 0 and self.deferred == 0 and self.dead == 0
 
     def describe(self) -> str:
         """A few lines for the CLI."""
         lines = [f"outbox: {self.sent} sent, {self.failed} failed (kept, retried later), "
-                 f"{self.uncertain} uncertain (not resent; see drift status), {self.deferred} deferred, "
-                 f"{self.pending} still pending"]
+                 f"{self.uncertain} uncertain (not resent; see drift status), "
+                 + (f"{self.dead} given up (see drift status), " if self.dead else "")
+                 + f"{self.deferred} deferred, {self.pending} still pending"]
         lines += [f"  {e.channel}: {e.error}" for e in self.errors]
         return "\n".join(lines)
+
+
+def _recipients(raw: Any) -> dict[str, dict[str, Any]]:
+    try:
+        got = json.loads(raw) if raw else {}
+    except ValueError:
+        return {}
+    return {str(k): dict(v) for k, v in got.items() if isinstance(v, dict)} if isinstance(got, dict) else {}
 
 
 def _message(row: Any) -> OutboxMessage:
@@ -309,7 +343,19 @@ def _message(row: Any) -> OutboxMessage:
         notice = {}
     return OutboxMessage(id=int(row.id), key=str(row.idempotency_key), channel=str(row.channel),
                          subject=str(row.subject), notice=notice if isinstance(notice, dict) else {},
-                         attempts=int(row.attempts or 0), alert_id=row.alert)
+                         attempts=int(row.attempts or 0), alert_id=row.alert,
+                         recipients=_recipients(getattr(row, "recipients", None)))
+
+
+class _Handover:
+    """The hand-over callable given to a channel: marks the row ``delivering`` and remembers it did."""
+
+    def __init__(self, store: Store, row_id: int, claim: datetime) -> None:
+        self.store, self.row_id, self.claim, self.done = store, row_id, claim, False
+
+    def __call__(self) -> None:
+        _mark_handover(self.store, self.row_id, self.claim)
+        self.done = True
 
 
 def _claim(store: Store, row_id: int, now: datetime, lease: timedelta) -> bool:
@@ -330,28 +376,54 @@ def _mark_handover(store: Store, row_id: int, claim: datetime) -> None:
         raise ClaimLost(f"outbox row {row_id} is no longer claimed by this run (its lease expired); not sent")
 
 
-def _mark_sent(store: Store, row_id: int, now: datetime, claim: datetime) -> None:
+def _recipients_json(recipients: Mapping[str, Mapping[str, Any]] | None) -> dict[str, Any]:
+    """The ``recipients`` column value to write (nothing when there is no record)."""
+    return {"recipients": json.dumps(recipients, default=str, sort_keys=True)} if recipients else {}
+
+
+def _mark_sent(store: Store, row_id: int, now: datetime, claim: datetime,
+               recipients: Mapping[str, Mapping[str, Any]] | None = None) -> None:
     with store.begin() as conn:
         conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(_CLAIMED),
                                            outbox.c.next_attempt_at == claim)
-                     .values(status="sent", sent_at=now, last_error=None))
+                     .values(status="sent", sent_at=now, last_error=None, **_recipients_json(recipients)))
 
 
-def _mark_failed(store: Store, row_id: int, error: str, next_at: datetime, claim: datetime) -> None:
+def _mark_failed(store: Store, row_id: int, error: str, next_at: datetime, claim: datetime,
+                 recipients: Mapping[str, Mapping[str, Any]] | None = None, *, dead: bool = False) -> None:
+    values: dict[str, Any] = ({"status": "dead"} if dead else {"status": "pending", "next_attempt_at": next_at})
     with store.begin() as conn:
         conn.execute(outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(_CLAIMED),
                                            outbox.c.next_attempt_at == claim)
-                     .values(status="pending", last_error=error, next_attempt_at=next_at))
+                     .values(last_error=error, **values, **_recipients_json(recipients)))
 
 
 def _mark_uncertain(store: Store, row_id: int, error: str, *, from_status: Sequence[str] = _CLAIMED,
-                    claim: datetime | None = None) -> bool:
+                    claim: datetime | None = None, recipients: Mapping[str, Mapping[str, Any]] | None = None) -> bool:
     q = outbox.update().where(outbox.c.id == row_id, outbox.c.status.in_(from_status))
     if claim is not None:
         q = q.where(outbox.c.next_attempt_at == claim)
     with store.begin() as conn:
-        res = conn.execute(q.values(status="uncertain", last_error=error))
+        res = conn.execute(q.values(status="uncertain", last_error=error, **_recipients_json(recipients)))
         return res.rowcount == 1
+
+
+def _merge(old: Mapping[str, Mapping[str, Any]], new: Mapping[str, Mapping[str, Any]] | None,
+           now: datetime) -> dict[str, dict[str, Any]]:
+    out = {k: dict(v) for k, v in old.items()}
+    for k, v in (new or {}).items():
+        out[str(k)] = {**dict(v), "at": v.get("at") or now.isoformat()}
+    return out
+
+
+def _partial_outcome(recipients: Mapping[str, Mapping[str, Any]]) -> tuple[bool, str]:
+    """(something left to retry, the error text) for a row some of whose recipients did not get it."""
+    got = sorted(k for k, v in recipients.items() if v.get("status") == "sent")
+    refused = {k: v for k, v in sorted(recipients.items()) if v.get("status") == "refused"}
+    retry = any(not v.get("permanent") for v in refused.values())
+    text = "; ".join(f"{k}: {v.get('reply') or 'refused'}" + ("" if v.get("permanent") else " (retried)")
+                     for k, v in refused.items())
+    return retry, (f"delivered to {', '.join(got) or 'nobody'}; not to {text}")
 
 
 def _recover_stale(store: Store, channels: Mapping[str, Channel], now: datetime,
@@ -383,15 +455,17 @@ def _recover_stale(store: Store, channels: Mapping[str, Channel], now: datetime,
 
 
 def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
-                    channels: Mapping[str, Channel] | None = None) -> DeliveryReport:
+                    channels: Mapping[str, Channel] | None = None, all_pending: bool = False) -> DeliveryReport:
     """Send every due pending outbox row through its channel (see the module docstring for the rules).
 
     Parameters
     ----------
-    cfg : the configuration (channels, retry_backoff, retry_max_backoff).
+    cfg : the configuration (channels, retry_backoff, retry_max_backoff, max_attempts).
     store : the store.
     now : the current time (tz-aware); defaults to UTC now. Tests pass a controlled clock.
     channels : channel objects by name, replacing those built from ``cfg`` (tests, custom channels).
+    all_pending : send every pending row now, also those still waiting out their backoff (``drift
+        deliver``: an operator asking to send now); the daemon and the check leave it False.
 
     Returns
     -------
@@ -403,14 +477,16 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
     chans = dict(channels) if channels is not None else make_channels(cfg)
     lease = sending_lease(cfg)
     errors: list[DeliveryFailure] = []
-    sent = failed = uncertain = deferred = 0
+    sent = failed = uncertain = dead = deferred = 0
     delivered: dict[str, list[OutboxMessage]] = {}
     down: set[str] = set()
     try:
         recovered, uncertain = _recover_stale(store, chans, now, errors)
+        q = sa.select(outbox).where(outbox.c.status == "pending")
+        if not all_pending:
+            q = q.where(outbox.c.next_attempt_at <= now)
         with store.connect() as conn:
-            due = conn.execute(sa.select(outbox).where(outbox.c.status == "pending", outbox.c.next_attempt_at <= now)
-                               .order_by(outbox.c.id)).fetchall()
+            due = conn.execute(q.order_by(outbox.c.id)).fetchall()
         for row in due:
             ch = chans.get(row.channel)
             if ch is None or row.channel in down:
@@ -423,37 +499,39 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
                 continue  # claimed by someone else meanwhile
             claim = now + lease
             msg = _message(row)
-            msg = replace(msg, attempts=msg.attempts + 1,
-                          handover=partial(_mark_handover, store, msg.id, claim) if ch.reports_handover else None)
-            try:
-                ch.send(msg)
-            except ClaimLost as exc:
-                log.warning("outbox row %s (%s): %s", msg.id, msg.channel, exc)
+            handover = _Handover(store, msg.id, claim) if ch.reports_handover else None
+            msg = replace(msg, attempts=msg.attempts + 1, handover=handover)
+            outcome = _try(cfg, ch, msg, handover, now)
+            if outcome.kind == "lost-claim":
                 continue
-            except DeliveryUncertain as exc:
-                _mark_uncertain(store, msg.id, str(exc), claim=claim)
+            recipients = _merge(msg.recipients, outcome.recipients, now) if outcome.recipients else None
+            if outcome.kind == "sent":
+                _mark_sent(store, msg.id, now, claim, recipients)
+                sent += 1
+                delivered.setdefault(msg.channel, []).append(msg)
+                continue
+            errors.append(DeliveryFailure(msg.channel, msg.key, outcome.error))
+            if outcome.kind == "uncertain":
+                _mark_uncertain(store, msg.id, outcome.error, claim=claim, recipients=recipients)
                 uncertain += 1
-                errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
-                log.warning("outbox row %s (%s): delivery uncertain, not re-sent: %s", msg.id, msg.channel, exc)
+                log.warning("outbox row %s (%s): delivery uncertain, not re-sent: %s", msg.id, msg.channel,
+                            outcome.error)
                 down.add(msg.channel)  # the receiver stopped answering: its other rows wait for the next round
                 continue
-            except DeliveryError as exc:
-                _mark_failed(store, msg.id, str(exc), now + backoff(cfg, msg.attempts), claim)
+            error, give_up = outcome.error, outcome.kind == "dead"
+            if not give_up and msg.attempts >= cfg.alerts.max_attempts:
+                give_up = True
+                error = f"given up after {msg.attempts} tries (alerts.max_attempts): {error}"
+            _mark_failed(store, msg.id, error, now + backoff(cfg, msg.attempts), claim, recipients, dead=give_up)
+            if give_up:
+                dead += 1
+                log.error("outbox row %s (%s) given up: %s", msg.id, msg.channel, error)
+            else:
                 failed += 1
-                errors.append(DeliveryFailure(msg.channel, msg.key, str(exc)))
-                log.warning("outbox row %s (%s) not delivered (try %d): %s", msg.id, msg.channel, msg.attempts, exc)
-                if isinstance(exc, ChannelUnavailable):
-                    down.add(msg.channel)
-                continue
-            except Exception as exc:
-                # unknown whether anything went out: leave it "sending"; the stale-claim rule resolves it
-                log.exception("outbox row %s (%s): unexpected error while sending", msg.id, msg.channel)
-                errors.append(DeliveryFailure(msg.channel, msg.key, f"{exc.__class__.__name__}: {exc}"))
-                uncertain += 1
-                continue
-            _mark_sent(store, msg.id, now, claim)
-            sent += 1
-            delivered.setdefault(msg.channel, []).append(msg)
+                log.warning("outbox row %s (%s) not delivered (try %d): %s", msg.id, msg.channel, msg.attempts,
+                            error)
+            if outcome.channel_down:
+                down.add(msg.channel)
     finally:
         for name, ch in chans.items():
             try:
@@ -468,8 +546,47 @@ def deliver_pending(cfg: Config, store: Store, *, now: datetime | None = None,
     with store.connect() as conn:
         pending = int(conn.execute(sa.select(sa.func.count()).select_from(outbox)
                                    .where(outbox.c.status == "pending")).scalar_one())
-    return DeliveryReport(sent=sent, failed=failed, uncertain=uncertain, recovered=recovered, deferred=deferred,
-                          pending=pending, errors=tuple(errors))
+    return DeliveryReport(sent=sent, failed=failed, uncertain=uncertain, dead=dead, recovered=recovered,
+                          deferred=deferred, pending=pending, errors=tuple(errors))
+
+
+@dataclass(frozen=True)
+class _Outcome:
+    """What one try of one row came to: ``kind`` sent | failed | dead | uncertain | lost-claim."""
+
+    kind: str
+    error: str = ""
+    recipients: Mapping[str, Mapping[str, Any]] | None = None
+    channel_down: bool = False
+
+
+def _try(cfg: Config, ch: Channel, msg: OutboxMessage, handover: _Handover | None, now: datetime) -> _Outcome:
+    """Send one claimed row through its channel and classify the result (never raises an Exception)."""
+    try:
+        got = ch.send(msg)
+    except ClaimLost as exc:
+        log.warning("outbox row %s (%s): %s", msg.id, msg.channel, exc)
+        return _Outcome("lost-claim")
+    except PartialDelivery as exc:
+        merged = _merge(msg.recipients, exc.recipients, now)
+        retry, text = _partial_outcome(merged)
+        return _Outcome("failed" if retry else "dead", text, exc.recipients)
+    except DeliveryUncertain as exc:
+        return _Outcome("uncertain", str(exc), getattr(exc, "recipients", None))
+    except DeliveryRefused as exc:
+        return _Outcome("dead", str(exc), getattr(exc, "recipients", None))
+    except DeliveryError as exc:
+        return _Outcome("failed", str(exc), getattr(exc, "recipients", None),
+                        channel_down=isinstance(exc, ChannelUnavailable))
+    except Exception as exc:
+        text = f"{exc.__class__.__name__}: {exc}"
+        if handover is not None and not handover.done:
+            # the channel reports its hand-over and had not reached it: nothing left, a plain failure
+            log.exception("outbox row %s (%s): unexpected error before anything was sent", msg.id, msg.channel)
+            return _Outcome("failed", f"{text} (before anything was sent)")
+        log.exception("outbox row %s (%s): unexpected error while sending", msg.id, msg.channel)
+        return _Outcome("uncertain", f"{text} (while sending: it may have been delivered)")
+    return _Outcome("sent", recipients=got or None)
 
 
 # --------------------------------------------------------------------------------------------- status
@@ -503,24 +620,39 @@ def outbox_summary(store: Store) -> OutboxSummary:
     return OutboxSummary(counts=counts, uncertain=tuple(dict(r._mapping) for r in unc), next_attempt_at=nxt)
 
 
-def not_uncertain(store: Store, ids: Sequence[int]) -> dict[int, str]:
-    """Of the given outbox row ids, those that are not ``uncertain``, with their status (``no such row``)."""
+def row_statuses(store: Store, ids: Sequence[int]) -> dict[int, str]:
+    """The status of each given outbox row id (``no such row`` for an unknown id)."""
     wanted = sorted({int(i) for i in ids})
     if not wanted:
         return {}
     with store.connect() as conn:
         found = {int(i): str(st) for i, st in conn.execute(
             sa.select(outbox.c.id, outbox.c.status).where(outbox.c.id.in_(wanted)))}
-    return {i: found.get(i, "no such row") for i in wanted if found.get(i) != "uncertain"}
+    return {i: found.get(i, "no such row") for i in wanted}
+
+
+def not_uncertain(store: Store, ids: Sequence[int], allowed: Sequence[str] = ("uncertain",)) -> dict[int, str]:
+    """Of the given outbox row ids, those whose status is not in ``allowed``, with their status."""
+    return {i: st for i, st in row_statuses(store, ids).items() if st not in allowed}
 
 
 def resolve_uncertain(store: Store, ids: Sequence[int], *, resend: bool, now: datetime | None = None) -> int:
-    """An operator's decision on uncertain rows: ``resend=True`` queues them again now, ``False`` accepts
-    them as delivered (status sent). Returns the number of rows changed."""
+    """An operator's decision on uncertain rows: ``resend=True`` queues them again now (dead rows too: a
+    given-up notice sent again after the cause was fixed), ``False`` accepts uncertain rows as delivered
+    (status sent). A resent row is sent again to every recipient not recorded as having got it, with its
+    tries counted afresh. Returns the number of rows changed."""
     now = now or utcnow()
-    values: dict[str, Any] = ({"status": "pending", "next_attempt_at": now} if resend
-                              else {"status": "sent", "sent_at": now})
+    ids = [int(i) for i in ids]
     with store.begin() as conn:
-        res = conn.execute(outbox.update().where(outbox.c.id.in_(list(ids)), outbox.c.status == "uncertain")
-                           .values(**values))
-        return int(res.rowcount)
+        if not resend:
+            res = conn.execute(outbox.update().where(outbox.c.id.in_(ids), outbox.c.status == "uncertain")
+                               .values(status="sent", sent_at=now))
+            return int(res.rowcount)
+        n = 0
+        for row in conn.execute(sa.select(outbox.c.id, outbox.c.recipients)
+                                .where(outbox.c.id.in_(ids), outbox.c.status.in_(("uncertain", "dead")))).fetchall():
+            got = {k: v for k, v in _recipients(row.recipients).items() if v.get("status") == "sent"}
+            n += conn.execute(outbox.update().where(outbox.c.id == row.id, outbox.c.status.in_(("uncertain", "dead")))
+                              .values(status="pending", next_attempt_at=now, attempts=0,
+                                      recipients=json.dumps(got, sort_keys=True) if got else None)).rowcount
+        return n

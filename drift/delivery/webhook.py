@@ -5,8 +5,10 @@ application/json``, ``Idempotency-Key: <key>`` (a receiver may deduplicate on it
 ``headers_env`` entry whose value is read from the named environment variable (e.g. a token; never logged;
 a missing variable is a ChannelUnavailable naming the variable).
 
-Outcomes: 2xx -> sent. Non-2xx -> DeliveryError with the status code (the receiver answered, so it did
-not take the notice). Connection refused / name not resolved -> ChannelUnavailable. A timeout or a reset
+Outcomes: 2xx -> sent. Non-2xx -> the receiver answered, so it did not take the notice: a 4xx answer that
+refuses this request for good (400, 404, 410, 413, 422, ...) -> DeliveryRefused (the row is given up,
+``dead``); 401, 403 and 407 (credentials: the same for every notice) -> ChannelUnavailable; 408, 425, 429
+and 5xx -> DeliveryError, retried. Connection refused / name not resolved -> ChannelUnavailable. A timeout or a reset
 after the request may have gone out -> DeliveryUncertain (not re-sent automatically).
 
 Only ``http://`` and ``https://`` URLs are accepted (checked when the config is loaded, and again here).
@@ -31,6 +33,7 @@ from drift.delivery.outbox import (
     Channel,
     ChannelUnavailable,
     DeliveryError,
+    DeliveryRefused,
     DeliveryUncertain,
     OutboxMessage,
     register_channel,
@@ -40,6 +43,8 @@ from drift.delivery.outbox import (
 _ERROR_BODY = 200
 #: URL schemes a webhook may use
 SCHEMES = ("http", "https")
+#: 4xx answers about the credentials (every notice alike: the channel waits) and those worth retrying
+_CREDENTIALS, _TRANSIENT_4XX = (401, 403, 407), (408, 425, 429)
 
 
 class _NoRedirect(urllib.request.HTTPRedirectHandler):
@@ -103,7 +108,12 @@ class WebhookSender(Channel):
                 value = headers.get(header)
                 if value:
                     snippet = snippet.replace(value, "***")
-            raise DeliveryError(f"webhook {self.name} answered HTTP {exc.code}: {snippet.strip()}") from None
+            text = f"webhook {self.name} answered HTTP {exc.code}: {snippet.strip()}"
+            if exc.code in _CREDENTIALS:
+                raise ChannelUnavailable(text) from None
+            if 400 <= exc.code < 500 and exc.code not in _TRANSIENT_4XX:
+                raise DeliveryRefused(text) from None
+            raise DeliveryError(text) from None
         except urllib.error.URLError as exc:
             reason = exc.reason
             if isinstance(reason, (ConnectionRefusedError, socket.gaierror)):

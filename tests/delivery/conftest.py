@@ -110,24 +110,30 @@ def free_port() -> int:
 
 
 class RecordingHandler:
-    """Records envelopes. ``mode``: "ok", "reject" (421 to DATA), "drop-rcpt" (close at RCPT),
-    "drop-after-data" (take the message, then close without replying)."""
+    """Records envelopes. ``mode``: "ok", "reject" (421 to DATA), "refuse" (554 to DATA, permanent),
+    "drop-rcpt" (close at RCPT), "drop-after-data" (take the message, then close without replying).
+    ``refuse_rcpt`` maps an address to the reply its RCPT gets instead of 250."""
 
     def __init__(self) -> None:
         self.mode = "ok"
         self.messages: list[SimpleNamespace] = []
         self.dropped_after_data = 0
+        self.refuse_rcpt: dict[str, str] = {}
 
     async def handle_RCPT(self, server: Any, session: Any, envelope: Any, address: str, options: Any) -> str:
         if self.mode == "drop-rcpt":
             server.transport.close()
             return "421 closing"
+        if address in self.refuse_rcpt:
+            return self.refuse_rcpt[address]
         envelope.rcpt_tos.append(address)
         return "250 OK"
 
     async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:
         if self.mode == "reject":
             return "421 4.3.0 try again later"
+        if self.mode == "refuse":
+            return "554 5.6.0 message refused"
         if self.mode == "drop-after-data":
             self.dropped_after_data += 1
             server.transport.close()

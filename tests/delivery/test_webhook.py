@@ -89,7 +89,7 @@ class _Redirector:
         self.server.server_close()
 
 
-@pytest.mark.parametrize("code", [301, 302, 307, 308])
+@pytest.mark.parametrize("code", [301, 302, 303, 307, 308])
 def test_redirects_are_not_followed(tmp_path: Path, store: Any, http_sink: HttpSink, code: int,
                                     monkeypatch: pytest.MonkeyPatch) -> None:
     # common practice, no source: a redirect would carry the notice and its token elsewhere
@@ -105,6 +105,33 @@ def test_redirects_are_not_followed(tmp_path: Path, store: Any, http_sink: HttpS
         assert rep.sent == 0 and rep.failed >= 1, rep.describe()
         assert f"HTTP {code}" in rep.errors[0].error and "not followed" in rep.errors[0].error
     assert http_sink.requests == []
+
+
+@pytest.mark.parametrize(("status", "outcome"), [(404, "dead"), (410, "dead"), (422, "dead"), (429, "pending"),
+                                                 (500, "pending"), (503, "pending"), (401, "pending")])
+def test_a_refusal_for_good_is_given_up(tmp_path: Path, store: Any, http_sink: HttpSink, status: int,
+                                        outcome: str) -> None:
+    """RFC 9110 (Fielding et al., 2022) section 15.5: a 4xx says the request itself is at fault, so sending it
+    again unchanged cannot succeed, except 408 (RFC 9110), 425 (RFC 8470) and 429 (RFC 6585), which ask to try
+    later, and the credentials (401/403/407: fixed in the environment, the same for every notice); a 5xx is
+    the receiver's own trouble, retried."""
+    from drift.delivery.outbox import outbox_summary
+
+    cfg = hook_cfg(tmp_path, http_sink.url)
+    process_alerts(cfg, store, outcome_of("k000"), now=T0)
+    http_sink.status = status
+    rep = deliver_pending(cfg, store, now=T0)
+    assert (rep.dead, rep.failed) == ((1, 0) if outcome == "dead" else (0, 1)), rep.describe()
+    assert f"HTTP {status}" in rep.errors[0].error
+    http_sink.status = 200
+    deliver_pending(cfg, store, now=T0 + dt.timedelta(days=1))
+    counts = outbox_summary(store).counts
+    assert (counts["dead"], counts["sent"]) == ((1, 0) if outcome == "dead" else (0, 1))
+    assert len(http_sink.requests) == (0 if outcome == "dead" else 1)
+
+
+def outcome_of(name: str) -> Any:
+    return outcome(payload(name, [action("refit")]))
 
 
 @pytest.mark.parametrize("url", ["ftp://127.0.0.1/hook", "file:///tmp/hook", "127.0.0.1:8080/hook", "http:///x"])

@@ -3,9 +3,11 @@ with 4xx and 5xx replies at each step, dropping the connection, and silent beyon
 
 The rule under test (common practice, no source; RFC 5321 sections 3.8 and 4.2 for what a reply means):
 a failure before the server could have taken the message is a certain non-delivery and is retried until
-it goes through; a refusal reply after the data is certain too; only silence after the whole message was
+it goes through; a refusal reply after the data is certain too; a permanent refusal of the message (5xx to
+RCPT, DATA or the data) gives the notice up (``dead``, counted by ``drift status``), while a 5xx to MAIL
+(the sender or the session, the same for every notice) is retried; only silence after the whole message was
 written is *uncertain*: such a row is never re-sent automatically and is counted by ``drift status``.
-After the server recovers, each alert arrives exactly once. Invented payloads (tests/delivery/conftest.py).
+After the server recovers, each alert not given up arrives exactly once. Invented payloads (tests/delivery/conftest.py).
 """
 
 from __future__ import annotations
@@ -38,17 +40,20 @@ REFUSALS = {"4xx": {"greeting": "450 4.3.2 not now", "ehlo": "451 4.3.0 try late
                     "rcpt": "550 5.1.1 no such user", "data": "554 5.3.0 no", "eod": "554 5.6.0 rejected"},
             "421": {s: "421 4.3.2 closing" for s in ("greeting", "ehlo", "mail", "rcpt", "data", "eod")}}
 
-#: (step, fault) -> (failed, deferred, uncertain) in the round of the outage, for two due rows
+#: (step, fault) -> (failed, deferred, uncertain, dead) in the round of the outage, for two due rows
 #: "server": the channel is unavailable (first row failed, second deferred);
-#: "message": each row refused on its own; "after": silence after the data (uncertain, the second waits)
-SERVER, MESSAGE, AFTER = (1, 1, 0), (2, 0, 0), (0, 1, 1)
+#: "message": each row refused on its own; "after": silence after the data (uncertain, the second waits);
+#: "refused": each row refused for good (dead)
+SERVER, MESSAGE, AFTER, REFUSED = (1, 1, 0, 0), (2, 0, 0, 0), (0, 1, 1, 0), (0, 0, 0, 2)
 
 
-def expected(step: str, fault: str) -> tuple[int, int, int]:
+def expected(step: str, fault: str) -> tuple[int, int, int, int]:
     if fault == "421" or step in ("greeting", "ehlo"):
         return SERVER
     if fault in ("drop", "stall"):
         return AFTER if step == "eod" else SERVER
+    if fault == "5xx" and step in ("rcpt", "data", "eod"):
+        return REFUSED
     return MESSAGE
 
 
@@ -95,23 +100,25 @@ def test_outage_at_each_step_then_each_alert_once(tmp_path: Path, store: Any, sm
     keys = _two_alerts(cfg, store)
     smtp.fault = (step, REFUSALS[fault][step] if fault in REFUSALS else fault)
     rep = deliver_pending(cfg, store, now=T0, channels=_senders(cfg))
-    failed, deferred, uncertain = expected(step, fault)
-    assert (rep.sent, rep.failed, rep.deferred, rep.uncertain) == (0, failed, deferred, uncertain), rep.describe()
+    failed, deferred, uncertain, dead = expected(step, fault)
+    assert (rep.sent, rep.failed, rep.deferred, rep.uncertain, rep.dead) == (0, failed, deferred, uncertain, dead), \
+        rep.describe()
     taken = smtp.keys()
     assert taken == keys[:uncertain]  # only silence after the data can hide a delivery
     for r in _rows(store):
-        if r.status == "pending" and r.attempts:
+        if r.status in ("pending", "dead") and r.attempts:
             assert r.last_error and (fault not in REFUSALS or REFUSALS[fault][step].split()[0] in r.last_error
                                      or step in ("greeting", "ehlo")), r.last_error
-    # the server recovers: every alert arrives, exactly once, the uncertain one never again
+    # the server recovers: every alert not given up arrives, exactly once, the uncertain one never again
     smtp.fault = None
     for hours in (1, 2, 30):
         deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=hours), channels=_senders(cfg))
-    assert Counter(smtp.keys()) == Counter(keys)
+    assert Counter(smtp.keys()) == Counter(keys[:len(keys) - dead])
     statuses = [r.status for r in _rows(store)]
-    assert statuses.count("uncertain") == uncertain and statuses.count("sent") == len(keys) - uncertain
+    assert statuses.count("uncertain") == uncertain and statuses.count("dead") == dead
+    assert statuses.count("sent") == len(keys) - uncertain - dead
     status = collect_status(cfg, store, now=T0 + dt.timedelta(hours=31))
-    assert len(status["outbox"]["uncertain"]) == uncertain
+    assert len(status["outbox"]["uncertain"]) == uncertain and len(status["outbox"]["dead"]) == dead
 
 
 def test_server_down_then_up(tmp_path: Path, store: Any, smtp: ScriptedSmtp) -> None:
