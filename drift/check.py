@@ -1294,6 +1294,9 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         chosen = [apply_epoch(m, epochs[m.name]) for m in written]
         series = sorted({s for m in chosen for s in m.read_series})
         obs = store.load_observations(series, moment)
+        ahead = _plans_loaded_after_the_fact(cfg, chosen, store, moment)
+        if not ahead.empty:
+            obs = pd.concat([obs, ahead], ignore_index=True)
         from drift.executor import run_chunks  # executor calls back into analyse
 
         payloads, errors = run_chunks(cfg, chosen, obs, moment)
@@ -1340,6 +1343,40 @@ def _quarantine_hint(store: Any, models: Sequence[ModelConfig], obs: pd.DataFram
                  for s, (n, row, why) in ((s, held[s]) for s in dict.fromkeys(m.series) if s in held)]
         if notes:
             errors[m.name] += ". Ingest refused them: " + "; ".join(notes) + " (drift quarantine lists them)"
+
+
+def _plans_loaded_after_the_fact(cfg: Config, models: Sequence[ModelConfig], store: Any,
+                                 moment: datetime) -> pd.DataFrame:
+    """Plans of the period being forecast that the store holds as ordinary history.
+
+    A ``known`` driver at lag 0 needs its plan of the current period. Loaded from a file without an
+    available column, each first vintage counts as available at the end of its period plus the delay
+    (:mod:`drift.ingest.base`), so a plan of the current period is never "known" at the check's moment
+    although the file holds it. A plan is about the future: such a stored value (its availability exactly
+    that default) is not late. Returns those rows, to be added to the observations of the check.
+    """
+    want: dict[tuple[str, pd.Timestamp], pd.Timestamp] = {}
+    at = pd.Timestamp(moment) - pd.Timedelta(microseconds=1)
+    for m in models:
+        for dr in m.drivers:
+            if dr.form != "known":
+                continue
+            cur = period_start(at.tz_convert("UTC").tz_localize(None), m.frequency, week_anchor=week_anchor(m))
+            need = shift_periods(pd.DatetimeIndex([cur]), m.frequency, dr.lag)[0]
+            default_at = (next_period(need, m.frequency) + pd.Timedelta(cfg.driver_delay(m, dr))).tz_localize("UTC")
+            if default_at > pd.Timestamp(moment):
+                want[(dr.series, need)] = default_at
+    if not want:
+        return pd.DataFrame()
+    rows = store.load_observations(sorted({s for s, _ in want}), max(want.values()).to_pydatetime())
+    if rows.empty:
+        return rows
+    w = pd.DataFrame([(s, p, a) for (s, p), a in want.items()], columns=["series", "period", "_default_at"])
+    w["period"] = pd.to_datetime(w["period"])
+    w["_default_at"] = pd.to_datetime(w["_default_at"], utc=True)
+    got = rows.astype({"series": str}).merge(w, on=["series", "period"], how="inner")
+    got = got[(got["available_at"] == got["_default_at"]) & (got["available_at"] > pd.Timestamp(moment))]
+    return got.drop(columns="_default_at").reset_index(drop=True)
 
 
 def _alerts_and_delivery(cfg: Config, store: Any, outcome: CheckOutcome, *, send: bool = True) -> None:

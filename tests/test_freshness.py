@@ -57,3 +57,32 @@ def test_plan_that_stops_is_late(tmp_path) -> None:
     assert [a["driver"] for a in late] == ["x2"]
     assert late[0]["last_period"] == periods[-3].date().isoformat()
     assert "plan" in late[0]["reason"]
+
+
+def test_plan_loaded_after_the_fact_is_not_late_when_its_period_is_in_the_file(tmp_path, sqlite_store) -> None:
+    # invented scenario (simulation): x2 is a known driver at lag 0 (a planned calendar) loaded as ordinary
+    # history, without an available column, a year after the check date; the file holds x2 for the
+    # current week (the week being forecast) although its target is not in yet. Each first vintage then
+    # counts as available at the end of its week, so the check used to call x2 late on every model.
+    from datetime import timedelta
+
+    from drift.check import as_of_moment, run_check
+    from drift.ingest import ingest_all
+    from tests.check_scenarios import config, write_csv
+
+    cfg = config(tmp_path, csv=True)
+    text = (tmp_path / "drift.yaml").read_text(encoding="utf-8").replace(
+        "{series: x2, lag: 1, form: lagged}", "{series: x2, lag: 0, form: known}")
+    (tmp_path / "drift.yaml").write_text(text, encoding="utf-8")
+    cfg = load_config(tmp_path / "drift.yaml")
+    periods, values = simulate(Scenario(seed=803))
+    values = {k: v.astype(float).copy() for k, v in values.items()}
+    values["y"][-1] = np.nan  # the current week: its target is not in yet, its plan is
+    values["x1"][-1] = np.nan
+    write_csv(tmp_path, periods, values)
+    day = periods[-1].date() + timedelta(days=2)  # inside the current week
+    ingest_all(cfg, sqlite_store, now=as_of_moment(day) + timedelta(days=365), progress=False)
+    out = run_check(cfg, sqlite_store, as_of=day, deliver=False)
+    (p,) = out.models
+    assert _late(p) == [], _late(p)
+    assert p["charts"]["feeds"]["x2"]["late"] is False
