@@ -5,9 +5,11 @@ PostgreSQL, and two daemons on two machines pointed at one server store still ex
 
 Protocol
 --------
-- *acquire*: insert the row ``(name, owner, pid, host, acquired_at, heartbeat_at)``; ``name`` is the primary
-  key, so a second insert fails. When a row is already there, it is *stale* if its holder is on this host and
-  its pid is no longer alive (``os.kill(pid, 0)``), or if its heartbeat is older than ``stale_after``. A stale
+- *acquire*: insert the row ``(name, owner, pid, host, proc_start, acquired_at, heartbeat_at)``; ``name`` is
+  the primary key, so a second insert fails. When a row is already there, it is *stale* if its holder is on
+  this host and is no longer running: the pid is gone, a zombie, or now names another process (its start
+  time differs from ``proc_start``, see :mod:`drift.procs`: a crashed daemon's pid reused by an unrelated
+  process does not hold the store), or if its heartbeat is older than ``stale_after``. A stale
   row is taken over with a compare-and-swap update (``WHERE owner = <old owner> AND heartbeat_at = <old
   heartbeat>``), so of two processes racing for one stale lock exactly one wins. A live row ->
   :class:`~drift.exceptions.LockError` naming the holder's pid, host and since when.
@@ -36,6 +38,7 @@ import sqlalchemy as sa
 from typing_extensions import Self
 
 from drift.exceptions import LockError
+from drift.procs import process_start, why_dead
 from drift.store import STORE_FAILURES, Store, locks, utcnow
 
 log = logging.getLogger(__name__)
@@ -46,19 +49,9 @@ HEARTBEAT_SECONDS = 15.0
 STALE_AFTER_SECONDS = 120.0
 
 
-def pid_alive(pid: int) -> bool:
-    """Whether a process with this pid exists on this host (signal 0 probes without signalling)."""
-    if pid <= 0:
-        return False
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # exists, owned by another user
-        return True
-    except OSError:
-        return False
-    return True
+def pid_alive(pid: int, start: str | None = None) -> bool:
+    """Whether the process ``pid`` (started at ``start``, when given) still runs on this host."""
+    return why_dead(pid, start) is None
 
 
 def read_lock(store: Store, name: str = "daemon") -> dict[str, Any] | None:
@@ -73,8 +66,10 @@ def is_stale(row: dict[str, Any], *, now: datetime, stale_after: float = STALE_A
     """Why the lock ``row`` is stale (a sentence), or None when its holder looks alive."""
     host = host or socket.gethostname()
     age = (now - row["heartbeat_at"]).total_seconds()
-    if row["host"] == host and not pid_alive(int(row["pid"])):
-        return f"its process {row['pid']} on {row['host']} is no longer running"
+    if row["host"] == host:
+        why = why_dead(int(row["pid"]), row.get("proc_start"))
+        if why is not None:
+            return f"its process {row['pid']} on {row['host']} {why}"
     if age > stale_after:
         return f"its heartbeat is {age:.0f} s old (limit {stale_after:.0f} s)"
     return None
@@ -113,6 +108,7 @@ class StoreLock:
         self.clock = clock
         self.host = socket.gethostname()
         self.pid = os.getpid()
+        self.proc_start = process_start()
         self.owner = f"{self.host}:{self.pid}:{secrets.token_hex(4)}"
         self.held = False
         self.lost = threading.Event()
@@ -124,7 +120,7 @@ class StoreLock:
         """Take the lock (or a stale one), start the heartbeat; :class:`LockError` when it is held."""
         now = self.clock()
         row = {"name": self.name, "owner": self.owner, "pid": self.pid, "host": self.host,
-               "acquired_at": now, "heartbeat_at": now}
+               "proc_start": self.proc_start, "acquired_at": now, "heartbeat_at": now}
         try:
             with self.store.begin() as conn:
                 conn.execute(locks.insert().values(**row))
@@ -143,7 +139,7 @@ class StoreLock:
             with self.store.begin() as conn:
                 conn.execute(locks.insert().values(
                     name=self.name, owner=self.owner, pid=self.pid, host=self.host,
-                    acquired_at=now, heartbeat_at=now))
+                    proc_start=self.proc_start, acquired_at=now, heartbeat_at=now))
             return
         why = is_stale(old, now=now, stale_after=self.stale_after, host=self.host)
         if why is None:
@@ -157,7 +153,8 @@ class StoreLock:
                 locks.update()
                 .where(locks.c.name == self.name, locks.c.owner == old["owner"],
                        locks.c.heartbeat_at == old["heartbeat_at"])
-                .values(owner=self.owner, pid=self.pid, host=self.host, acquired_at=now, heartbeat_at=now))
+                .values(owner=self.owner, pid=self.pid, host=self.host, proc_start=self.proc_start,
+                        acquired_at=now, heartbeat_at=now))
         if res.rowcount != 1:
             raise LockError(f"another process took over the stale {self.name} lock at the same moment; "
                             "it now holds this store")

@@ -23,6 +23,15 @@ Scheduling rules (each a trap of APScheduler 3.x that is handled here)
   default of one second silently drops a slightly late job). A fire time later than that is recorded as
   ``missed`` (listener on ``EVENT_JOB_MISSED``; a fire time skipped because the previous run is still going,
   ``EVENT_JOB_MAX_INSTANCES``, is recorded ``missed`` too).
+- *Abandoned runs.* A run whose process died is recorded ``abandoned`` at the next start (or by the next
+  run, :meth:`drift.store.Store.close_stale_runs`). When the newest fire time of a job was abandoned or
+  missed and is still within the misfire grace, and no later fire time has passed, the start runs it again,
+  once (``detail.rerun_of`` = the abandoned run's id): a weekly check killed mid-run is not a week lost.
+- *One row per execution.* The job body runs inside :meth:`drift.store.Store.adopting`: the run that
+  ``run_check`` / ``run_ingest`` / ``run_digest`` record is the daemon's row, and the daemon records the
+  status they reached (``partial`` when some models were not checked), not a blanket ``ok``.
+- *Stop.* :meth:`Daemon.stop` returns only once the end of every run it waited for is written, whichever
+  thread writes it (the job's thread often wins the race and was killed at exit before).
 - *Stable ids.* ``"drift:<name>"`` with ``replace_existing=True``: re-adding jobs never raises
   ``ConflictingIdError``.
 - *Time limit.* ``max_instances=1`` means one hung run would block every later one, so the body runs in a
@@ -81,7 +90,7 @@ from apscheduler.triggers.interval import IntervalTrigger
 from drift.config import Config, parse_trigger
 from drift.exceptions import LockError, StoreError
 from drift.lock import HEARTBEAT_SECONDS, STALE_AFTER_SECONDS, StoreLock
-from drift.store import STORE_FAILURES, Store, open_store, utcnow
+from drift.store import STORE_FAILURES, RunScope, Store, open_store, utcnow
 
 log = logging.getLogger(__name__)
 
@@ -89,6 +98,8 @@ log = logging.getLogger(__name__)
 JOB_NAMES = ("ingest", "check", "digest", "retry")
 #: seconds a running job may take to finish after a stop signal before it is abandoned
 STOP_GRACE_SECONDS = 30.0
+#: run statuses after which a scheduled fire time within the misfire grace is run again at the next start
+RERUN_STATUSES = ("abandoned", "missed")
 #: fire times counted when measuring a backlog (beyond this the count is reported as ">= this")
 BACKLOG_COUNT_LIMIT = 10_000
 #: seconds between two checks of the stop flag while the daemon idles
@@ -108,10 +119,10 @@ JobFunc = Callable[[Config, Store], Any]
 # Module-level functions importing the library lazily, so this module imports without them.
 
 def job_ingest(cfg: Config, store: Store) -> Any:
-    """Read every source into the store."""
-    from drift.ingest import ingest_all
+    """Read every source into the store (a file that could not be read makes the run ``partial``)."""
+    from drift.pipeline import run_ingest
 
-    return ingest_all(cfg, store)
+    return run_ingest(cfg, store, progress=False)
 
 
 def job_check(cfg: Config, store: Store) -> Any:
@@ -241,6 +252,10 @@ class _InFlight:
     box: dict[str, Any] = field(default_factory=dict)
     detail: dict[str, Any] = field(default_factory=dict)
     settled: bool = False
+    #: set once the end is written (or could not be written): what :meth:`Daemon.stop` waits for
+    recorded: threading.Event = field(default_factory=threading.Event)
+    #: the job's own run, adopted (:meth:`drift.store.Store.adopting`): its status, detail, error, as_of
+    scope: RunScope | None = None
 
 
 class _DaemonExecutor(BaseExecutor):
@@ -294,8 +309,12 @@ class Daemon:
         self.state = DaemonState.STARTING
         self.outcomes: list[JobOutcome] = []
         self._lock = threading.Lock()
+        self._idle = threading.Condition(self._lock)
+        self._starting = 0  # run_once calls between the state check and their registration in _inflight
         self._inflight: dict[int, _InFlight] = {}
+        self._unrecorded: list[_InFlight] = []  # ends the store could not take yet: retried
         self._backlog: dict[str, int] = {}
+        self._rerun: dict[str, tuple[datetime, int]] = {}  # job -> (fire time, run id) to run again once
         self.scheduler = BackgroundScheduler(
             timezone=self.tz, executors={"default": _DaemonExecutor(self)},
             job_defaults={"coalesce": True, "max_instances": 1,
@@ -315,14 +334,17 @@ class Daemon:
             log.info("job %s (%s): next run %s", j.name, j.trigger, j.next_run_time)
 
     def stop(self) -> None:
-        """Stop firing; let running jobs finish within ``stop_grace`` seconds, abandon the rest."""
-        if self.state in (DaemonState.STOPPING, DaemonState.STOPPED):
-            return
-        self._set_state(DaemonState.STOPPING)
+        """Stop firing; let running jobs finish within ``stop_grace`` seconds, abandon the rest; return only
+        once the end of every run is recorded (whichever thread records it)."""
+        with self._lock:
+            if self.state in (DaemonState.STOPPING, DaemonState.STOPPED):
+                return
+            self._set_state(DaemonState.STOPPING)  # from here run_once starts nothing new
         if self.scheduler.running:
             self.scheduler.shutdown(wait=False)
         deadline = _monotonic() + self.stop_grace
-        with self._lock:
+        with self._idle:  # a run whose start is being written now is waited for too
+            self._idle.wait_for(lambda: self._starting == 0, timeout=self._record_wait())
             running = list(self._inflight.values())
         if running:
             log.info("waiting up to %.0f s for %s to finish", self.stop_grace,
@@ -334,7 +356,16 @@ class Daemon:
             else:
                 self._settle(fl, "abandoned", error=(
                     f"still running {self.stop_grace:.0f} s after the daemon was asked to stop; abandoned"))
+        for fl in running:  # settled by the job's own thread: its write may still be under way
+            if not fl.recorded.wait(self._record_wait()):
+                log.error("%s: the end of run %d was not recorded in time; it will be found abandoned",
+                          fl.name, fl.run_id)
+        self._record_pending()
         self._set_state(DaemonState.STOPPED)
+
+    def _record_wait(self) -> float:
+        """Seconds one store write may take: the store's busy timeout, and some."""
+        return float(getattr(self.store, "busy_timeout", 30.0)) + 5.0
 
     def _set_state(self, state: DaemonState) -> None:
         log.info("daemon %s -> %s", self.state.value, state.value)
@@ -365,6 +396,12 @@ class Daemon:
                     log.warning("%s: %d fire times passed since the last recorded one (%s); they are "
                                 "coalesced into one run scheduled for %s", name, n, last, latest)
                 self._backlog[name] = n
+                rerun = self._to_rerun(name, now)
+                if rerun is not None and nxt is not None and nxt > now:
+                    # no later fire time has passed (that one would run, coalesced): run this one again
+                    log.warning("%s: the run scheduled for %s was %s (run %d) and is within the misfire "
+                                "grace; running it again now", name, rerun[0], rerun[2], rerun[1])
+                    self._rerun[name], nxt = (rerun[0], rerun[1]), rerun[0]
             self.scheduler.add_job(
                 func, trigger, args=(self.cfg, self.store), id=job_id(name), name=name,
                 replace_existing=True, coalesce=True, max_instances=1, misfire_grace_time=grace,
@@ -416,12 +453,40 @@ class Daemon:
         return events
 
     def run_once(self, name: str, scheduled_for: datetime) -> JobOutcome:
-        """Run job ``name`` for one fire time under the time limit, recording it in ``runs``."""
+        """Run job ``name`` for one fire time under the time limit, recording it in ``runs``.
+
+        The job's own run of the same kind (``run_check``, ``run_ingest``, ``run_digest`` record one) is this
+        row, adopted: one row per execution, with the status the job reached (``partial`` stays partial).
+        """
+        with self._lock:
+            if self.state in (DaemonState.STOPPING, DaemonState.STOPPED):
+                # stopping: nothing new starts, nothing is recorded; the next start resumes from this time
+                return JobOutcome(name, scheduled_for, "not started", error="the daemon is stopping")
+            self._starting += 1
+        starting = [True]  # until the run is in _inflight (or never will be)
+        try:
+            return self._run_once(name, scheduled_for, starting)
+        finally:
+            with self._idle:
+                self._started(starting)
+
+    def _started(self, starting: list[bool]) -> None:
+        """The run has left its start window (call with ``self._idle`` held)."""
+        if starting[0]:
+            starting[0] = False
+            self._starting -= 1
+            self._idle.notify_all()
+
+    def _run_once(self, name: str, scheduled_for: datetime, starting: list[bool]) -> JobOutcome:
+        self._record_pending()
         func = self.jobs[name]
         detail: dict[str, Any] = {"trigger": getattr(self.cfg.schedule, name, None)}
         coalesced = self._backlog.pop(name, 0)
         if coalesced > 1:
             detail["coalesced"] = coalesced
+        rerun = self._rerun.pop(name, None)
+        if rerun is not None and rerun[0] == scheduled_for:
+            detail["rerun_of"] = rerun[1]
         try:
             run_id = self.store.start_run(name, job_id=job_id(name), scheduled_for=scheduled_for,
                                           detail=detail)
@@ -437,15 +502,18 @@ class Daemon:
 
         def body() -> None:
             try:
-                fl.box["result"] = func(self.cfg, self.store)
+                with self.store.adopting(run_id, name) as scope:
+                    fl.scope = scope
+                    fl.box["result"] = func(self.cfg, self.store)
             except BaseException as exc:  # noqa: BLE001 - every failure becomes an outcome
                 fl.box["exc"] = exc
                 fl.box["tb"] = traceback.format_exc()
             finally:
                 fl.done.set()
 
-        with self._lock:
+        with self._idle:
             self._inflight[run_id] = fl
+            self._started(starting)
         log.info("%s: run %d started (scheduled for %s)", name, run_id, scheduled_for)
         threading.Thread(target=body, name=f"drift-{name}-{run_id}-body", daemon=True).start()
         if fl.done.wait(self.job_timeout):
@@ -468,27 +536,63 @@ class Daemon:
         return self._outcome_of(fl)
 
     def _settle(self, fl: _InFlight, status: str, *, error: str | None = None, result: Any = None) -> None:
-        """Record the end of a run, once (the job thread and :meth:`stop` may both try)."""
+        """Record the end of a run, once (the job thread and :meth:`stop` may both try; :meth:`stop` then
+        waits for ``fl.recorded``).
+
+        A job that recorded its own end (its adopted run, :attr:`_InFlight.scope`) gives the status and
+        error when it returned: a check that could not check every model is ``partial``, not ``ok``.
+        """
         with self._lock:
             if fl.settled:
                 return
             fl.settled = True
-            self._inflight.pop(fl.run_id, None)
-        duration = _monotonic() - fl.started
-        fl.box["status"], fl.box["error"], fl.box["duration"] = status, error, duration
-        detail = {**fl.detail, "duration_s": round(duration, 3)}
-        if result is not None:
-            detail["result"] = _summary(result)
         try:
-            self.store.finish_run(fl.run_id, status, detail=detail, error=error)
+            duration = _monotonic() - fl.started
+            scope = fl.scope
+            inner = scope.status if scope is not None and fl.done.is_set() else None
+            if status == "ok" and inner is not None:
+                status, error = inner, scope.error if scope is not None else None
+            fl.box["status"], fl.box["error"], fl.box["duration"] = status, error, duration
+            detail = {**fl.detail}
+            if scope is not None and scope.adopted:
+                detail = {**scope.start_detail, **(scope.detail or {}), **fl.detail}
+            detail["duration_s"] = round(duration, 3)
+            if result is not None and inner is None:
+                detail["result"] = _summary(result)
+            fl.box["end"] = {"status": status, "detail": detail, "error": error,
+                             "as_of": scope.as_of if scope is not None else None}
+            if not self._write_end(fl):
+                with self._lock:
+                    self._unrecorded.append(fl)
+            level = logging.INFO if status == "ok" else logging.WARNING
+            log.log(level, "%s: run %d %s in %.1f s%s", fl.name, fl.run_id, status, duration,
+                    f": {error}" if error and status != "failed" else "")
+            self._append(self._outcome_of(fl))
+        finally:
+            with self._lock:
+                self._inflight.pop(fl.run_id, None)
+            fl.recorded.set()
+
+    def _write_end(self, fl: _InFlight) -> bool:
+        end = fl.box["end"]
+        try:
+            self.store.finish_run(fl.run_id, end["status"], detail=end["detail"], error=end["error"],
+                                  as_of=end["as_of"])
         except STORE_FAILURES as exc:
             self.store.dispose()
-            log.error("%s: cannot record run %d as %s (%s); it stays 'running' until the next start",
-                      fl.name, fl.run_id, status, _short(exc))
-        level = logging.INFO if status == "ok" else logging.WARNING
-        log.log(level, "%s: run %d %s in %.1f s%s", fl.name, fl.run_id, status, duration,
-                f": {error}" if error and status != "failed" else "")
-        self._append(self._outcome_of(fl))
+            log.error("%s: cannot record run %d as %s (%s); retried before the next run and at stop",
+                      fl.name, fl.run_id, end["status"], _short(exc))
+            return False
+        return True
+
+    def _record_pending(self) -> None:
+        """Write the ends the store could not take earlier (a run left 'running' while we live is false)."""
+        with self._lock:
+            pending, self._unrecorded = self._unrecorded, []
+        failed = [fl for fl in pending if not self._write_end(fl)]
+        if failed:
+            with self._lock:
+                self._unrecorded[:0] = failed
 
     def _outcome_of(self, fl: _InFlight) -> JobOutcome:
         return JobOutcome(fl.name, fl.scheduled_for, fl.box.get("status", "running"), fl.run_id,
@@ -526,20 +630,43 @@ class Daemon:
                 log.error("%s: cannot record a missed run (%s)", name, _short(exc))
             self._append(JobOutcome(name, t, "missed", run_id, err))
 
-    def _last_scheduled(self, name: str) -> datetime | None:
-        rows = [r for r in self.store.recent_runs(kind=name, limit=200)
+    def _scheduled_rows(self, name: str) -> list[dict[str, Any]]:
+        return [r for r in self.store.recent_runs(kind=name, limit=200)
                 if r["job_id"] == job_id(name) and r["scheduled_for"] is not None]
-        return max((r["scheduled_for"] for r in rows), default=None)
+
+    def _last_scheduled(self, name: str) -> datetime | None:
+        return max((r["scheduled_for"] for r in self._scheduled_rows(name)), default=None)
+
+    def _to_rerun(self, name: str, now: datetime) -> tuple[datetime, int, str] | None:
+        """The newest fire time of job ``name`` when it was abandoned or missed, lies within the misfire
+        grace, and was not run again already: (fire time, run id, status); else None."""
+        rows = self._scheduled_rows(name)
+        if not rows:
+            return None
+        last = max(rows, key=lambda r: (r["scheduled_for"], r["id"]))
+        fire = last["scheduled_for"]
+        if last["status"] not in RERUN_STATUSES or now - fire > self.misfire_grace:
+            return None
+        if sum(1 for r in rows if r["scheduled_for"] == fire) > 1:  # a re-run already happened: once only
+            return None
+        return fire, int(last["id"]), str(last["status"])
 
     def _close_orphans(self) -> None:
-        """Runs left ``running`` by a daemon that died: nobody else can be running them (we hold the lock)."""
+        """Runs left ``running`` by a daemon that died: nobody else can be running them (we hold the lock);
+        then any other run whose process is gone (:meth:`drift.store.Store.close_stale_runs`)."""
+        now = utcnow()
         for name in JOB_NAMES:
             for r in self.store.recent_runs(kind=name, limit=200):
                 if r["status"] == "running" and r["job_id"] == job_id(name):
+                    why = self.store.run_stale_reason(r, now=now) or (
+                        f"the daemon that ran it (pid {r.get('pid')} on {r.get('host')}) no longer holds the store")
+                    last = r.get("heartbeat_at") or r["started_at"]
                     self.store.finish_run(int(r["id"]), "abandoned", error=(
-                        "the daemon stopped before this run finished (found at the next start)"))
-                    log.warning("%s: run %s was left running by a previous daemon; recorded abandoned",
-                                name, r["id"])
+                        f"abandoned: {why}; last sign of life {last:%Y-%m-%d %H:%M:%S} UTC; found when the "
+                        "next daemon started"))
+                    log.warning("%s: run %s was left running by a previous daemon (%s); recorded abandoned",
+                                name, r["id"], why)
+        self.store.close_stale_runs(note="found when the daemon started")
 
 
 def _monotonic() -> float:

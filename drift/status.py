@@ -35,9 +35,12 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
 
     - ``now``, ``timezone`` (the schedule's zone name)
     - ``jobs``: name -> {``schedule`` (text or None), ``last_run`` (started_at), ``finished_at``,
-      ``outcome`` (runs.status), ``duration`` (seconds), ``error``, ``next_run`` (aware, in the schedule zone)}
-      for ingest, check, digest, retry; the check's also ``failed_models`` (how many models its last run
-      could not check, None when unknown)
+      ``outcome`` (runs.status), ``duration`` (seconds), ``error``, ``next_run`` (aware, in the schedule zone),
+      ``pid``, ``host``, ``heartbeat_at`` (the process that ran it and its last heartbeat)} for ingest, check,
+      digest, retry; the check's also ``failed_models`` (how many models its last run could not check, None
+      when unknown). A last run still recorded ``running`` whose process is gone (dead on this host, or
+      silent past :data:`~drift.store.RUN_STALE_AFTER_SECONDS` elsewhere) is shown ``abandoned`` with the
+      reason: status only reads, the next run records it.
     - ``outbox``: {``pending`` (count), ``oldest_pending`` (created_at), ``last_error`` (newest error of a
       pending row), ``counts`` (per status), ``uncertain`` and ``dead`` (rows: id, channel, subject,
       attempts, last_error, created_at)}
@@ -69,14 +72,25 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
         duration = None
         if last is not None and last["finished_at"] is not None:
             duration = (last["finished_at"] - last["started_at"]).total_seconds()
+        outcome, error = (last["status"], last["error"]) if last else (None, None)
+        if outcome == "running":
+            assert last is not None
+            why = store.run_stale_reason(last)  # against the real clock: liveness is now, whatever `now` says
+            if why is not None:
+                seen = last.get("heartbeat_at") or last["started_at"]
+                outcome, error = "abandoned", (f"abandoned: {why}; last sign of life {seen:%Y-%m-%d %H:%M:%S} "
+                                               "UTC (not yet recorded: the next run records it)")
         jobs[name] = {
             "schedule": text,
             "last_run": last["started_at"] if last else None,
             "finished_at": last["finished_at"] if last else None,
-            "outcome": last["status"] if last else None,
+            "outcome": outcome,
             "duration": duration,
-            "error": last["error"] if last else None,
+            "error": error,
             "next_run": nxt,
+            "pid": last.get("pid") if last else None,
+            "host": last.get("host") if last else None,
+            "heartbeat_at": last.get("heartbeat_at") if last else None,
         }
         if name == "check":
             jobs[name]["failed_models"] = _failed_models(last)
@@ -214,7 +228,9 @@ def format_status(status: dict[str, Any]) -> str:
         took = "-" if j["duration"] is None else f"{j['duration']:.1f}s"
         lines.append(f"  {name:<8} {(j['schedule'] or 'off'):<16} {_t(j['last_run']):<22} "
                      f"{(j['outcome'] or '-'):<10} {took:>8}  {_t(j['next_run'])}")
-        if j["outcome"] not in (None, "ok", "running") and j["error"]:
+        if j["outcome"] == "running":
+            lines.append(f"           pid {j['pid']} on {j['host']}, last heartbeat {_t(j['heartbeat_at'])}")
+        elif j["outcome"] not in (None, "ok") and j["error"]:
             lines.append(f"           {j['error'][:200]}")
         elif j.get("failed_models"):
             lines.append(f"           {j['failed_models']} model(s) could not be checked")

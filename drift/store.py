@@ -23,9 +23,12 @@ import logging
 import math
 import os
 import socket
+import threading
+import time
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from contextvars import ContextVar
+from dataclasses import dataclass, field
 from datetime import date, datetime, timezone
 from typing import Any
 
@@ -35,11 +38,12 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
 from drift.exceptions import SchemaVersionError, StoreError
+from drift.procs import START_MAX_LEN, process_start, this_host, why_dead
 
 log = logging.getLogger(__name__)
 
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
 NO_ISSUE_KEY = "0001-01-01 00:00:00"
 
@@ -143,13 +147,33 @@ runs = sa.Table(
     sa.Column("job_id", sa.String(100)),
     sa.Column("started_at", UTCDateTime, nullable=False),
     sa.Column("finished_at", UTCDateTime),
-    sa.Column("status", sa.String(20), nullable=False),  # running | ok | failed | missed | timeout | abandoned
+    # running | ok | partial | failed | missed | timeout | abandoned (see RUN_STATES)
+    sa.Column("status", sa.String(20), nullable=False),
     sa.Column("as_of", sa.Date),
     sa.Column("scheduled_for", UTCDateTime),
     sa.Column("detail", sa.Text),
     sa.Column("error", sa.Text),
+    # the process that runs it (schema 4): host, pid, process start (drift.procs) and its last heartbeat
+    sa.Column("pid", sa.Integer),
+    sa.Column("host", sa.String(200)),
+    sa.Column("proc_start", sa.String(START_MAX_LEN)),
+    sa.Column("heartbeat_at", UTCDateTime),
 )
 sa.Index("ix_runs_kind", runs.c.kind, runs.c.started_at)
+sa.Index("ix_runs_status", runs.c.status)
+
+#: what a ``runs.status`` means
+RUN_STATES: dict[str, str] = {
+    "running": "its process is working on it (and beats every RUN_HEARTBEAT_SECONDS)",
+    "ok": "finished; everything it was asked to do was done",
+    "partial": "finished; some of it could not be done (models not checked, files not read): see error",
+    "failed": "stopped by an error: see error",
+    "timeout": "the daemon gave up waiting after schedule.job_timeout (its thread may still have finished)",
+    "missed": "a scheduled fire time that was not run (late beyond schedule.misfire_grace, or the previous "
+              "run was still going)",
+    "abandoned": "its process died or went silent before recording the end: finished_at is when that was "
+                 "found, error says why",
+}
 
 verdicts = sa.Table(
     "verdicts", metadata,
@@ -238,6 +262,7 @@ locks = sa.Table(
     sa.Column("host", sa.String(200), nullable=False),
     sa.Column("acquired_at", UTCDateTime, nullable=False),
     sa.Column("heartbeat_at", UTCDateTime, nullable=False),
+    sa.Column("proc_start", sa.String(START_MAX_LEN)),  # the holder's process start (schema 4)
 )
 
 
@@ -329,6 +354,11 @@ PG_APPLICATION_NAME = "drift"
 #: what a store operation can raise when the database is unusable right now (callers that must survive it,
 #: such as the daemon, catch these)
 STORE_FAILURES: tuple[type[Exception], ...] = (sa.exc.SQLAlchemyError, StoreError)
+#: seconds between two heartbeats of the running runs of a process (one UPDATE for all of them)
+RUN_HEARTBEAT_SECONDS = 30.0
+#: a running run whose heartbeat is older than this is abandoned, when its process is on another host (or
+#: unknown); on this host the process itself is asked (pid and start time) whatever the heartbeat's age
+RUN_STALE_AFTER_SECONDS = 600.0
 #: SQLite error texts that mean "another connection holds the lock" (SQLITE_BUSY / SQLITE_LOCKED)
 _SQLITE_BUSY_TEXTS = ("database is locked", "database table is locked", "database schema is locked")
 
@@ -373,6 +403,10 @@ class Store:
     engine: Engine
     url: str
     busy_timeout: float = SQLITE_BUSY_TIMEOUT
+    #: seconds between heartbeats of this process's running runs; the age that makes another host's stale
+    run_heartbeat: float = RUN_HEARTBEAT_SECONDS
+    run_stale_after: float = RUN_STALE_AFTER_SECONDS
+    _beats: _RunBeats = field(default_factory=lambda: _RunBeats(), init=False, repr=False, compare=False)
 
     @property
     def dialect(self) -> str:
@@ -695,19 +729,72 @@ class Store:
     # ---------------------------------------------------------------- runs
     def start_run(self, kind: str, *, as_of: date | None = None, job_id: str | None = None,
                   scheduled_for: datetime | None = None, detail: dict[str, Any] | None = None) -> int:
+        """Record a run as ``running``, owned by this process (host, pid, process start), and keep its
+        heartbeat while it lasts. Running rows of dead or silent processes are first recorded abandoned.
+
+        Inside :meth:`adopting` (the daemon's job), the first run of the adopted kind is the daemon's own
+        row: no second row is written, and its end is handed to the daemon (:meth:`finish_run`).
+        """
+        scope = _RUN_SCOPE.get()
+        if scope is not None and scope.store is self and scope.kind == kind and not scope.adopted:
+            scope.adopted, scope.as_of, scope.start_detail = True, as_of, dict(detail or {})
+            return scope.run_id
+        now = utcnow()
         with self.begin() as conn:
+            _close_stale(conn, now, self.run_stale_after, note="found when a later run started")
             res = conn.execute(runs.insert().values(
-                kind=kind, job_id=job_id, started_at=utcnow(), status="running", as_of=as_of,
-                scheduled_for=scheduled_for, detail=json.dumps(detail or {}, default=str)))
-            return int(res.inserted_primary_key[0])
+                kind=kind, job_id=job_id, started_at=now, status="running", as_of=as_of,
+                scheduled_for=scheduled_for, detail=json.dumps(detail or {}, default=str),
+                pid=os.getpid(), host=this_host(), proc_start=process_start(), heartbeat_at=now))
+            run_id = int(res.inserted_primary_key[0])
+        self._beats.add(self, run_id)
+        return run_id
 
     def finish_run(self, run_id: int, status: str, *, detail: dict[str, Any] | None = None,
-                   error: str | None = None) -> None:
-        values: dict[str, Any] = {"finished_at": utcnow(), "status": status, "error": error}
+                   error: str | None = None, as_of: date | None = None) -> None:
+        """Record the end of a run (once it is over, its heartbeat stops, whether or not the write works).
+
+        The end of a run adopted from the daemon (:meth:`adopting`) is kept for the daemon to record.
+        """
+        scope = _RUN_SCOPE.get()
+        if scope is not None and scope.store is self and scope.adopted and scope.run_id == run_id:
+            scope.status, scope.detail, scope.error = status, dict(detail or {}), error
+            return
+        self._beats.discard(run_id)
+        now = utcnow()
+        values: dict[str, Any] = {"finished_at": now, "status": status, "error": error, "heartbeat_at": now}
         if detail is not None:
             values["detail"] = json.dumps(detail, default=str)
+        if as_of is not None:
+            values["as_of"] = as_of
         with self.begin() as conn:
             conn.execute(runs.update().where(runs.c.id == run_id).values(**values))
+
+    @contextmanager
+    def adopting(self, run_id: int, kind: str) -> Iterator[RunScope]:
+        """Within this block (this thread's context), the first :meth:`start_run` of ``kind`` returns
+        ``run_id`` instead of writing a second row, and its :meth:`finish_run` is kept in the yielded
+        :class:`RunScope` (status, detail, error, as_of) for the caller to record."""
+        scope = RunScope(store=self, run_id=run_id, kind=kind)
+        token = _RUN_SCOPE.set(scope)
+        try:
+            yield scope
+        finally:
+            _RUN_SCOPE.reset(token)
+
+    def close_stale_runs(self, *, note: str | None = None) -> list[dict[str, Any]]:
+        """Record every running run whose process is gone as ``abandoned`` (finished_at = now, error = why).
+
+        Gone: on this host, its pid is not running or now names another process (start time differs); on
+        another host (or unknown), no heartbeat for :attr:`run_stale_after` seconds. Returns the closed
+        runs: ``id``, ``kind``, ``job_id``, ``scheduled_for``, ``why``.
+        """
+        with self.begin() as conn:
+            return _close_stale(conn, utcnow(), self.run_stale_after, note=note)
+
+    def run_stale_reason(self, row: dict[str, Any], *, now: datetime | None = None) -> str | None:
+        """Why a ``running`` runs row's process is gone (a sentence), or None while it looks alive."""
+        return run_stale_reason(row, now=now or utcnow(), stale_after=self.run_stale_after)
 
     def record_run(self, kind: str, status: str, *, job_id: str | None = None,
                    scheduled_for: datetime | None = None, detail: dict[str, Any] | None = None,
@@ -751,6 +838,120 @@ class Store:
                 d["payload"] = json.loads(d["payload"])
                 out.append(d)
             return out
+
+
+# ---------------------------------------------------------------------------------------- run owners
+@dataclass
+class RunScope:
+    """A run the daemon recorded and a job's own :meth:`Store.start_run` adopts (see :meth:`Store.adopting`).
+
+    After the job: ``adopted`` tells whether the job recorded a run of this kind; ``status``, ``detail``,
+    ``error`` are what it would have recorded at its end (None: it did not get there), ``as_of`` and
+    ``start_detail`` what it recorded at its start.
+    """
+
+    store: Store
+    run_id: int
+    kind: str
+    adopted: bool = False
+    as_of: date | None = None
+    start_detail: dict[str, Any] = field(default_factory=dict)
+    status: str | None = None
+    detail: dict[str, Any] | None = None
+    error: str | None = None
+
+
+_RUN_SCOPE: ContextVar[RunScope | None] = ContextVar("drift_run_scope", default=None)
+
+
+class _RunBeats:
+    """The running runs of this process and the one thread that beats them all (one UPDATE per beat)."""
+
+    def __init__(self) -> None:
+        self.lock = threading.Lock()
+        self.ids: set[int] = set()
+        self.pid = os.getpid()
+        self.thread: threading.Thread | None = None
+
+    def _mine(self) -> None:
+        if self.pid != os.getpid():  # a forked child: the parent's runs and thread are not ours
+            self.ids, self.pid, self.thread = set(), os.getpid(), None
+
+    def add(self, store: Store, run_id: int) -> None:
+        with self.lock:
+            self._mine()
+            self.ids.add(run_id)
+            if self.thread is None or not self.thread.is_alive():
+                self.thread = threading.Thread(target=self._run, args=(store,), name="drift-run-heartbeat",
+                                               daemon=True)
+                self.thread.start()
+
+    def discard(self, run_id: int) -> None:
+        with self.lock:
+            self._mine()
+            self.ids.discard(run_id)
+
+    def _run(self, store: Store) -> None:
+        me = threading.current_thread()
+        while True:
+            time_to_wait = store.run_heartbeat
+            time.sleep(time_to_wait)
+            with self.lock:
+                if self.thread is not me:
+                    return
+                ids = sorted(self.ids)
+                if not ids:
+                    self.thread = None
+                    return
+            try:
+                with store.begin() as conn:
+                    conn.execute(runs.update().where(runs.c.id.in_(ids), runs.c.status == "running")
+                                 .values(heartbeat_at=utcnow()))
+            except Exception as exc:  # noqa: BLE001 - a missed beat is retried at the next one
+                log.debug("run heartbeat failed (%s: %s); retrying in %.0f s", exc.__class__.__name__,
+                          str(exc).splitlines()[0] if str(exc) else "", time_to_wait)
+
+
+def run_stale_reason(row: dict[str, Any], *, now: datetime, stale_after: float = RUN_STALE_AFTER_SECONDS,
+                     host: str | None = None) -> str | None:
+    """Why the process of a ``running`` runs row is gone (a sentence), or None while it looks alive.
+
+    On this host a recorded pid is asked directly (:func:`drift.procs.why_dead`: not running, a zombie, or
+    the pid now names a process with another start time), whatever the heartbeat's age: a long write
+    transaction of another process may hold back a SQLite heartbeat. Elsewhere, or when the row names no
+    process, a heartbeat older than ``stale_after`` seconds.
+    """
+    host = host or this_host()
+    pid = row.get("pid")
+    if pid is not None and row.get("host") == host:
+        why = why_dead(int(pid), row.get("proc_start"))
+        return None if why is None else f"its process {pid} on {host} {why}"
+    last = row.get("heartbeat_at") or row.get("started_at")
+    age = (now - last).total_seconds() if last is not None else float("inf")
+    if age <= stale_after:
+        return None
+    who = f"pid {pid} on {row.get('host')}" if pid is not None else "its process (not recorded)"
+    return f"no heartbeat from {who} for {age:.0f} s (limit {stale_after:.0f} s)"
+
+
+def _close_stale(conn: Connection, now: datetime, stale_after: float, *,
+                 note: str | None = None) -> list[dict[str, Any]]:
+    """Record the stale running runs abandoned inside the open write transaction ``conn``."""
+    closed = []
+    for r in conn.execute(sa.select(runs).where(runs.c.status == "running")).fetchall():
+        row = dict(r._mapping)
+        why = run_stale_reason(row, now=now, stale_after=stale_after)
+        if why is None:
+            continue
+        last = row.get("heartbeat_at") or row["started_at"]
+        error = f"abandoned: {why}; last sign of life {last:%Y-%m-%d %H:%M:%S} UTC" + (f"; {note}" if note else "")
+        res = conn.execute(runs.update().where(runs.c.id == row["id"], runs.c.status == "running")
+                           .values(status="abandoned", finished_at=now, error=error))
+        if res.rowcount == 1:
+            log.warning("run %s (%s) recorded abandoned: %s", row["id"], row["kind"], why)
+            closed.append({"id": row["id"], "kind": row["kind"], "job_id": row["job_id"],
+                           "scheduled_for": row["scheduled_for"], "why": why})
+    return closed
 
 
 def _jsonable(obj: Any) -> Any:
@@ -976,9 +1177,29 @@ def _migrate_4_to_5(conn: Connection, url: str) -> None:
             _add_column(conn, batches, name)
 
 
+def _migrate_5_to_6(conn: Connection, url: str) -> None:
+    """Schema 5 -> 6: each run names its process (``pid``, ``host``, ``proc_start``) and carries a heartbeat
+    (``heartbeat_at``, set to ``started_at`` for the runs already there: an old running row then goes stale
+    by age); the daemon lock names its holder's process start (``locks.proc_start``); index on
+    ``runs.status``. A store from before the runs table existed gets the whole table from ``create_all``."""
+    insp = sa.inspect(conn)
+    tables = set(insp.get_table_names())
+    if "runs" in tables:
+        have = {c["name"] for c in insp.get_columns("runs")}
+        for name in ("pid", "host", "proc_start", "heartbeat_at"):
+            if name not in have:
+                _add_column(conn, runs, name)
+        conn.execute(runs.update().where(runs.c.heartbeat_at.is_(None)).values(heartbeat_at=runs.c.started_at))
+        if "ix_runs_status" not in {i["name"] for i in insp.get_indexes("runs")}:
+            conn.exec_driver_sql("CREATE INDEX ix_runs_status ON runs (status)")
+    if "locks" in tables and "proc_start" not in {c["name"] for c in insp.get_columns("locks")}:
+        _add_column(conn, locks, "proc_start")
+
+
 #: schema migrations: from version -> step (each runs in the transaction of :func:`migrate`)
 MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3,
-                                                            3: _migrate_3_to_4, 4: _migrate_4_to_5}
+                                                            3: _migrate_3_to_4, 4: _migrate_4_to_5,
+                                                            5: _migrate_5_to_6}
 
 
 def migrate(conn: Connection, url: str) -> int:

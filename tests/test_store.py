@@ -304,6 +304,40 @@ def test_a_schema_3_store_gets_the_outbox_recipients(empty_url) -> None:
         store.dispose()
 
 
+@pytest.mark.parametrize("empty_url", ["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)],
+                         indirect=True)
+def test_a_schema_5_store_gets_run_owners_and_the_lock_holders_start(empty_url) -> None:
+    # a schema-5 store: runs without owner and heartbeat, locks without the holder's process start
+    from drift.store import runs
+
+    store = open_store(empty_url)
+    with store.begin() as conn:
+        conn.exec_driver_sql("DROP INDEX ix_runs_status")
+        for col in ("pid", "host", "proc_start", "heartbeat_at"):
+            conn.exec_driver_sql(f"ALTER TABLE runs DROP COLUMN {col}")
+        conn.exec_driver_sql("ALTER TABLE locks DROP COLUMN proc_start")
+        conn.exec_driver_sql("INSERT INTO runs (kind, started_at, status) VALUES ('check', '2026-03-01 01:30:00', "
+                             "'running')")
+        conn.execute(meta.update().where(meta.c.key == "schema_version").values(value="5"))
+    store.dispose()
+    store = open_store(empty_url)
+    try:
+        with store.connect() as conn:
+            insp = sa.inspect(conn)
+            assert {"pid", "host", "proc_start", "heartbeat_at"} <= {c["name"] for c in insp.get_columns("runs")}
+            assert "proc_start" in {c["name"] for c in insp.get_columns("locks")}
+            assert "ix_runs_status" in {i["name"] for i in insp.get_indexes("runs")}
+            version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar()
+            (old,) = conn.execute(sa.select(runs)).fetchall()
+        assert version == str(SCHEMA_VERSION)
+        # an old run's last sign of life is its start: an owner-less running row goes stale by age
+        assert old.heartbeat_at == old.started_at and old.pid is None
+        (closed,) = store.close_stale_runs()
+        assert closed["id"] == old.id and "no heartbeat" in closed["why"]
+    finally:
+        store.dispose()
+
+
 def test_bulk_insert_keeps_values_and_times_exactly(store) -> None:
     # the PostgreSQL path sends CSV text: floats must come back bit for bit, times to the microsecond
     import numpy as np

@@ -57,7 +57,8 @@ def test_collect_status_fields(store: Store) -> None:
     assert str(jobs["check"]["next_run"].tzinfo) == "Europe/Lisbon"
     assert jobs["ingest"]["outcome"] == "missed" and jobs["ingest"]["next_run"] == _utc(2026, 3, 2, 12, 0)
     assert jobs["digest"] == {"schedule": None, "last_run": None, "finished_at": None, "outcome": None,
-                              "duration": None, "error": None, "next_run": None}
+                              "duration": None, "error": None, "next_run": None, "pid": None, "host": None,
+                              "heartbeat_at": None}
     ob = st["outbox"]
     assert ob["pending"] == 2 and ob["oldest_pending"] == _utc(2026, 3, 1)
     assert ob["last_error"] == "SMTP 451 try later"
