@@ -29,6 +29,7 @@ from drift.config import (
     period_start,
 )
 from drift.engine.split import split_coefficients
+from drift.engine.tables import family as _fam_table
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import Design, as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
@@ -217,6 +218,7 @@ class _Ctx:
     error_model: str | None = None
     scale_logvar: float = 0.0
     n_ref_ok: int = 0  # complete rows in the reference period (after prewhitening)
+    horizon_n: int = 0  # monitoring horizon in periods (check.horizon at the model's frequency)
     actions: list[Action] = field(default_factory=list)
     alarms: list[dict[str, Any]] = field(default_factory=list)
     tests: list[dict[str, Any]] = field(default_factory=list)
@@ -301,8 +303,26 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
     c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
     c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
     c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
+    c.horizon_n = _horizon_periods(cfg, m, d.n_ref)
     _validate(c)
     return c
+
+
+def _horizon_periods(cfg: Config, m: ModelConfig, n_ref: int) -> int:
+    """``check.horizon`` in the model's periods, within what the simulated tables cover.
+
+    Raises
+    ------
+    DriftError : the horizon is longer than 6 times the reference period or than the steps tabulated.
+    """
+    n = cfg.check.horizon_periods(m.frequency, n_ref)
+    limit = min(int(_mon_table.HORIZONS[-1] * n_ref), int(_fam_table.N_GRID[-1]))
+    if n > limit:
+        raise DriftError(
+            f"model '{m.name}': check.horizon ({cfg.check.horizon!r}) is {n} periods, longer than the "
+            f"monitors are calibrated for with its {n_ref}-period reference (at most {limit}: 6 times the "
+            f"reference and {_fam_table.N_GRID[-1]} periods); shorten check.horizon")
+    return n
 
 
 #: smallest size of a series drift computes with: a target or driver whose values on the usable reference
@@ -455,17 +475,22 @@ def _screen(group: list[_Ctx]) -> None:
         Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
     m = np.array([c.design.n_ref for c in group]) + off
     rf = engine.recursive_fit(Y, Xs, coef_se=False)  # the check reads coefficients, not their errors
-    horizon = chk.horizon
-    # the monitors that can raise `refit`, each at level / (their number) (Bonferroni): the residual
-    # CUSUM monitors (level shifts, changes along the mean regressor) and one score monitor per driver
-    # slot (that driver's effect, also when the change leaves the residual mean alone)
-    specs: list[tuple[str, str, int | None]] = [
-        ({"csw": "monitor-cusum", "page": "monitor-page", "mosum": "monitor-mosum"}[det], det, None)
-        for det in dict.fromkeys(("csw", chk.monitor_detector))]
+    # The monitor family (engine.family_levels): on the recursive residuals the CUSUM monitor (small
+    # persistent changes), the abrupt-shift monitor (Page CUSUM with a reference value) and the variance
+    # monitor; per driver slot its effect monitor (the driver's score process, also when the change
+    # leaves the residual mean alone) and an abrupt-shift monitor of that score. The family signals when
+    # any member crosses; the members' levels are calibrated jointly so that a stable model is told to
+    # refit within the horizon with probability at most check.level.
+    n_ref = np.array([c.design.n_ref for c in group], float)
+    h_steps = np.array([c.horizon_n for c in group], float)
+    hz = h_steps / m  # ratio whose ceil(hz * m) is the horizon in steps (m counts the batch's front padding)
     n_drv = max(len(c.design.driver_columns) for c in group)
+    lv_r, lv_e = engine.family_levels(chk.level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
+    wl_r, wl_e = engine.family_levels(chk.warn_level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
+    specs: list[tuple[str, str, int | None]] = [
+        ("monitor-cusum", "csw", None), ("monitor-shift", "shift", None), ("monitor-variance", "variance", None)]
     specs += [("monitor-effect", chk.monitor_detector, j) for j in range(n_drv)]
-    lv = max(chk.level / len(specs), MIN_LEVEL)
-    wl = max(chk.warn_level / len(specs), MIN_LEVEL)
+    specs += [("monitor-effect-shift", "shift", j) for j in range(n_drv)]
     weights = None
     if n_drv and np.any(m < Y.shape[1]):
         slots = np.full((len(group), n_drv), -1)
@@ -478,14 +503,23 @@ def _screen(group: list[_Ctx]) -> None:
     dof = np.maximum(0.5 / logvar, MIN_DOF)
     mons: list[Any] = []
     warns: list[Any] = []
+    levels: list[tuple[float, float]] = []
+    try:
+        ref_fit = engine.reference_fit(Y, Xs, m)
+    except InsufficientDataError as exc:
+        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
+        ref_fit = None
     for _name, det, j in specs:
-        if j is not None and weights is None:
+        lvl = (lv_r, wl_r) if j is None else (lv_e, wl_e)
+        levels.append(lvl)
+        if ref_fit is None or (j is not None and weights is None):
             mons.append(None)
             warns.append(None)
             continue
         wj = None if j is None else weights[:, j]  # type: ignore[index]
-        mons.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=lv, weights=wj, scale_dof=dof))
-        warns.append(_monitor(Y, Xs, m, horizon=horizon, detector=det, level=wl, weights=wj, scale_dof=dof))
+        kw = {"horizon": hz, "detector": det, "weights": wj, "scale_dof": dof, "extend": True, "reference": ref_fit}
+        mons.append(_monitor(Y, Xs, m, level=lvl[0], **kw))
+        warns.append(_monitor(Y, Xs, m, level=lvl[1], **kw))
     # Trigg's tracking signal on the as-deployed one-step errors of the monitored span (reported for the
     # demand planners who read it; it raises nothing: at a fixed time, not over the horizon)
     trigg = None
@@ -499,17 +533,27 @@ def _screen(group: list[_Ctx]) -> None:
             trigg = engine.trigg_signal(fe_all, 0.1, level=0.01, mad0=mad0)
         except (DriftError, ValueError) as exc:
             log.info("tracking signal skipped: %s", exc)
-    # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals
+    # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals (reported, charted;
+    # they raise nothing). Their whole-sample normalisation can put today's first crossing before the
+    # data that caused it, so a crossing is dated by replaying the test as of each period (first_signal:
+    # the first check of the run of checks up to today that all crossed).
     W = rf.resid.copy()
     cols = np.arange(W.shape[1])[None, :]
     W[cols < m[:, None]] = np.nan
     enough = np.sum(np.isfinite(W), axis=1) >= 3
     cus = cusq = None
+    retro_dates: dict[str, np.ndarray] = {}
     if enough.any():
         Wc = np.where(enough[:, None], W, 0.0)  # rows without residuals get a dummy, masked below
         Wc[~enough, :3] = 1.0
         cus = engine.cusum(Wc)
         cusq = engine.cusum_squares(Wc)
+        for name, rc, test in (("cusum", cus, "cusum"), ("cusum-squares", cusq, "cusum_squares")):
+            crossed = enough & (np.atleast_1d(rc.first_crossing[0.05]) >= 0)
+            dates = np.full(len(group), -1, dtype=np.int64)
+            if crossed.any():
+                dates[crossed] = engine.first_signal(W[crossed], test, 0.05)
+            retro_dates[name] = dates
     window = chk.rolling_window or chk.recent_window
     roll = None
     if window >= ds[0].k + 2 and window <= Y.shape[1]:
@@ -533,28 +577,34 @@ def _screen(group: list[_Ctx]) -> None:
             eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
             c.accuracy["h_step"] = {"horizon": c.model.horizon,
                                     **_accuracy(np.where(mon_mask, eh, np.nan)[-chk.recent_window:], ref_scale)}
-        # monitoring
+        # monitoring: every date is the period at which a check run then would have signalled (the
+        # monitors are sequential: each row's statistic and boundary use rows up to it only)
         alarm_idx = None
+        lapsed = False
         drivers_i = list(d.driver_columns)
-        for (name, _det, j), r, rw in zip(specs, mons, warns):
+        for (name, _det, j), r, rw, (lv, wl) in zip(specs, mons, warns, levels):
             if (j is not None and j >= len(drivers_i)) or r is None or rw is None:
                 continue
             extra = {} if j is None else {"driver": drivers_i[j]}
             ai = int(np.atleast_1d(r.alarm_index)[i])
+            h_end = int(np.atleast_1d(r.horizon_end)[i])
             stat = float(np.atleast_1d(r.statistic)[i])
             pv = _num(np.atleast_1d(r.pvalue)[i])
             date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
             c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
-                            "level": lv, "date": date_})
+                            "level": _num(round(lv, 6)), "date": date_})
+            beyond = {"beyond_horizon": True} if ai >= h_end else {}
             if ai >= 0:
                 c.alarms.append({"test": name, **extra, "date": date_, "statistic": _num(round(stat, 4)),
-                                 "threshold": 1.0, "level": lv})
-                alarm_idx = ai - o if alarm_idx is None else min(alarm_idx, ai - o)
+                                 "threshold": 1.0, "level": _num(round(lv, 6)), **beyond})
+                if alarm_idx is None or ai - o < alarm_idx:
+                    alarm_idx, lapsed = ai - o, bool(beyond)
             wi = int(np.atleast_1d(rw.alarm_index)[i])
             if ai < 0 and wi >= 0:
                 c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
                                  "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
-                                 "threshold": 1.0, "level": wl, "warning": True})
+                                 "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
+                                 **({"beyond_horizon": True} if wi >= h_end else {})})
         if trigg is not None:
             sig = np.atleast_2d(trigg.signal)[i, sl]
             last_i = np.flatnonzero(np.isfinite(sig))
@@ -563,26 +613,18 @@ def _screen(group: list[_Ctx]) -> None:
                 c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
                                 "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,
                                 "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
-        # retrospective CUSUM family
-        retro_flag = []
+        # retrospective CUSUM family: reported in ``tests`` and charted, not alarms: re-run on every check
+        # at 5%, their crossings pile up on stable models (their sequential versions are the family's CUSUM
+        # and variance monitors). Their date is the first check of the standing crossing (first_signal).
         if cus is not None and cusq is not None and enough[i]:
             for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
-                fc_idx = int(np.atleast_1d(rc.first_crossing[0.05])[i])
+                fc_idx = int(retro_dates[name][i])
                 rstat = _num(np.atleast_1d(rc.statistic)[i])
                 cv = rc.critical_values.get(0.05)
                 crit = None if cv is None else _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
                 date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
                 c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
                                 "threshold": crit, "level": 0.05, "date": date_})
-                if fc_idx >= 0:
-                    c.alarms.append({"test": name, "date": date_, "statistic": rstat, "threshold": crit,
-                                     "level": 0.05})
-                # only a variance change, which the mean- and score-based monitors do not see, makes a
-                # retrospective test a reason to watch, and only beyond its 1% bound: these tests are
-                # re-run on every check, so their 5% crossings would pile up on stable models
-                strong = int(np.atleast_1d(rc.first_crossing.get(0.01, -1))[i]) if name == "cusum-squares" else -1
-                if strong >= 0:
-                    retro_flag.append((name, d.periods[strong - o].date().isoformat()))
             c.charts["cusum"] = {
                 "path": _list(np.atleast_2d(cus.path)[i, sl]),
                 "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
@@ -605,27 +647,30 @@ def _screen(group: list[_Ctx]) -> None:
         c.charts["_fe"] = fe
         # verdict on the relationship
         span = d.n - d.n_ref
-        if alarm_idx is None and span > horizon * d.n_ref:
-            end = d.periods[min(d.n - 1, d.n_ref + int(np.ceil(horizon * d.n_ref)) - 1)].date().isoformat()
+        if alarm_idx is None and span > c.horizon_n:
+            end = d.periods[d.n_ref + c.horizon_n - 1].date().isoformat()
             c.actions.append(Action("watch", severity="watch", reason=(
-                f"The monitoring horizon ended on {end} ({horizon:g} times the {d.n_ref}-period reference): "
-                f"the monitors no longer watch the newest data, and their false-alarm guarantee covers only "
-                f"the horizon. Refit on recent data and move the reference period forward (or raise "
-                f"check.horizon, up to 6).")))
+                f"The monitoring horizon ended on {end} ({_horizon_words(c)}): the monitors keep watching "
+                f"the newest data, but their false-alarm guarantee covered only the horizon. Refit on recent "
+                f"data and move the reference period forward (or lengthen check.horizon).")))
         if alarm_idx is not None:
-            _refit_action(c, alarm_idx)
+            _refit_action(c, alarm_idx, lapsed)
         else:
-            warn = [a for a in c.alarms if a.get("warning")]
-            if warn or retro_flag:
+            warn = sorted((a for a in c.alarms if a.get("warning")), key=lambda a: a["date"])
+            if warn:
                 what = (f"{_test_words(warn[0]['test'], warn[0].get('driver'))} passed its warning boundary "
-                        f"on {warn[0]['date']}" if warn
-                        else f"the residual variance changed (CUSUM of squares beyond its 1% bound on "
-                        f"{retro_flag[0][1]})")
+                        f"on {warn[0]['date']}")
                 c.actions.append(Action("watch", severity="watch", reason=(
                     f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
                     f"{chk.level:.0%} level. Keep the model, look again next week.")))
 
 
+def _horizon_words(c: _Ctx) -> str:
+    """How check.horizon reads for this model, e.g. "2 years = 104 periods"."""
+    h = c.cfg.check.horizon
+    if isinstance(h, float):
+        return f"{h:g} times the {c.design.n_ref}-period reference = {c.horizon_n} periods"
+    return f"{h} = {c.horizon_n} periods" if not h.endswith("periods") else h
 
 
 def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
@@ -638,9 +683,11 @@ def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
         return None
 
 
-def _refit_action(c: _Ctx, alarm_idx: int) -> None:
+def _refit_action(c: _Ctx, alarm_idx: int, lapsed: bool = False) -> None:
     """Date the break the monitors found, name the monitor that crossed and, separately, the driver whose
     effect moved most (the smallest p-value of the change in the before/after regression).
+
+    ``lapsed``: the first alarm came after the monitoring horizon (the reason says the guarantee had lapsed).
 
     The figures quoted are those put in the action (``monitor``, ``effects``, ``moved``) and in each
     driver's ``break`` entry: one computation for the reason, the JSON and the tables.
@@ -671,14 +718,19 @@ def _refit_action(c: _Ctx, alarm_idx: int) -> None:
     c.charts["_effects"] = {e["driver"]: e for e in effects}
     alarm = min((a for a in c.alarms if not a.get("warning") and a["test"].startswith("monitor-")),
                 key=lambda a: a["date"] or "9999")
-    monitor = {k: alarm[k] for k in ("test", "driver", "date", "statistic", "level") if alarm.get(k) is not None}
+    monitor = {k: alarm[k] for k in ("test", "driver", "date", "statistic", "level", "beyond_horizon")
+               if alarm.get(k) is not None}
     ranked = [e for e in effects if e["pvalue_change"] is not None and e["before"] is not None
               and e["after"] is not None]
     moved = min(ranked, key=lambda e: e["pvalue_change"]) if ranked else None
     level = c.cfg.check.level
     text = (f"The relationship changed around {since_s}. "
             f"{_sentence_start(_test_words(alarm['test'], alarm.get('driver')))} crossed its boundary on "
-            f"{alarm['date']} (false-alarm rate held at {level:.0%} over the monitoring horizon).")
+            f"{alarm['date']} "
+            + (f"(after the monitoring horizon, {_horizon_words(c)}, had ended: without the false-alarm "
+               f"guarantee, which covered only the horizon)." if lapsed else
+               f"(false-alarm rate of the monitors together held at {level:.0%} over the monitoring horizon, "
+               f"{_horizon_words(c)})."))
     if moved is not None:
         unit = next((dr.unit for dr in m.drivers if dr.series == moved["driver"] and dr.unit), None)
         per = f" {m.unit} per {unit}" if unit else ""
@@ -705,7 +757,10 @@ def _sentence_start(text: str) -> str:
 def _test_words(name: str, driver: str | None = None) -> str:
     if name == "monitor-effect":
         return f"the monitor of the {driver} effect"
+    if name == "monitor-effect-shift":
+        return f"the abrupt-shift monitor of the {driver} effect"
     return {"monitor-cusum": "the recursive-CUSUM monitor", "monitor-page": "the Page-CUSUM monitor",
+            "monitor-shift": "the abrupt-shift monitor", "monitor-variance": "the error-variance monitor",
             "monitor-mosum": "the moving-sum monitor", "cusum": "the recursive CUSUM",
             "cusum-squares": "the CUSUM of squares"}.get(name, name)
 
@@ -843,6 +898,12 @@ def _logged_forecasts(ctxs: list[_Ctx], errors: dict[str, str]) -> None:
         _logged_batch(h, items, errors)
 
 
+def _horizon_ratio(items: list[tuple[_Ctx, np.ndarray, tuple[int, int]]]) -> float:
+    """check.horizon as a multiple of the reference length for a batch (the largest of its models, within
+    the simulated tables' 6)."""
+    return min(max(c.horizon_n / c.design.n_ref for c, _e, _b in items), float(_mon_table.HORIZONS[-1]))
+
+
 def _logged_batch(h: int, items: list[tuple[_Ctx, np.ndarray, tuple[int, int]]], errors: dict[str, str]) -> None:
     from drift.deployed import monitor_forecast_errors
 
@@ -857,7 +918,7 @@ def _logged_batch(h: int, items: list[tuple[_Ctx, np.ndarray, tuple[int, int]]],
         E[i, off[i]:] = e
         first[i], m[i] = f0 + off[i], m0 + off[i]
     try:
-        stats_ = monitor_forecast_errors(E, first, m, h, level=max(chk.level / 2, MIN_LEVEL), horizon=chk.horizon,
+        stats_ = monitor_forecast_errors(E, first, m, h, level=max(chk.level / 2, MIN_LEVEL), horizon=_horizon_ratio(items),
                                          detector=chk.monitor_detector, recent_window=chk.recent_window, grid=off)
     except Exception as exc:  # noqa: BLE001 - isolated below
         if len(items) == 1:

@@ -15,7 +15,6 @@ Time conventions
 from __future__ import annotations
 
 import codecs
-
 import difflib
 import glob as _glob
 import math
@@ -370,12 +369,49 @@ class CheckConfig(_Strict):
     max_lag: int | None = Field(None, ge=1)
     feed_limit: int = Field(4, ge=1)
     monitor_detector: Literal["csw", "mosum", "page"] = "page"
-    horizon: float = Field(2.0, gt=0, le=6.0)
+    #: the span over which the monitors' false-alarm guarantee is stated: a duration ("2 years",
+    #: "104 periods", "18 months", "26 weeks", "8 quarters", "730 days") or a bare number, a multiple of
+    #: the reference length (at most 6); see :meth:`horizon_periods`
+    horizon: float | str = "2 years"
     #: how chunks of models are run (see drift.executor); dask_scheduler None = a LocalCluster for the run
     executor: Literal["local", "process", "dask"] = "local"
     chunk_size: int = Field(500, ge=1)
     workers: int | None = Field(None, ge=1)
     dask_scheduler: str | None = None
+
+    @field_validator("horizon", mode="before")
+    @classmethod
+    def _horizon(cls, v: Any) -> float | str:
+        if isinstance(v, bool):
+            raise ValueError(f"horizon must be a duration ('2 years', '104 periods') or a multiple of the "
+                             f"reference length, got {v!r}")
+        if isinstance(v, (int, float)):
+            if not math.isfinite(float(v)) or not 0 < float(v) <= 6.0:
+                raise ValueError(f"horizon as a multiple of the reference length must be in (0, 6], got {v!r}")
+            return float(v)
+        if isinstance(v, str):
+            text = v.strip()
+            if re.fullmatch(r"[-+0-9.eE]+", text):
+                try:
+                    number = float(text)
+                except ValueError:
+                    number = math.nan
+                return cls._horizon(number)
+            _parse_horizon(text)
+            return text
+        raise ValueError(f"horizon must be a duration ('2 years', '104 periods') or a multiple of the reference "
+                         f"length, got {v!r}")
+
+    def horizon_periods(self, freq: str, n_ref: int) -> int:
+        """The monitoring horizon in periods of a model of frequency ``freq`` with ``n_ref`` reference
+        periods: a duration converted at the frequency's periods per year (rounded, at least 1), or a
+        bare number times ``n_ref`` (rounded up)."""
+        if isinstance(self.horizon, float):
+            return max(1, math.ceil(self.horizon * n_ref - 1e-9))
+        count, unit = _parse_horizon(self.horizon)
+        if unit == "period":
+            return max(1, round(count))
+        return max(1, round(count * PERIODS_PER_YEAR[freq] / UNITS_PER_YEAR[unit]))
 
     @model_validator(mode="after")
     def _levels(self) -> CheckConfig:
@@ -925,6 +961,22 @@ def _fmt_td(td: timedelta) -> str:
     if s % 3600 == 0:
         return f"{int(s // 3600)} hours"
     return str(td)
+
+
+#: periods per year of each frequency, and units per year of the horizon's duration words
+PERIODS_PER_YEAR = {"D": 365.25, "W": 365.25 / 7.0, "M": 12.0, "Q": 4.0}
+UNITS_PER_YEAR = {"year": 1.0, "quarter": 4.0, "month": 12.0, "week": 365.25 / 7.0, "day": 365.25}
+_HORIZON_RE = re.compile(r"^\s*([0-9]+(?:\.[0-9]+)?)\s*(year|quarter|month|week|day|period)s?\s*$", re.IGNORECASE)
+
+
+def _parse_horizon(text: str) -> tuple[float, str]:
+    """('2 years') -> (2.0, 'year'); ValueError naming the accepted forms otherwise."""
+    mt = _HORIZON_RE.match(text)
+    if not mt or float(mt.group(1)) <= 0:
+        raise ValueError(f"horizon must be a positive duration such as '2 years', '104 periods', '18 months', "
+                         f"'26 weeks', '8 quarters' or '730 days', or a multiple of the reference length "
+                         f"(a number up to 6), got {text!r}")
+    return float(mt.group(1)), mt.group(2).lower()
 
 
 def period_length(freq: str) -> timedelta:

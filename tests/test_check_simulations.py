@@ -344,3 +344,47 @@ def test_refit_false_alarm_rate_over_the_whole_horizon(tmp_path) -> None:
         (p,), _ = analyse(cfg, cfg.models, known_by(observations(periods, values), moment), moment)
         refits += p["verdict"] == "refit"
     assert refits <= stats.binom.ppf(0.99, n, 0.05)
+
+
+# --------------------------------------------------------------------------------------- honest dates
+def _alarm_rows(p: dict) -> list[int]:
+    return [_row(a["date"]) for a in p["alarms"] if not a.get("warning") and a["date"]]
+
+
+def test_alarms_are_dated_when_a_check_would_have_raised_them(tmp_path) -> None:
+    # invented scenario (simulation): x1's effect 2.0 -> 0.8 forty weeks into monitoring. Every alarm is
+    # a sequential monitor's (the retrospective CUSUM tests are only in `tests`), dated at or after the
+    # change; the abrupt-shift monitor is among the first to cross
+    cfg = config(tmp_path)
+    true = N_REF + 40
+    p = _check(cfg, Scenario(seed=700, n_mon=104, b1_after=0.8, change_at=true))
+    assert p["verdict"] == "refit"
+    assert {a["test"] for a in p["alarms"]} <= {"monitor-cusum", "monitor-shift", "monitor-variance",
+                                                 "monitor-effect", "monitor-effect-shift"}
+    rows = _alarm_rows(p)
+    assert rows and min(rows) >= true and min(rows) <= true + 3, rows
+    # the refit reason quotes the first alarm's date: the same figure as the JSON
+    first = min(p["alarms"], key=lambda a: a["date"])
+    assert first["date"] in _acts(p, "refit")[0]["reason"]
+    # the retrospective tests' dates are replayed: never before the change here
+    retro = [t for t in p["tests"] if t["test"] in ("cusum", "cusum-squares") and t["date"]]
+    assert all(_row(t["date"]) >= true for t in retro), retro
+
+
+@pytest.mark.slow
+def test_no_alarm_dated_before_the_break_beyond_the_nominal_rate(tmp_path) -> None:
+    # invented scenario (simulation), 30 seeds: x1's effect 2.0 -> 1.6 (a small change) forty weeks into
+    # two monitored years. A model with an alarm dated before the change had a false alarm; their share
+    # stays within the binomial 99% upper quantile of the 5% level (scipy.stats.binom). Before the replay
+    # (the retrospective CUSUM of squares dated by its whole-sample path) it was far above.
+    cfg = config(tmp_path)
+    true = N_REF + 40
+    n = 30
+    early = detected = 0
+    for seed in range(n):
+        p = _check(cfg, Scenario(seed=7100 + seed, n_mon=104, b1_after=1.6, change_at=true))
+        rows = _alarm_rows(p)
+        early += any(r < true for r in rows)
+        detected += any(r >= true for r in rows)
+    assert early <= stats.binom.ppf(0.99, n, cfg.check.level), early
+    assert detected >= 0.8 * n, detected

@@ -163,3 +163,28 @@ def test_cli_missing_config_exits_2(tmp_path: Path) -> None:
     r = subprocess.run([sys.executable, "-m", "drift.cli", "check", "--config", str(tmp_path / "nope.yaml")],
                        capture_output=True, text=True, timeout=120)
     assert r.returncode == 2 and "not found" in r.stderr and "Traceback" not in r.stderr
+
+
+# ------------------------------------------------------------------------------------------ check.horizon
+@pytest.mark.parametrize("value, weekly, monthly", [
+    ("2 years", 104, 24), ("104 periods", 104, 104), ("18 months", 78, 18), ("26 weeks", 26, 6),
+    ("8 quarters", 104, 24), ("730 days", 104, 24), (2, 312, 120), ("0.5", 78, 30)])
+def test_check_horizon_durations_in_periods(value: object, weekly: int, monthly: int) -> None:
+    # common practice, no source: 365.25 / 7 weeks, 12 months, 4 quarters, 365.25 days a year; a bare
+    # number is a multiple of the reference length (156 weekly, 60 monthly periods here), as before
+    from drift.config import CheckConfig
+
+    chk = CheckConfig(horizon=value)
+    assert chk.horizon_periods("W", 156) == weekly
+    assert chk.horizon_periods("M", 60) == monthly
+    assert CheckConfig().horizon == "2 years"
+
+
+@pytest.mark.parametrize("value", ["two years", "7", 0, -1, "2 fortnights", "0 years", True])
+def test_check_horizon_rejects_what_it_cannot_read(value: object) -> None:
+    from pydantic import ValidationError
+
+    from drift.config import CheckConfig
+
+    with pytest.raises(ValidationError, match="horizon"):
+        CheckConfig(horizon=value)

@@ -18,7 +18,7 @@ from drift.engine.tables import bde, edgerton_wells, ploberger_kramer
 from drift.exceptions import InsufficientDataError
 from drift.typing import FloatArray, IntArray
 
-__all__ = ["CusumResult", "cusum", "cusum_squares", "ols_cusum"]
+__all__ = ["CusumResult", "cusum", "cusum_squares", "first_signal", "ols_cusum"]
 
 _DEFAULT_LEVELS = (0.10, 0.05, 0.01)
 # fewest defined recursive residuals: the sample standard deviation needs two
@@ -362,3 +362,63 @@ def ols_cusum(resid: object, *, ddof: int = 0) -> TestResult:
         params={"ddof": int(ddof)},
         break_index=_scalarise(where, batched),
     )
+
+
+def first_signal(w: object, test: str = "cusum", level: float = 0.05, *, standing: bool = True,
+                 block: int = 32) -> Any:
+    """The first position at which a check would have seen ``test`` cross its ``level`` boundary.
+
+    The CUSUM and the CUSUM of squares normalise their whole path with the whole sample (the scale, the
+    number of residuals), so the first crossing of today's path can lie before the data that make it
+    cross existed. This replays the test as of every position ``n`` on the residuals up to ``n`` only
+    (those a check run then had).
+
+    Parameters
+    ----------
+    w : (n,) or (M, n) recursive residuals, NaN where undefined.
+    test : "cusum" (:func:`cusum`) or "cusum_squares" (:func:`cusum_squares`).
+    level : boundary level (any level the test accepts).
+    standing : True: the first position of the run of checks, ending with the last position, that all
+        crossed (when the alarm that stands today was first raised; -1 when the test does not cross as of
+        the last position). False: the first position at which any replayed check crossed.
+    block : as-of positions replayed at once (vectorised over models and positions).
+
+    Returns
+    -------
+    int or (M,) int array: index of that as-of position, -1 if none.
+    """
+    fns = {"cusum": (cusum, _MIN_CUSUM), "cusum_squares": (cusum_squares, _MIN_CUSUMSQ)}
+    if test not in fns:
+        raise ValueError(f"test must be 'cusum' or 'cusum_squares', got {test!r}")
+    if not isinstance(block, int) or block < 1:
+        raise ValueError(f"block must be a positive integer, got {block!r}")
+    fn, need = fns[test]
+    wa, batched = _as_resid(w, "w")
+    M, T = wa.shape
+    d = np.isfinite(wa)
+    # as-of positions worth replaying: a defined residual (the test changes only there), enough of them
+    cand = d & (np.cumsum(d, axis=1) >= need)
+    crossed = np.zeros((M, T), dtype=bool)
+    cols = np.arange(T)
+    for start in range(0, T, block):
+        stop = min(T, start + block)
+        mi, ni = np.nonzero(cand[:, start:stop])
+        if mi.size == 0:
+            continue
+        ni = ni + start
+        batch = np.where(cols[None, :] <= ni[:, None], wa[mi], np.nan)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            res = fn(batch, levels=(level,))
+        crossed[mi, ni] = np.asarray(res.first_crossing[level]) >= 0
+    if not standing:
+        out = np.where(crossed.any(axis=1), crossed.argmax(axis=1), -1)
+    else:
+        last = np.where(cand.any(axis=1), T - 1 - np.argmax(cand[:, ::-1], axis=1), -1)
+        quiet = cand & ~crossed  # replayed checks that did not signal
+        last_quiet = np.where(quiet.any(axis=1), T - 1 - np.argmax(quiet[:, ::-1], axis=1), -1)
+        after = crossed & (cols[None, :] > last_quiet[:, None])
+        first_after = np.where(after.any(axis=1), after.argmax(axis=1), -1)
+        standing_now = (last >= 0) & crossed[np.arange(M), np.maximum(last, 0)]
+        out = np.where(standing_now, first_after, -1)
+    out = out.astype(np.int64)
+    return out if batched else int(out[0])
