@@ -382,8 +382,8 @@ class CheckConfig(_Strict):
     @field_validator("horizon", mode="before")
     @classmethod
     def _horizon(cls, v: Any) -> float | str:
-        if isinstance(v, bool):
-            raise ValueError(f"horizon must be a duration ('2 years', '104 periods') or a multiple of the "
+        if isinstance(v, bool):  # pydantic locates a ValueError (not a TypeError) at check.horizon
+            raise ValueError(f"horizon must be a duration ('2 years', '104 periods') or a multiple of the "  # noqa: TRY004
                              f"reference length, got {v!r}")
         if isinstance(v, (int, float)):
             if not math.isfinite(float(v)) or not 0 < float(v) <= 6.0:

@@ -270,7 +270,8 @@ def _contract(m: dict) -> None:
         assert isinstance(d["lag"], int)
         assert isinstance(d["coef_reference"], float)
         assert d.get("coef_recent") is None or isinstance(d["coef_recent"], float)
-    order = ("data-late", "refit", "relag", "drop-driver", "watch")
+    from drift.verdicts import ORDER as order  # the one order of verdicts (drift/verdicts.py)
+
     if m["actions"]:
         assert m["verdict"] == min((a["action"] for a in m["actions"]), key=order.index)
     else:
