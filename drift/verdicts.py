@@ -49,6 +49,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
+from drift.engine.tables import monitoring as _mon_table
+
 #: actions, most pressing first: a confirmed change of the relationship outranks a late feed
 PRIORITY = ("refit", "relag", "drop-driver", "data-late", "watch")
 #: the verdict of a model that could not be checked (its entry gives the ``reason``); not an action
@@ -133,8 +135,10 @@ def fmt_num(x: float | None, digits: int = 3) -> str:
 
 #: p-value range of each family of tabulated tests (test-name prefix -> (smallest, largest) p-value the
 #: table can give): a p-value at an edge was clipped there and only bounds the true one
-#: (drift.engine.tables.monitoring.pvalue clips to its tail probabilities, 0.005 .. 0.5)
-PVALUE_EDGES: dict[str, tuple[float, float]] = {"monitor-": (0.005, 0.5), "forecast-": (0.005, 0.5)}
+#: (drift.engine.tables.monitoring.pvalue and drift.engine.tables.family.pvalue clip to their tail
+#: probabilities, both 0.001 .. 0.5)
+_EDGES = (float(min(_mon_table.TAIL_PROBS)), float(max(_mon_table.TAIL_PROBS)))
+PVALUE_EDGES: dict[str, tuple[float, float]] = {"monitor-": _EDGES, "forecast-": _EDGES}
 
 
 def pvalue_edges(test: str | None) -> tuple[float, float] | None:

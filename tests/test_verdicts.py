@@ -76,11 +76,12 @@ def test_terminal_table_uses_the_vocabulary() -> None:
 
 
 def test_pvalues_clipped_at_a_table_edge_are_bounds() -> None:
-    # drift.engine.tables.monitoring.pvalue clips to its tail probabilities 0.005 .. 0.5 (its docstring:
-    # read "p <= 0.005" / "p >= 0.5"); an unclipped p-value is printed as a number
-    assert fmt_p(0.005, "monitor-cusum") == "< 0.005"
+    # drift.engine.tables.monitoring.pvalue clips to its tail probabilities 0.001 .. 0.5 (its docstring:
+    # read "p <= 0.001" / "p >= 0.5"); an unclipped p-value is printed as a number
+    assert fmt_p(0.001, "monitor-cusum") == "< 0.001"
     assert fmt_p(0.5, "monitor-effect") == "> 0.5"
-    assert fmt_p(0.005, "forecast-mean") == "< 0.005"
+    assert fmt_p(0.001, "forecast-mean") == "< 0.001"
+    assert fmt_p(0.005, "monitor-shift") == "0.005"
     assert fmt_p(0.0213, "monitor-page") == "0.021"
     assert fmt_p(0.5, "cusum") == "0.50"  # the retrospective CUSUM's p-value is not clipped
     assert fmt_p(7.71e-9) == "7.7e-09"
