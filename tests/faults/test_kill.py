@@ -8,7 +8,10 @@ consistent and a rerun must complete the work:
   and after a rerun the same open alerts as a clean check;
 - delivery (and the check's own delivery): no notice lost, none received twice; a notice whose sending was
   cut off is either re-sent by a channel that drops duplicates itself (the folder) or marked *uncertain*,
-  never re-sent, and counted by ``drift status``.
+  never re-sent, and counted by ``drift status``; in the "deliver-refused" set one of the two recipients is
+  refused for good at RCPT, so every e-mail notice reaches the other and is then given up (*dead*), shown
+  by ``drift status``. Per set the summary counts the e-mail notices received exactly once, uncertain
+  (received or not), dead and lost (neither received nor shown; must be 0).
 
 The kill moment is uniform over the duration of an uninterrupted run of the same command, measured here
 (a calibration, not an assertion); the seed fixes the sequence. Trial counts: ``DRIFT_FAULT_TRIALS``
@@ -49,7 +52,9 @@ ROOT = Path(__file__).resolve().parents[2]
 SEED = 20260413
 #: trials per fault kind (the suite's budget; raise it for a longer local run)
 TRIALS = {kind: int(os.environ.get("DRIFT_FAULT_TRIALS", n)) for kind, n in
-          (("ingest", 10), ("check", 8), ("deliver", 10))}
+          (("ingest", 10), ("check", 8), ("deliver", 8), ("deliver-refused", 6))}
+#: the recipient the "deliver-refused" trials' server refuses for good (RFC 5321 section 4.2.1: 5xx)
+GONE = "gone@example.test"
 #: seconds the mail server waits before answering the message data (so kills land mid-send)
 SMTP_DELAY = 0.1
 CEILING = 300
@@ -118,9 +123,17 @@ class SlowSmtp:
         from tests.delivery.conftest import free_port
 
         self.got: list[tuple[str, str]] = []  # (envelope sender, X-Drift-Key)
+        self.refused = 0
         self.port = free_port()
         self.controller = Controller(self, hostname="127.0.0.1", port=self.port)
         self.controller.start()
+
+    async def handle_RCPT(self, server: Any, session: Any, envelope: Any, address: str, options: Any) -> str:
+        if address == GONE:
+            self.refused += 1
+            return "550 5.1.1 no such user"
+        envelope.rcpt_tos.append(address)
+        return "250 OK"
 
     async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:
         raw = bytes(envelope.original_content or envelope.content)
@@ -148,6 +161,7 @@ class Tally:
     def __init__(self, kind: str, duration: float) -> None:
         self.kind, self.duration, self.trials, self.killed, self.finished = kind, duration, 0, 0, 0
         self.uncertain = self.uncertain_received = self.resent_by_folder = 0
+        self.received_once = self.dead = self.lost = 0
 
     def count(self, code: int, out: Path) -> None:
         assert code in (0, -signal.SIGKILL), f"exit {code}: {out.read_text(errors='replace')[-2000:]}"
@@ -158,8 +172,9 @@ class Tally:
     def line(self) -> str:
         extra = ""
         if self.kind != "ingest":
-            extra = (f"; {self.uncertain} notice(s) marked uncertain ({self.uncertain_received} of them had "
-                     f"reached the server), none received twice")
+            extra = (f"; e-mail notices: {self.received_once} received exactly once, {self.uncertain} uncertain "
+                     f"({self.uncertain_received} of them had reached the server), {self.dead} dead, "
+                     f"{self.lost} lost, none received twice; uncertain and dead shown by drift status")
         return (f"{self.kind}: {self.trials} trials (seed {SEED}; kill at 2-100% of an uninterrupted run, "
                 f"{self.duration:.1f} s here), {self.killed} killed mid-run, {self.finished} finished first; "
                 f"every store consistent, every rerun completed the work{extra}")
@@ -279,26 +294,36 @@ def _settle(cfg: Any, store: Any) -> None:
 
 
 def _assert_delivery(cfg: Any, store: Any, smtp: SlowSmtp, tag: str, base: Path, tally: Tally) -> None:
-    """Nothing pending, each notice delivered once or marked uncertain; none received twice."""
-    rows = _rows(store, sa.select(outbox.c.channel, outbox.c.idempotency_key, outbox.c.status))
-    assert {r.status for r in rows} <= {"sent", "uncertain"}, Counter(r.status for r in rows)
+    """Nothing pending; each notice received once, or uncertain, or (refused for good) dead, all shown;
+    none received twice, none lost."""
+    rows = _rows(store, sa.select(outbox.c.channel, outbox.c.idempotency_key, outbox.c.status, outbox.c.recipients))
+    assert {r.status for r in rows} <= {"sent", "uncertain", "dead"}, Counter(r.status for r in rows)
     got = smtp.keys(f"{tag}@example.test")
     assert all(n == 1 for n in got.values()), f"received twice: {[k for k, n in got.items() if n > 1]}"
     mail = {r.idempotency_key: r.status for r in rows if r.channel == "email"}
     assert set(got) <= set(mail)
-    assert {k for k, st in mail.items() if st == "sent"} <= set(got)  # sent means received, once
+    # received: sent means received, once; a dead row names the recipients that got it, who did
+    served = {r.idempotency_key for r in rows if r.channel == "email" and r.recipients
+              and any(v.get("status") == "sent" for v in json.loads(r.recipients).values())}
+    assert {k for k, st in mail.items() if st == "sent"} | served <= set(got)
     unc = [k for k, st in mail.items() if st == "uncertain"]
+    dead = [k for k, st in mail.items() if st == "dead"]
+    lost = [k for k, st in mail.items() if st not in ("uncertain", "dead") and k not in got]
+    assert lost == []
+    tally.received_once += sum(1 for k, st in mail.items() if st != "uncertain" and k in got)
     tally.uncertain += len(unc)
     tally.uncertain_received += sum(k in got for k in unc)
+    tally.dead += len(dead)
     folder = [r.idempotency_key for r in rows if r.channel == "folder"]
     assert {r.status for r in rows if r.channel == "folder"} <= {"sent"}
     jsonl = base / f"{tag}-alerts" / "alerts.jsonl"
     lines = [json.loads(x)["key"] for x in jsonl.read_text().splitlines()] if jsonl.exists() else []
     assert sorted(lines) == sorted(folder)  # each folder notice exactly once
-    if unc:
+    if unc or dead:
         status = collect_status(cfg, store)
-        assert len(status["outbox"]["uncertain"]) == len(unc)
-        assert f"{len(unc)} uncertain" in format_status(status)
+        assert len(status["outbox"]["uncertain"]) == len(unc) and len(status["outbox"]["dead"]) == len(dead)
+        text = format_status(status)
+        assert f"{len(unc)} uncertain" in text and (not dead or f"{len(dead)} given up" in text)
 
 
 def _open_alerts(store: Any) -> Counter[tuple[str, str]]:
@@ -369,17 +394,22 @@ alerts:
       port: {port}
       timeout: 10
       sender: {tag}@example.test
-      to: [planning@example.test]
+      to: [{to}]
 """
 
 
-def test_kill_during_delivery(tmp_path: Path, forker: Forker, smtp: SlowSmtp, fault_summary: list[str]) -> None:
+@pytest.mark.parametrize("kind", ["deliver", "deliver-refused"])
+def test_kill_during_delivery(tmp_path: Path, forker: Forker, smtp: SlowSmtp, fault_summary: list[str],
+                              kind: str) -> None:
     from drift.delivery.alerts import process_alerts
     from tests.delivery.conftest import T0, action, outcome, payload
 
+    to = "planning@example.test" + (f", {GONE}" if kind == "deliver-refused" else "")
+    prefix = "d" if kind == "deliver" else "r"
+
     def yaml(tag: str) -> Path:
         p = tmp_path / f"{tag}.yaml"
-        p.write_text(DELIVER_YAML.format(tag=tag, port=smtp.port), encoding="utf-8")
+        p.write_text(DELIVER_YAML.format(tag=tag, port=smtp.port, to=to), encoding="utf-8")
         return p
 
     cfg = load_config(yaml("template"))
@@ -389,12 +419,13 @@ def test_kill_during_delivery(tmp_path: Path, forker: Forker, smtp: SlowSmtp, fa
                                            for i in range(8)]), now=T0)
     finally:
         tpl.dispose()
-    shutil.copy(tmp_path / "template.db", tmp_path / "dref.db")
-    code, duration = forker.run(["deliver", "--config", yaml("dref").name], tmp_path, tmp_path / "dref.out")
-    assert code == 0 and len(smtp.keys("dref@example.test")) == 8, (tmp_path / "dref.out").read_text()
-    tally = Tally("deliver", duration)
-    for i, delay in enumerate(_kill_times("deliver", TRIALS["deliver"], duration)):
-        tag = f"d{i}"
+    ref = f"{prefix}ref"
+    shutil.copy(tmp_path / "template.db", tmp_path / f"{ref}.db")
+    code, duration = forker.run(["deliver", "--config", yaml(ref).name], tmp_path, tmp_path / f"{ref}.out")
+    assert code == 0 and len(smtp.keys(f"{ref}@example.test")) == 8, (tmp_path / f"{ref}.out").read_text()
+    tally = Tally(kind, duration)
+    for i, delay in enumerate(_kill_times(kind, TRIALS[kind], duration)):
+        tag = f"{prefix}{i}"
         shutil.copy(tmp_path / "template.db", tmp_path / f"{tag}.db")
         cfg_file = yaml(tag)
         out = tmp_path / f"{tag}.out"
@@ -408,6 +439,10 @@ def test_kill_during_delivery(tmp_path: Path, forker: Forker, smtp: SlowSmtp, fa
             _settle(cfg, store)
             _assert_delivery(cfg, store, smtp, tag, tmp_path, tally)
             assert len(_rows(store, sa.select(outbox.c.id))) == 16
+            if kind == "deliver-refused":  # nothing was sent plainly "sent": every e-mail row names the refusal
+                mail = _rows(store, sa.select(outbox.c.status, outbox.c.last_error).where(outbox.c.channel == "email"))
+                assert all(r.status in ("dead", "uncertain") for r in mail), Counter(r.status for r in mail)
+                assert all(GONE in (r.last_error or "") for r in mail if r.status == "dead")
         finally:
             store.dispose()
     fault_summary.append(tally.line())
