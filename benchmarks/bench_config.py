@@ -95,7 +95,7 @@ BOMB = ("a: &a [x,x,x,x,x,x,x,x,x]\nb: &b [*a,*a,*a,*a,*a,*a,*a,*a,*a]\nc: &c [*
         "h: &h [*g,*g,*g,*g,*g,*g,*g,*g,*g]\nmodels: [*h,*h,*h,*h,*h,*h,*h,*h,*h]\n")
 
 #: every command that reads a config, with the arguments it needs besides --config
-COMMANDS = [["ingest"], ["readmit"], ["batches"], ["retract", "1"], ["quarantine"], ["check"], ["deliver"],
+COMMANDS = [["ingest"], ["readmit"], ["batches"], ["retract", "--batch", "1"], ["quarantine"], ["check"], ["deliver"],
             ["digest"], ["daemon"], ["status"], ["shock", "--date", "2024-11-04"], ["refit", "--model", "x"],
             ["accept", "--model", "x", "--action", "refit"], ["snooze", "--model", "x", "--until", "2030-01-01"],
             ["history", "--model", "x"]]

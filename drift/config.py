@@ -27,6 +27,7 @@ from typing import Annotated, Any, Literal
 import pandas as pd
 import yaml
 from pydantic import (
+    AfterValidator,
     BaseModel,
     ConfigDict,
     Field,
@@ -51,6 +52,9 @@ DATE_RANGE = (date(1700, 1, 1), date(2200, 12, 31))
 #: float64 overflow (~1.8e308; 1e154 squared is already there); a larger value is a broken input, not data
 #: (common practice, no source). Ingest quarantines larger values; the check refuses them.
 MAX_ABS_VALUE = 1e100
+#: longest name (model, source, series, channel) drift keeps: the store's name columns hold this many
+#: characters (PostgreSQL enforces it; SQLite would keep a longer one, so every store is held to it)
+MAX_NAME_LENGTH = 200
 
 
 def check_date(v: date) -> date:
@@ -60,6 +64,18 @@ def check_date(v: date) -> date:
         raise ValueError(f"{v.isoformat()} is out of range: drift works with dates from {lo.isoformat()} to "
                          f"{hi.isoformat()}")
     return v
+
+def check_name(v: str) -> str:
+    """``v`` when a store can keep it as a name: at most :data:`MAX_NAME_LENGTH` characters (a NUL byte is
+    refused for every string of the config when it is parsed); ValueError otherwise."""
+    if len(v) > MAX_NAME_LENGTH:
+        raise ValueError(f"'{v[:40]}…' is {len(v)} characters long; names are at most {MAX_NAME_LENGTH} "
+                         "characters (the store keeps no more)")
+    return v
+
+
+#: a model, source, series or channel name (see :func:`check_name`)
+Name = Annotated[str, AfterValidator(check_name)]
 
 _DURATION_RE = re.compile(
     r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|secs|second|seconds|m|min|mins|minute|minutes|h|hour|hours|"
@@ -118,7 +134,7 @@ class SourceConfig(_Strict):
     """One data source. Wide format: every column other than the period (and available/issued) columns
     is a series named by its header. Long format: ``series_column`` and ``value_column``."""
 
-    name: str
+    name: Name
     kind: Literal["csv", "parquet", "sql"]
     path: str | None = None
     url: str | None = None
@@ -175,7 +191,7 @@ class SourceConfig(_Strict):
 
 
 class DriverConfig(_Strict):
-    series: str
+    series: Name
     lag: int = Field(1, ge=0)
     form: Literal["lagged", "forecast", "known"] = "lagged"
     delay: timedelta | None = None
@@ -231,7 +247,7 @@ class DeployedForecastsConfig(_Strict):
     of a period issued at an origin (a source with ``issued_column``); ``horizon``: periods ahead (default:
     the model's ``horizon``)."""
 
-    series: str
+    series: Name
     horizon: int | None = Field(None, ge=1)
 
 
@@ -274,8 +290,8 @@ _ERR_RE = re.compile(r"^\s*(ols|ar\(\s*(\d+)\s*\)|arma\(\s*(\d+)\s*,\s*(\d+)\s*\
 
 
 class ModelConfig(_Strict):
-    name: str
-    target: str
+    name: Name
+    target: Name
     frequency: Literal["D", "W", "M", "Q"]
     drivers: list[DriverConfig] = Field(default_factory=list)
     reference: ReferenceConfig
@@ -422,7 +438,7 @@ class CheckConfig(_Strict):
 
 class EmailChannel(_Strict):
     kind: Literal["email"]
-    name: str | None = None
+    name: Name | None = None
     host: str
     port: int = Field(25, ge=1, le=65535)
     security: Literal["none", "starttls", "ssl"] = "none"
@@ -440,13 +456,13 @@ class EmailChannel(_Strict):
 
 class FolderChannel(_Strict):
     kind: Literal["folder"]
-    name: str | None = None
+    name: Name | None = None
     path: str
 
 
 class WebhookChannel(_Strict):
     kind: Literal["webhook"]
-    name: str | None = None
+    name: Name | None = None
     url: str
     timeout: float = Field(10.0, gt=0)
     headers_env: dict[str, str] = Field(default_factory=dict)
@@ -575,14 +591,12 @@ class Config(_Strict):
 
     @model_validator(mode="after")
     def _cross(self) -> Config:
-        names = [s.name for s in self.sources]
-        dup = {n for n in names if names.count(n) > 1}
-        if dup:
-            raise ValueError(f"source names must be unique; repeated: {sorted(dup)}")
-        mnames = [m.name for m in self.models]
-        dup = {n for n in mnames if mnames.count(n) > 1}
-        if dup:
-            raise ValueError(f"model names must be unique; repeated: {sorted(dup)}")
+        from collections import Counter
+
+        for what, names in (("source", [s.name for s in self.sources]), ("model", [m.name for m in self.models])):
+            dup = sorted(n for n, k in Counter(names).items() if k > 1)
+            if dup:
+                raise ValueError(f"{what} names must be unique; repeated: {dup}")
         return self
 
     def require(self, *sections: str) -> None:
@@ -665,26 +679,59 @@ MAX_CONFIG_BYTES = 16 * 2**20
 #: anchored ``&name``): a legitimate config with thousands of models stays far below; a nest of aliases
 #: that would expand to billions of nodes (an "alias bomb") is refused before anything walks it
 MAX_CONFIG_NODES = 2_000_000
+#: deepest nesting of mappings and lists a config may have (drift's own keys go about 6 deep)
+MAX_CONFIG_DEPTH = 64
 
 
-def _parse_yaml(text: str, file: str) -> tuple[Any, dict[tuple[Any, ...], int]]:
-    """Safe-load the YAML text with limits; the data and the line of each key path.
+#: the YAML loader: PyYAML's C (libyaml) safe loader when it was built with one (several times faster on a
+#: large config), else its pure-Python safe loader; both give the same nodes, marks and data
+_LOADER: Any = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
+
+
+def _parse_yaml(text: str, file: str) -> tuple[Any, _Lines]:
+    """Safe-load the YAML text once, with limits; the data and the (lazily found) line of each key path.
+
+    The text is composed into nodes once, one pass over the distinct nodes checks them
+    (:func:`_inspect`), and the data are constructed from the same nodes. Line numbers are looked up only
+    when an error needs one.
 
     Raises
     ------
     ConfigError : not YAML, nested too deeply, recursive aliases, an expansion beyond
-        :data:`MAX_CONFIG_NODES`, or a key repeated in one mapping.
+        :data:`MAX_CONFIG_NODES`, a key repeated in one mapping, or a NUL byte in a value.
     """
-    loader = yaml.SafeLoader(text)
+    loader = _LOADER(text)
     try:
         root = _yaml_step(loader.get_single_node, file)
         if root is None:
-            return None, {}
-        _expanded_size(root, file)
-        lines = _line_map(root, file)
-        return _yaml_step(lambda: loader.construct_document(root), file), lines
+            return None, _Lines(None, file)
+        if _inspect(root, file):
+            _expanded_size(root, file)
+        return _yaml_step(lambda: loader.construct_document(root), file), _Lines(root, file)
     finally:
         loader.dispose()
+
+
+class _Lines:
+    """Key path -> 1-based line, found by walking the nodes the first time one is asked for (an error)."""
+
+    def __init__(self, root: yaml.Node | None, file: str) -> None:
+        self._root, self._file = root, file
+        self._map: dict[tuple[Any, ...], int] | None = None
+
+    def _lines(self) -> dict[tuple[Any, ...], int]:
+        if self._map is None:
+            self._map = _line_map(self._root, self._file) if self._root is not None else {}
+        return self._map
+
+    def get(self, key: tuple[Any, ...], default: int | None = None) -> int | None:
+        return self._lines().get(key, default)
+
+    def __contains__(self, key: tuple[Any, ...]) -> bool:
+        return key in self._lines()
+
+    def __getitem__(self, key: tuple[Any, ...]) -> int:
+        return self._lines()[key]
 
 
 def _yaml_step(step: Any, file: str) -> Any:
@@ -698,6 +745,74 @@ def _yaml_step(step: Any, file: str) -> Any:
                           line=mark.line + 1 if mark is not None else None) from None
     except RecursionError:
         raise ConfigError("not valid YAML for drift: nested too deeply", file=file) from None
+
+
+def _inspect(root: yaml.Node, file: str) -> bool:
+    """One pass over the distinct nodes: a key written twice in one mapping (YAML loaders keep the last one
+    and silently drop the first) and a NUL byte in a scalar (no store keeps one in text) are errors.
+    Returns whether some node is reached twice (through an alias): only then can the expansion be larger
+    than the text, and :func:`_expanded_size` measures it."""
+    seen: set[int] = set()
+    shared = False
+    stack = [(root, 0)]
+    mapping, sequence = yaml.MappingNode, yaml.SequenceNode
+    while stack:
+        node, depth = stack.pop()
+        if id(node) in seen:
+            shared = True
+            continue
+        seen.add(id(node))
+        if depth > MAX_CONFIG_DEPTH:
+            raise ConfigError(f"not valid YAML for drift: nested too deeply (more than {MAX_CONFIG_DEPTH} levels)",
+                              file=file, line=node.start_mark.line + 1)
+        if isinstance(node, mapping):
+            keys: set[Any] = set()
+            for k, v in node.value:
+                if isinstance(k, yaml.ScalarNode) and k.value != "<<":
+                    if k.value in keys:
+                        _twice(root, node, k, file)
+                    keys.add(k.value)
+                stack.append((k, depth + 1))
+                stack.append((v, depth + 1))
+        elif isinstance(node, sequence):
+            stack.extend((v, depth + 1) for v in node.value)
+        elif "\x00" in node.value:
+            path = _path_of(root, node)
+            raise ConfigError(
+                f"{node.value[:40]!r} contains a NUL byte (\\0 or \\x00): no store keeps one in text; remove it",
+                file=file, key=_key_path(path) if path else None, line=node.start_mark.line + 1)
+    return shared
+
+
+def _twice(root: yaml.Node, mapping: yaml.MappingNode, key: yaml.ScalarNode, file: str) -> None:
+    """Raise the error for ``key`` written twice in ``mapping`` (both lines, and the key path)."""
+    first = next(k for k, _ in mapping.value if isinstance(k, yaml.ScalarNode) and k.value == key.value)
+    path = (_path_of(root, mapping) or ()) + (key.value,)
+    raise ConfigError(f"key '{key.value}' is written twice in the same mapping (lines {first.start_mark.line + 1} "
+                      f"and {key.start_mark.line + 1}); keep one", file=file, key=_key_path(path),
+                      line=key.start_mark.line + 1)
+
+
+def _path_of(root: yaml.Node, target: yaml.Node) -> tuple[Any, ...] | None:
+    """The key path of ``target`` (the first one, for a node reached through an alias); for error messages."""
+    seen: set[int] = set()
+    stack: list[tuple[yaml.Node, tuple[Any, ...]]] = [(root, ())]
+    while stack:
+        node, path = stack.pop()
+        if node is target:
+            return path
+        if id(node) in seen:
+            continue
+        seen.add(id(node))
+        if isinstance(node, yaml.MappingNode):
+            for k, v in node.value:
+                key = k.value if isinstance(k, yaml.ScalarNode) else None
+                if k is target:
+                    return path
+                stack.append((v, path + (key,)))
+        elif isinstance(node, yaml.SequenceNode):
+            stack.extend((v, path + (i,)) for i, v in enumerate(node.value))
+    return None
 
 
 def _expanded_size(root: yaml.Node, file: str) -> int:
@@ -746,8 +861,8 @@ def _children(node: yaml.Node) -> list[yaml.Node]:
 
 def _line_map(root: yaml.Node, file: str) -> dict[tuple[Any, ...], int]:
     """Map key paths (tuples of keys / list indices) to 1-based line numbers; each node is visited once (a
-    node repeated through an alias keeps the path where it was first seen). A key written twice in one
-    mapping is an error: YAML loaders keep the last one and silently drop the first."""
+    node repeated through an alias keeps the path where it was first seen). Called only when an error needs
+    a line (:class:`_Lines`); keys written twice were refused by :func:`_inspect` already."""
     out: dict[tuple[Any, ...], int] = {}
     seen: set[int] = set()
     stack: list[tuple[yaml.Node, tuple[Any, ...]]] = [(root, ())]
@@ -758,17 +873,10 @@ def _line_map(root: yaml.Node, file: str) -> dict[tuple[Any, ...], int]:
             continue
         seen.add(id(node))
         if isinstance(node, yaml.MappingNode):
-            first: dict[Any, int] = {}
             for k, v in node.value:
                 key = k.value if isinstance(k, yaml.ScalarNode) else None
-                line = k.start_mark.line + 1
                 if key is not None and key != "<<":
-                    if key in first:
-                        where = _key_path(path + (key,))
-                        raise ConfigError(f"key '{key}' is written twice in the same mapping (lines {first[key]} "
-                                          f"and {line}); keep one", file=file, key=where, line=line)
-                    first[key] = line
-                    out[path + (key,)] = line
+                    out[path + (key,)] = k.start_mark.line + 1
                     stack.append((v, path + (key,)))
         elif isinstance(node, yaml.SequenceNode):
             for i, v in enumerate(node.value):
@@ -894,7 +1002,7 @@ def load_config(path: str | os.PathLike[str], *, check_files: bool = False) -> C
     return cfg
 
 
-def _check_semantics(cfg: Config, lines: dict[tuple[Any, ...], int]) -> None:
+def _check_semantics(cfg: Config, lines: _Lines) -> None:
     """Checks that need more than one key: lags vs delays, the time zone."""
     file = str(cfg.file) if cfg.file else None
     for i, m in enumerate(cfg.models):

@@ -41,7 +41,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from drift.config import MAX_ABS_VALUE, Config, SourceConfig, next_period, period_start
+from drift.config import MAX_ABS_VALUE, MAX_NAME_LENGTH, Config, SourceConfig, next_period, period_start
 from drift.exceptions import InputError
 from drift.ingest import dates
 
@@ -394,6 +394,8 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
             rcolumn[no_name] = source.series_column
             rraw[no_name] = ""
 
+    _check_names(series, reason, rcolumn, rraw, source)
+
     issued_key = cell_issued.as_unit("ns").asi8.copy()
     issued_key[cell_issued.isna()] = _NO_ISSUE
     keys = pd.DataFrame({"s": series, "p": cell_start.astype("datetime64[ns]").astype(np.int64),
@@ -441,9 +443,57 @@ def validate(raw: RawTable, source: SourceConfig, rules: SeriesRules) -> Validat
     })
     quarantine = (pd.concat(qrecords, ignore_index=True) if qrecords
                   else pd.DataFrame({c: [] for c in QUARANTINE_COLUMNS}))
+    quarantine = _storable(quarantine)
     quarantine = quarantine.sort_values(["row", "column"], kind="stable").reset_index(drop=True)
     quarantine["row"] = quarantine["row"].astype(np.int64)
     return Validated(good=good, quarantine=quarantine[QUARANTINE_COLUMNS], cells=int(n_cells))
+
+
+def _check_names(series: np.ndarray, reason: np.ndarray, rcolumn: np.ndarray, rraw: np.ndarray,
+                 source: SourceConfig) -> None:
+    """Quarantine (in place: ``reason``, and for long format ``rcolumn``/``rraw``) the cells whose series name
+    no store keeps: one with a NUL byte, or longer than :data:`~drift.config.MAX_NAME_LENGTH` characters.
+    Checked once per distinct name."""
+    names = pd.unique(pd.Series(series, dtype=object))
+    bad: dict[str, str] = {}
+    for name in names:
+        text = str(name)
+        if "\x00" in text:
+            bad[text] = (f"the series name '{text[:60]}' contains a NUL byte, which no store keeps in "
+                         "text; remove it from the name")
+        elif len(text) > MAX_NAME_LENGTH:
+            bad[text] = (f"the series name is {len(text)} characters long ('{text[:40]}…'); drift keeps "
+                         f"names of at most {MAX_NAME_LENGTH} characters: shorten it")
+    if not bad:
+        return
+    hit = np.isin(series, list(bad)) & (reason == None)  # elementwise on an object array
+    idx = np.nonzero(hit)[0]
+    reason[idx] = [bad[str(series[i])] for i in idx]
+    if source.long_format:
+        rcolumn[idx] = source.series_column
+        rraw[idx] = series[idx]
+
+
+def _escape(text: str) -> str:
+    """``text`` as a store keeps it: a NUL byte written as the four characters ``\\x00``."""
+    return text.replace("\x00", "\\x00")
+
+
+def _storable(records: pd.DataFrame) -> pd.DataFrame:
+    """Quarantine records every store can keep: NUL bytes escaped (:func:`_escape`) in every text, and the
+    column name cut to :data:`~drift.config.MAX_NAME_LENGTH` characters (the store's column width)."""
+    if records.empty:
+        return records
+    out = records.copy()
+    for col in ("column", "raw_value", "reason"):
+        text = out[col].astype(object)
+        nul = text.map(lambda v: isinstance(v, str) and "\x00" in v).to_numpy(dtype=bool)
+        if nul.any():
+            out.loc[nul, col] = [_escape(v) for v in text[nul]]
+    long = out["column"].map(lambda v: isinstance(v, str) and len(v) > MAX_NAME_LENGTH).to_numpy(dtype=bool)
+    if long.any():
+        out.loc[long, "column"] = [v[: MAX_NAME_LENGTH - 1] + "…" for v in out["column"][long]]
+    return out
 
 
 def _require(raw: RawTable, column: str, key: str, columns: list[str]) -> None:
