@@ -938,7 +938,8 @@ def _close_stale(conn: Connection, now: datetime, stale_after: float, *,
                  note: str | None = None) -> list[dict[str, Any]]:
     """Record the stale running runs abandoned inside the open write transaction ``conn``."""
     closed = []
-    for r in conn.execute(sa.select(runs).where(runs.c.status == "running")).fetchall():
+    # in id order: two writers closing the same rows lock them in one order (no deadlock on PostgreSQL)
+    for r in conn.execute(sa.select(runs).where(runs.c.status == "running").order_by(runs.c.id)).fetchall():
         row = dict(r._mapping)
         why = run_stale_reason(row, now=now, stale_after=stale_after)
         if why is None:

@@ -162,6 +162,7 @@ class Tally:
         self.kind, self.duration, self.trials, self.killed, self.finished = kind, duration, 0, 0, 0
         self.uncertain = self.uncertain_received = self.resent_by_folder = 0
         self.received_once = self.dead = self.lost = 0
+        self.abandoned = 0  # killed runs the rerun recorded abandoned (never shown running before that)
 
     def count(self, code: int, out: Path) -> None:
         assert code in (0, -signal.SIGKILL), f"exit {code}: {out.read_text(errors='replace')[-2000:]}"
@@ -177,7 +178,8 @@ class Tally:
                      f"{self.lost} lost, none received twice; uncertain and dead shown by drift status")
         return (f"{self.kind}: {self.trials} trials (seed {SEED}; kill at 2-100% of an uninterrupted run, "
                 f"{self.duration:.1f} s here), {self.killed} killed mid-run, {self.finished} finished first; "
-                f"every store consistent, every rerun completed the work{extra}")
+                f"every store consistent, every rerun completed the work{extra}; {self.abandoned} killed "
+                "run(s) recorded abandoned, none shown running")
 
 
 def _kill_times(kind: str, n: int, duration: float) -> list[float]:
@@ -263,7 +265,9 @@ def test_kill_during_ingest(tmp_path: Path, forker: Forker, fault_summary: list[
         store = open_store(f"sqlite:///{db}")
         try:
             _assert_ingest_consistent(store)
+            _assert_runs_true(load_config(cfg_file), store, "ingest")
             run_ingest(load_config(cfg_file), store, progress=False)  # the rerun
+            _assert_runs_true(load_config(cfg_file), store, "ingest", tally)
             _assert_ingest_consistent(store)
             assert _observations(store) == expected
             assert store.recent_runs("ingest")[0]["status"] == "ok"
@@ -273,6 +277,22 @@ def test_kill_during_ingest(tmp_path: Path, forker: Forker, fault_summary: list[
             p.unlink()
     fault_summary.append(tally.line())
     assert tally.killed >= tally.trials // 2
+
+
+def _assert_runs_true(cfg: Any, store: Any, kind: str, tally: Tally | None = None) -> None:
+    """Issue 15: a killed run is never shown running (before the rerun, ``tally`` None); the rerun's start
+    records it abandoned, with why (after it: counted in ``tally``)."""
+    if tally is None:
+        shown = collect_status(cfg, store)["jobs"][kind]
+        assert shown["outcome"] != "running", shown
+        return
+    rows = store.recent_runs(kind, limit=50)
+    assert all(r["status"] != "running" for r in rows), [(r["id"], r["status"]) for r in rows]
+    for r in rows[1:]:  # the killed run, if it got as far as recording its start
+        assert r["status"] in ("abandoned", "ok", "partial"), r
+        if r["status"] == "abandoned":
+            assert "is no longer running" in r["error"] and r["finished_at"] is not None, r
+            tally.abandoned += 1
 
 
 # ------------------------------------------------------------------------------------------ check
@@ -372,7 +392,9 @@ def test_kill_during_check(tmp_path: Path, forker: Forker, smtp: SlowSmtp, fault
             assert all(n == 1 for n in _open_alerts(store).values())
             got = smtp.keys(f"{tag}@example.test")
             assert all(n == 1 for n in got.values())
+            _assert_runs_true(cfg, store, "check")
             run_check(cfg, store, as_of=AS_OF)  # the rerun
+            _assert_runs_true(cfg, store, "check", tally)
             _settle(cfg, store)
             assert _open_alerts(store) == expected
             _assert_delivery(cfg, store, smtp, tag, tmp_path, tally)
