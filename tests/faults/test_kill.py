@@ -178,8 +178,9 @@ class Tally:
                      f"{self.lost} lost, none received twice; uncertain and dead shown by drift status")
         return (f"{self.kind}: {self.trials} trials (seed {SEED}; kill at 2-100% of an uninterrupted run, "
                 f"{self.duration:.1f} s here), {self.killed} killed mid-run, {self.finished} finished first; "
-                f"every store consistent, every rerun completed the work{extra}; {self.abandoned} killed "
-                "run(s) recorded abandoned, none shown running")
+                f"every store consistent, every rerun completed the work{extra}"
+                + (f"; {self.abandoned} killed run(s) recorded abandoned, none shown running"
+                   if self.kind in ("ingest", "check") else ""))
 
 
 def _kill_times(kind: str, n: int, duration: float) -> list[float]:
