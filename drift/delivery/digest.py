@@ -181,7 +181,8 @@ class Digest:
     models : every model's line, most pressing first.
     changed : what moved since the state compared against.
     open_alerts : open alerts, most severe first.
-    undelivered : notices given up or uncertain (outbox rows waiting on an operator), oldest first.
+    undelivered : notices given up or uncertain (outbox rows waiting on an operator), newest first (the
+        page shows 20 of them and says how many more ``drift status`` lists).
     compared_with : words naming the state compared against ("the digest of 2025-12-22", ...).
     run_id : the ``runs`` row (only from :func:`run_digest`).
     queued : idempotency keys of outbox rows written by this run (``send=True``).
@@ -413,7 +414,7 @@ def _undelivered(store: Store) -> list[Undelivered]:
     o = outbox
     with store.connect() as conn:
         got = conn.execute(sa.select(o.c.id, o.c.channel, o.c.subject, o.c.status, o.c.last_error, o.c.created_at)
-                           .where(o.c.status.in_(("dead", "uncertain"))).order_by(o.c.id)).fetchall()
+                           .where(o.c.status.in_(("dead", "uncertain"))).order_by(o.c.id.desc())).fetchall()
     return [Undelivered(id=int(r.id), channel=str(r.channel), subject=str(r.subject), status=str(r.status),
                         error=str(r.last_error or ""), created_at=r.created_at) for r in got]
 

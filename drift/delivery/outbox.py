@@ -586,6 +586,10 @@ def _try(cfg: Config, ch: Channel, msg: OutboxMessage, handover: _Handover | Non
             return _Outcome("failed", f"{text} (before anything was sent)")
         log.exception("outbox row %s (%s): unexpected error while sending", msg.id, msg.channel)
         return _Outcome("uncertain", f"{text} (while sending: it may have been delivered)")
+    merged = _merge(msg.recipients, got, now)
+    if any(v.get("status") != "sent" for v in merged.values()):  # an earlier try's refusal still stands
+        retry, text = _partial_outcome(merged)
+        return _Outcome("failed" if retry else "dead", text, got)
     return _Outcome("sent", recipients=got or None)
 
 

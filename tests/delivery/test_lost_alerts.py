@@ -206,6 +206,23 @@ def test_a_recipient_refused_for_good_makes_the_row_dead_and_reported(tmp_path: 
     assert "1 given up" in text and TEAM in text
 
 
+def test_one_refused_for_now_and_one_for_good(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
+    """The recipient refused for now gets it on the next try; the one refused for good keeps the row dead."""
+    gone = "gone@example.test"
+    cfg = make_cfg(tmp_path, [{"kind": "email", "name": "mail", "host": "127.0.0.1", "port": smtp_server.port,
+                               "sender": "drift@example.test", "to": [OWNER, TEAM, gone], "timeout": 5}])
+    one_alert(cfg, store)
+    smtp_server.handler.refuse_rcpt = {TEAM: "450 4.2.1 mailbox busy", gone: "550 5.1.1 no such user"}
+    rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
+    assert (rep.failed, rep.dead) == (1, 0) and rows(store)[0].status == "pending"
+    smtp_server.handler.refuse_rcpt = {gone: "550 5.1.1 no such user"}
+    rep = deliver_pending(cfg, store, now=T0 + dt.timedelta(hours=1), channels=senders(cfg))
+    assert (rep.sent, rep.dead) == (0, 1), rep.describe()
+    [r] = rows(store)
+    assert r.status == "dead" and gone in r.last_error and f"delivered to {OWNER}, {TEAM}" in r.last_error
+    assert [m.rcpt_tos for m in smtp_server.messages] == [[OWNER], [TEAM]]
+
+
 def test_every_recipient_refused_for_good_is_dead(tmp_path: Path, store: Any, smtp_server: SmtpServer) -> None:
     cfg = email_cfg(tmp_path, smtp_server.port)
     one_alert(cfg, store)
@@ -269,6 +286,16 @@ def test_dead_and_uncertain_notices_are_in_the_digest(tmp_path: Path, store: Any
     assert len(d.undelivered) == 2 and {u.status for u in d.undelivered} == {"dead"}
     for body in (d.text, d.html):
         assert "not delivered" in body and "554" in body and "k000" in body
+    # a long list is cut at 20, newest first, and says how many more drift status lists
+    with store.begin() as conn:
+        conn.execute(outbox_t.insert(), [{"channel": "mail", "idempotency_key": f"x{i}", "subject": f"old {i}",
+                                          "payload": "{}", "status": "dead", "attempts": 20, "last_error": "gone",
+                                          "next_attempt_at": T0, "created_at": T0} for i in range(21)])
+    d = build_digest(cfg, store, now=T0 + dt.timedelta(days=1))
+    assert len(d.undelivered) == 23 and d.undelivered[0].subject == "old 20"
+    assert "old 0 - gone" not in d.text and "old 1 - gone" in d.text
+    for body in (d.text, d.html):
+        assert "and 3 more" in body and "old 20" in body and ("old 0<" not in body and "old 0 -" not in body)
 
 
 # ------------------------------------------------------------------------ check --no-deliver, deliver now
