@@ -8,8 +8,10 @@ a missing variable is a ChannelUnavailable naming the variable).
 Outcomes: 2xx -> sent. Non-2xx -> the receiver answered, so it did not take the notice: a 4xx answer that
 refuses this request for good (400, 404, 410, 413, 422, ...) -> DeliveryRefused (the row is given up,
 ``dead``); 401, 403 and 407 (credentials: the same for every notice) -> ChannelUnavailable; 408, 425, 429
-and 5xx -> DeliveryError, retried. Connection refused / name not resolved -> ChannelUnavailable. A timeout or a reset
-after the request may have gone out -> DeliveryUncertain (not re-sent automatically).
+and 5xx -> DeliveryError, retried. Connection refused / name not resolved, or any failure before the
+connection (TLS included) is up -> ChannelUnavailable. A timeout or a reset once connected, when the request
+may have gone out -> DeliveryUncertain (not re-sent automatically). The hand-over (the row becomes
+``delivering``) is reported once the connection is up, just before the request is written.
 
 Only ``http://`` and ``https://`` URLs are accepted (checked when the config is loaded, and again here).
 Redirects are never followed: a 3xx answer is a DeliveryError naming the ``Location`` (set ``url`` to the
@@ -54,8 +56,39 @@ class _NoRedirect(urllib.request.HTTPRedirectHandler):
         return None
 
 
-#: an opener without redirect handling (proxies from the environment still apply)
-_OPENER = urllib.request.build_opener(_NoRedirect)
+def _after_connect(cls: Any, handover: Any) -> Any:
+    """``cls`` (an http.client connection class) calling ``handover()`` once connected (TLS included)."""
+
+    class Connection(cls):  # type: ignore[misc, valid-type]
+        def connect(self) -> None:
+            super().connect()
+            handover()
+
+    return Connection
+
+
+class _HandoverHttp(urllib.request.HTTPHandler):
+    def __init__(self, handover: Any) -> None:
+        super().__init__()
+        self._handover = handover
+
+    def do_open(self, http_class: Any, req: Any, **kwargs: Any) -> Any:
+        return super().do_open(_after_connect(http_class, self._handover), req, **kwargs)
+
+
+class _HandoverHttps(urllib.request.HTTPSHandler):
+    def __init__(self, handover: Any) -> None:
+        super().__init__()
+        self._handover = handover
+
+    def do_open(self, http_class: Any, req: Any, **kwargs: Any) -> Any:
+        return super().do_open(_after_connect(http_class, self._handover), req, **kwargs)
+
+
+def _opener(handover: Any) -> urllib.request.OpenerDirector:
+    """An opener that follows no redirect and reports the hand-over once the connection is up, just before
+    the request is written (proxies from the environment still apply)."""
+    return urllib.request.build_opener(_NoRedirect, _HandoverHttp(handover), _HandoverHttps(handover))
 
 
 @register_channel
@@ -93,9 +126,14 @@ class WebhookSender(Channel):
         headers["Idempotency-Key"] = msg.key
         data = json.dumps(self.body(msg), default=str).encode("utf-8")
         req = urllib.request.Request(self.spec.url, data=data, headers=headers, method="POST")
-        msg.handing_over()  # the request may reach the receiver from here on
+        connected: list[bool] = []
+
+        def handover() -> None:  # once connected: the request may reach the receiver from then on
+            msg.handing_over()
+            connected.append(True)
+
         try:
-            with _OPENER.open(req, timeout=self.spec.timeout) as resp:
+            with _opener(handover).open(req, timeout=self.spec.timeout) as resp:
                 status = resp.status
         except urllib.error.HTTPError as exc:
             if 300 <= exc.code < 400:
@@ -116,13 +154,15 @@ class WebhookSender(Channel):
             raise DeliveryError(text) from None
         except urllib.error.URLError as exc:
             reason = exc.reason
-            if isinstance(reason, (ConnectionRefusedError, socket.gaierror)):
+            if not connected or isinstance(reason, (ConnectionRefusedError, socket.gaierror)):
                 raise ChannelUnavailable(f"cannot reach webhook {self.name}: {reason}") from None
             if isinstance(reason, (TimeoutError, socket.timeout, ConnectionResetError)):
                 raise DeliveryUncertain(f"webhook {self.name}: {reason.__class__.__name__} after the request "
                                         "was sent; it may have been received") from None
             raise ChannelUnavailable(f"cannot reach webhook {self.name}: {reason}") from None
         except (TimeoutError, ConnectionResetError, OSError) as exc:
+            if not connected:
+                raise ChannelUnavailable(f"cannot reach webhook {self.name}: {exc.__class__.__name__}") from None
             raise DeliveryUncertain(f"webhook {self.name}: {exc.__class__.__name__} while waiting for the "
                                     "answer; it may have been received") from None
         if not 200 <= status < 300:

@@ -186,3 +186,35 @@ def test_a_receiver_echoing_the_token_does_not_leak_it(tmp_path: Path, store: An
         stored = conn.execute(outbox_t.select()).fetchall()
     everything = caplog.text + repr(rep) + " ".join(str(r.last_error) for r in stored)
     assert "tok-5e1f-MARKER" not in everything
+
+
+@pytest.mark.parametrize("fault", [KeyboardInterrupt, RuntimeError])
+def test_nothing_is_handed_over_before_the_connection_is_up(tmp_path: Path, store: Any, http_sink: HttpSink,
+                                                            monkeypatch: pytest.MonkeyPatch, fault: Any) -> None:
+    """A process killed (KeyboardInterrupt stands in) or an unexpected error while connecting: no byte reached
+    the receiver, so the row is not ``delivering`` (which a later run would turn uncertain): it is sent again,
+    once. Common practice, no source."""
+    import socket
+
+    import drift.delivery.outbox as ob
+    from drift.store import outbox as outbox_t
+
+    cfg = hook_cfg(tmp_path, http_sink.url)
+    process_alerts(cfg, store, outcome_of("k000"), now=T0)
+
+    def broken(*a: Any, **k: Any) -> Any:
+        raise fault("while connecting")
+
+    monkeypatch.setattr(socket, "create_connection", broken)
+    if fault is KeyboardInterrupt:
+        with pytest.raises(KeyboardInterrupt):
+            deliver_pending(cfg, store, now=T0)
+    else:
+        rep = deliver_pending(cfg, store, now=T0)
+        assert (rep.failed, rep.uncertain) == (1, 0), rep.describe()
+    monkeypatch.undo()
+    with store.connect() as conn:
+        status = conn.execute(outbox_t.select()).one().status
+    assert status == ("sending" if fault is KeyboardInterrupt else "pending")
+    rep = deliver_pending(cfg, store, now=T0 + ob.DEFAULT_SENDING_LEASE)
+    assert (rep.sent, rep.uncertain) == (1, 0) and len(http_sink.requests) == 1
