@@ -32,7 +32,9 @@ from drift.engine.split import split_coefficients
 from drift.engine.tables import family as _fam_table
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
+from drift.executor import run_chunks
 from drift.panel import Design, as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
+from drift.progress import Progress
 from drift.replay import h_step_errors
 from drift.verdicts import ERROR, Action, change_words, fmt_num, fmt_p, overall, sort_actions, window_words
 
@@ -1326,14 +1328,15 @@ def _payload(c: _Ctx) -> dict[str, Any]:
 
 # ------------------------------------------------------------------------------------------------ run
 def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: list[str] | None = None,
-              deliver: bool = True, record: bool = True) -> CheckOutcome:
+              deliver: bool = True, record: bool = True, progress: bool | None = False) -> CheckOutcome:
     """Check the models as of a date (default: today, UTC), save verdicts, process alerts and deliver.
 
     ``deliver=False`` (``check --no-deliver``) still opens and updates alerts and queues their notices in the
     outbox; only the sending is left to ``drift deliver`` or the daemon.
 
     A model that cannot be checked does not stop the run: it gets an error entry (``outcome.errors`` and
-    ``outcome.failed``). The run is recorded ``ok`` when every model was checked, ``partial`` when some
+    ``outcome.failed``). ``progress``: a bar on stderr (None = when stderr is a terminal and the check has
+    more than one chunk; False = never). The run is recorded ``ok`` when every model was checked, ``partial`` when some
     were not (its detail counts them: ``checked``, ``failed``, ``errors``).
 
     Raises
@@ -1353,15 +1356,18 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
 
         epochs = current(store, written, day)
         chosen = [apply_epoch(m, epochs[m.name]) for m in written]
-        series = sorted({s for m in chosen for s in m.read_series})
-        obs = store.load_observations(series, moment)
         ahead = _plans_loaded_after_the_fact(cfg, chosen, store, moment)
-        if not ahead.empty:
-            obs = pd.concat([obs, ahead], ignore_index=True)
-        from drift.executor import run_chunks  # executor calls back into analyse
 
-        payloads, errors = run_chunks(cfg, chosen, obs, moment)
-        _quarantine_hint(store, chosen, obs, errors)
+        def load(series: list[str]) -> pd.DataFrame:
+            got = store.load_observations(series, moment)
+            extra = ahead[ahead["series"].isin(series)] if not ahead.empty else ahead
+            return pd.concat([got, extra], ignore_index=True) if len(extra) else got
+
+        # each chunk's observations are read (one as-of query) as the chunk is handed out, so memory is
+        # bounded by the chunks in flight, not by the number of models
+        with Progress(progress, "checking", len(chosen)) as bar:
+            payloads, errors = run_chunks(cfg, chosen, load, moment, func=analyse, on_done=bar.advance)
+        _quarantine_hint(store, chosen, moment, errors)
         failed = [error_entry(m, errors[m.name], day) for m in chosen if m.name in errors]
         by_name = {m.name: m for m in written}
         for entry in (*payloads, *failed):
@@ -1390,12 +1396,13 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         raise
 
 
-def _quarantine_hint(store: Any, models: Sequence[ModelConfig], obs: pd.DataFrame, errors: dict[str, str]) -> None:
+def _quarantine_hint(store: Any, models: Sequence[ModelConfig], moment: datetime, errors: dict[str, str]) -> None:
     """Add to the reason of a model that failed for want of a series what ingest quarantined of it: a series
     whose every value was refused (beyond the size drift computes with, not a number, ...) is absent from
     the store, and the quarantine says why (wide sources: the column is the series)."""
     failed = [m for m in models if m.name in errors]
-    absent = sorted({s for m in failed for s in m.series} - set(obs["series"].unique()))
+    wanted = sorted({s for m in failed for s in m.series})
+    absent = sorted(set(wanted) - set(store.last_periods(wanted, moment))) if wanted else []
     if not absent:
         return
     held = store.quarantined_columns(absent)

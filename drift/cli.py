@@ -226,7 +226,8 @@ def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool
         from drift.report import format_table
 
         with _opened(config, need=("models",)) as (cfg, store):
-            outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver)
+            outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver,
+                                progress=False if as_json else None)  # a bar on a terminal, never with --json
         if as_json:
             click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
         else:

@@ -389,7 +389,9 @@ class CheckConfig(_Strict):
     #: "104 periods", "18 months", "26 weeks", "8 quarters", "730 days") or a bare number, a multiple of
     #: the reference length (at most 6); see :meth:`horizon_periods`
     horizon: float | str = "2 years"
-    #: how chunks of models are run (see drift.executor); dask_scheduler None = a LocalCluster for the run
+    #: how chunks of models are run (see drift.executor); dask_scheduler None = a LocalCluster for the run.
+    #: ``executor`` may also be written as a mapping, ``{kind: dask, address: tcp://host:8786}`` (an existing
+    #: cluster; ``address`` sets ``dask_scheduler``), optionally with ``workers``
     executor: Literal["local", "process", "dask"] = "local"
     chunk_size: int = Field(500, ge=1)
     workers: int | None = Field(None, ge=1)
@@ -428,6 +430,34 @@ class CheckConfig(_Strict):
         if unit == "period":
             return max(1, round(count))
         return max(1, round(count * PERIODS_PER_YEAR[freq] / UNITS_PER_YEAR[unit]))
+
+    @model_validator(mode="before")
+    @classmethod
+    def _executor_mapping(cls, data: Any) -> Any:
+        if not isinstance(data, dict) or not isinstance(data.get("executor"), dict):
+            return data
+        spec = dict(data["executor"])
+        unknown = sorted(set(spec) - {"kind", "address", "workers"})
+        if unknown:
+            raise ValueError(f"executor: unknown key(s) {', '.join(unknown)}; an executor mapping takes kind, "
+                             "address (dask only) and workers")
+        if "kind" not in spec:
+            raise ValueError("executor: the mapping needs 'kind' (local, process or dask)")
+        out = {k: v for k, v in data.items() if k != "executor"}
+        out["executor"] = spec["kind"]
+        if spec.get("address") is not None:
+            if spec["kind"] != "dask":
+                raise ValueError(f"executor: 'address' is for kind dask (a scheduler such as "
+                                 f"tcp://host:8786), not {spec['kind']!r}")
+            if data.get("dask_scheduler") not in (None, spec["address"]):
+                raise ValueError("executor.address and dask_scheduler both name a scheduler; keep one")
+            if not isinstance(spec["address"], str) or "://" not in spec["address"]:
+                raise ValueError(f"executor.address {spec['address']!r} must be a scheduler address such as "
+                                 "tcp://10.0.0.5:8786")
+            out["dask_scheduler"] = spec["address"]
+        if "workers" in spec:
+            out["workers"] = spec["workers"]
+        return out
 
     @model_validator(mode="after")
     def _levels(self) -> CheckConfig:

@@ -2,8 +2,13 @@
 
 A *chunk* of models is the unit of work. :func:`run_chunks` splits the models into chunks of
 ``check.chunk_size``, gives each chunk only the observations of its own models' series, runs the chunk
-function (:func:`drift.check.analyse` by default) with the configured executor and puts the results back
-together in the original model order.
+function it is given (the check passes :func:`drift.check.analyse`; this module imports nothing of the
+check) with the configured executor and puts the results back together in the original model order.
+
+Observations come either as one frame (sliced per chunk) or as a loader ``load(series) -> frame`` that the
+coordinator calls once per chunk, just before the chunk is handed out: then at most a few chunks'
+observations are in memory at a time (``2 x workers`` in flight for the pool executors), whatever the
+number of models. Workers only compute; the coordinator alone reads and writes the store.
 
 Contract
 --------
@@ -27,10 +32,11 @@ Executors
     of CPUs, at most one per chunk), started with the ``spawn`` method (safe next to threads, the same on
     every platform). The configuration is pickled once per worker (pool initializer), not once per chunk.
 ``dask``
-    A :class:`distributed.Client` connected to ``check.dask_scheduler``, or, when that is unset, to a
+    A :class:`distributed.Client` connected to ``check.dask_scheduler`` (``check.executor: {kind: dask,
+    address: tcp://host:8786}`` sets it), or, when that is unset, to a
     :class:`distributed.LocalCluster` (``check.workers`` or 2 worker processes, one thread each, no
-    dashboard) started and closed for the run. The configuration is broadcast once to every worker and
-    each chunk's observations are scattered before the chunk tasks are mapped. The workers of an existing
+    dashboard) started and closed for the run. The configuration is broadcast once to every worker;
+    each chunk goes out with its observations as its turn comes. The workers of an existing
     cluster need the same drift version installed; their thread caps are the cluster's own (Dask's nanny
     sets ``OMP_NUM_THREADS=1`` and friends by default, ``distributed.nanny.pre-spawn-environ``).
 
@@ -127,12 +133,6 @@ def chunk_observations(obs: pd.DataFrame, chunks: Sequence[Sequence[ModelConfig]
 
 
 # ------------------------------------------------------------------------------------------------ workers
-def _default_func() -> ChunkFunc:
-    from drift.check import analyse
-
-    return analyse
-
-
 def _limit_threads() -> None:
     """Cap native thread pools in this process (threadpoolctl when installed; env is set by the parent)."""
     try:
@@ -142,11 +142,12 @@ def _limit_threads() -> None:
     threadpool_limits(1)
 
 
-def run_chunk(func: ChunkFunc | None, cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame,
+def run_chunk(func: ChunkFunc, cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame,
               as_of: datetime) -> tuple[Payloads, Errors]:
     """Run one chunk (module level and picklable arguments, so any executor can ship it)."""
-    f = func or _default_func()
-    return f(cfg, models, obs, as_of)
+    if func is None:
+        raise TypeError("run_chunk needs the chunk function (e.g. drift.check.analyse)")
+    return func(cfg, models, obs, as_of)
 
 
 _WORKER_CFG: Config | None = None
@@ -158,14 +159,14 @@ def _pool_init(cfg: Config) -> None:
     _limit_threads()
 
 
-def _pool_chunk(func: ChunkFunc | None, models: Sequence[ModelConfig], obs: pd.DataFrame,
+def _pool_chunk(func: ChunkFunc, models: Sequence[ModelConfig], obs: pd.DataFrame,
                 as_of: datetime) -> tuple[Payloads, Errors]:
     if _WORKER_CFG is None:  # the pool initializer always runs first; this guards misuse
         raise RuntimeError("process-pool worker used without its initializer")
     return run_chunk(func, _WORKER_CFG, models, obs, as_of)
 
 
-def _dask_chunk(func: ChunkFunc | None, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime,
+def _dask_chunk(func: ChunkFunc, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime,
                 cfg: Config) -> tuple[Payloads, Errors]:
     _limit_threads()
     return run_chunk(func, cfg, models, obs, as_of)
@@ -185,9 +186,15 @@ def _single_threaded_env() -> Iterator[None]:
 
 
 # ------------------------------------------------------------------------------------------------ running
-def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime, *,
-               func: ChunkFunc | None = None) -> tuple[Payloads, Errors]:
-    """Run ``func`` (default :func:`drift.check.analyse`) over the models, chunk by chunk.
+#: reads the observations of the given series (all their vintages known at the check's moment)
+Loader: TypeAlias = Callable[[list[str]], pd.DataFrame]
+#: told the number of models of each chunk as it completes (progress display)
+OnDone: TypeAlias = Callable[[int], None]
+
+
+def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame | Loader, as_of: datetime, *,
+               func: ChunkFunc, on_done: OnDone | None = None) -> tuple[Payloads, Errors]:
+    """Run ``func`` over the models, chunk by chunk.
 
     Parameters
     ----------
@@ -195,24 +202,31 @@ def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as
         ``workers`` and ``dask_scheduler``.
     models : the models to check, in the order the output should have.
     obs : observations (columns series, period, issued_at, value, available_at, ...) of at least the
-        models' series; each chunk receives only the rows of its own models' series.
+        models' series, each chunk receiving only the rows of its own models' series; or a loader called
+        with a chunk's series (in the coordinator, one call per chunk, as the chunk is handed out).
     as_of : the tz-aware moment of the check.
-    func : the chunk function, ``(cfg, models, obs, as_of) -> (payloads, errors)``; it must be importable
-        at module level for the process and dask executors.
+    func : the chunk function, ``(cfg, models, obs, as_of) -> (payloads, errors)``, e.g.
+        :func:`drift.check.analyse`; it must be importable at module level for the process and dask
+        executors.
+    on_done : called with the number of models of each chunk as it completes (in chunk order).
 
     Returns
     -------
     payloads : the payloads ``func`` produced, chunks concatenated in model order.
     errors : model name -> reason, in model order: ``func``'s own per-model errors, and
-        ``"<ExceptionType>: <message>"`` for every model of a chunk that raised.
+        ``"<ExceptionType>: <message>"`` for every model of a chunk that raised (its loader included).
 
     Raises
     ------
     ValueError
         when ``cfg.check.executor`` is not one of :data:`EXECUTORS`.
+    TypeError
+        when ``func`` is not callable.
     ImportError
         for the dask executor when ``dask.distributed`` is not installed (``pip install drift[dask]``).
     """
+    if not callable(func):
+        raise TypeError(f"func must be the chunk function (e.g. drift.check.analyse), got {func!r}")
     chk = cfg.check
     executor = chk.executor
     if executor not in EXECUTORS:
@@ -223,52 +237,88 @@ def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as
     chunks = chunk_models(models, chk.chunk_size)
     if not chunks:
         return [], {}
-    parts = chunk_observations(obs, chunks)
+    if isinstance(obs, pd.DataFrame):
+        parts = chunk_observations(obs, chunks)
+        load: Callable[[int], pd.DataFrame] = parts.__getitem__
+    elif callable(obs):
+        loader = obs
+
+        def load(i: int) -> pd.DataFrame:
+            return loader(list(dict.fromkeys(s for m in chunks[i] for s in m.read_series)))
+    else:
+        raise TypeError(f"obs must be a DataFrame or a loader function, got {type(obs).__name__}")
+    done = on_done or (lambda n: None)
     log.info("checking %d models in %d chunk(s) with the %s executor", len(models), len(chunks), executor)
     if executor == "local":
-        results = _run_local(func, cfg, chunks, parts, as_of)
+        results = _run_local(func, cfg, chunks, load, as_of, done)
     elif executor == "process":
-        results = _run_process(func, cfg, chunks, parts, as_of, workers)
+        results = _run_process(func, cfg, chunks, load, as_of, workers, done)
     else:
-        results = _run_dask(func, cfg, chunks, parts, as_of, workers, chk.dask_scheduler)
+        results = _run_dask(func, cfg, chunks, load, as_of, workers, chk.dask_scheduler, done)
     return _assemble(models, chunks, results)
 
 
 _Outcome: TypeAlias = "tuple[Payloads, Errors] | BaseException"
 
 
-def _run_local(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
-               parts: list[pd.DataFrame], as_of: datetime) -> list[_Outcome]:
+def _run_local(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
+               load: Callable[[int], pd.DataFrame], as_of: datetime, done: OnDone) -> list[_Outcome]:
     out: list[_Outcome] = []
-    for i, (chunk, part) in enumerate(zip(chunks, parts)):
+    for i, chunk in enumerate(chunks):
         try:
-            out.append(run_chunk(func, cfg, chunk, part, as_of))
+            out.append(run_chunk(func, cfg, chunk, load(i), as_of))
         except Exception as exc:  # noqa: BLE001 - a failing chunk is isolated and reported per model
             _log_failure(i, len(chunks), chunk, exc)
             out.append(exc)
+        done(len(chunk))
     return out
 
 
-def _run_process(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
-                 parts: list[pd.DataFrame], as_of: datetime, workers: int | None) -> list[_Outcome]:
+def _bounded(submit: Callable[[int], Any], result: Callable[[Any], tuple[Payloads, Errors]], n: int,
+             in_flight: int, chunks: list[list[ModelConfig]], done: OnDone) -> list[_Outcome]:
+    """Submit chunks in order keeping at most ``in_flight`` outstanding; collect results in chunk order. A
+    chunk whose submission (its observations' loading) or result raises is that chunk's failure."""
+    out: list[_Outcome] = []
+    pending: dict[int, Any] = {}
+    failed: dict[int, BaseException] = {}
+    nxt = 0
+    for i in range(n):
+        while nxt < n and nxt - i < in_flight:
+            try:
+                pending[nxt] = submit(nxt)
+            except Exception as exc:  # noqa: BLE001 - e.g. the loader failed: reported per model
+                failed[nxt] = exc
+            nxt += 1
+        if i in failed:
+            exc = failed.pop(i)
+        else:
+            try:
+                out.append(result(pending.pop(i)))
+                done(len(chunks[i]))
+                continue
+            except Exception as e:  # noqa: BLE001 - includes BrokenProcessPool / a lost worker
+                exc = e
+        _log_failure(i, n, chunks[i], exc)
+        out.append(exc)
+        done(len(chunks[i]))
+    return out
+
+
+def _run_process(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
+                 load: Callable[[int], pd.DataFrame], as_of: datetime, workers: int | None,
+                 done: OnDone) -> list[_Outcome]:
     n = max(1, min(workers or os.cpu_count() or 1, len(chunks)))
     ctx = multiprocessing.get_context("spawn")
-    out: list[_Outcome] = []
-    with _single_threaded_env():
-        # workers are spawned on demand by submit(), i.e. inside this block, so they inherit THREAD_ENV
-        pool = cf.ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_pool_init, initargs=(cfg,))
-        try:
-            futures = [pool.submit(_pool_chunk, func, chunk, part, as_of) for chunk, part in zip(chunks, parts)]
-        except BaseException:
-            pool.shutdown(wait=False, cancel_futures=True)
-            raise
+    pool = cf.ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_pool_init, initargs=(cfg,))
+
+    def submit(i: int) -> Any:
+        obs = load(i)
+        # workers are spawned on demand by submit(), so they inherit THREAD_ENV set around it
+        with _single_threaded_env():
+            return pool.submit(_pool_chunk, func, chunks[i], obs, as_of)
+
     try:
-        for i, fut in enumerate(futures):
-            try:
-                out.append(fut.result())
-            except Exception as exc:  # noqa: BLE001 - includes BrokenProcessPool: reported per model
-                _log_failure(i, len(chunks), chunks[i], exc)
-                out.append(exc)
+        out = _bounded(submit, lambda f: f.result(), len(chunks), 2 * n, chunks, done)
     except BaseException:  # interrupted: drop the chunks not started yet, then let it propagate
         pool.shutdown(wait=True, cancel_futures=True)
         raise
@@ -276,9 +326,9 @@ def _run_process(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelCon
     return out
 
 
-def _run_dask(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig]],
-              parts: list[pd.DataFrame], as_of: datetime, workers: int | None,
-              address: str | None) -> list[_Outcome]:
+def _run_dask(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
+              load: Callable[[int], pd.DataFrame], as_of: datetime, workers: int | None,
+              address: str | None, done: OnDone) -> list[_Outcome]:
     try:
         from distributed import Client, LocalCluster
     except ImportError as exc:
@@ -289,23 +339,20 @@ def _run_dask(func: ChunkFunc | None, cfg: Config, chunks: list[list[ModelConfig
                                dashboard_address=None,
                                env={k: v for k, v in THREAD_ENV.items() if k not in os.environ})
         log.info("started a local Dask cluster with %d worker(s)", workers or DEFAULT_DASK_WORKERS)
-    out: list[_Outcome] = []
     try:
         with Client(cluster if cluster is not None else address) as client:
+            if cluster is None:
+                log.info("Dask scheduler %s: %d worker(s)", address, len(client.scheduler_info()["workers"]))
+            slots = max(1, sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values()))
             cfg_f = client.scatter(cfg, broadcast=True)
-            part_f = client.scatter(parts)
-            futures = client.map(_dask_chunk, [func] * len(chunks), chunks, part_f, [as_of] * len(chunks),
-                                 cfg=cfg_f, pure=False)
-            for i, fut in enumerate(futures):
-                try:
-                    out.append(fut.result())
-                except Exception as exc:  # noqa: BLE001 - a failing chunk is isolated and reported per model
-                    _log_failure(i, len(chunks), chunks[i], exc)
-                    out.append(exc)
+
+            def submit(i: int) -> Any:
+                return client.submit(_dask_chunk, func, chunks[i], load(i), as_of, cfg=cfg_f, pure=False)
+
+            return _bounded(submit, lambda f: f.result(), len(chunks), 2 * slots, chunks, done)
     finally:
         if cluster is not None:
             cluster.close()
-    return out
 
 
 def _log_failure(i: int, n: int, chunk: Sequence[ModelConfig], exc: BaseException) -> None:

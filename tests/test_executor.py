@@ -170,7 +170,7 @@ def test_chunk_observations_only_own_series(scenario: tuple[Config, pd.DataFrame
 def test_local_matches_single_call(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     cfg, obs, oracle = scenario
     for size in (1, 2, 500):
-        payloads, errors = run_chunks(with_executor(cfg, "local", size), cfg.models, obs, as_of())
+        payloads, errors = run_chunks(with_executor(cfg, "local", size), cfg.models, obs, as_of(), func=analyse)
         assert errors == {}
         assert dump(payloads) == oracle, f"chunk_size {size}"
     verdicts = [p["verdict"] for p in json.loads(oracle)]
@@ -179,7 +179,7 @@ def test_local_matches_single_call(scenario: tuple[Config, pd.DataFrame, str]) -
 
 def test_process_matches_local(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     cfg, obs, oracle = scenario
-    payloads, errors = run_chunks(with_executor(cfg, "process", 2, 2), cfg.models, obs, as_of())
+    payloads, errors = run_chunks(with_executor(cfg, "process", 2, 2), cfg.models, obs, as_of(), func=analyse)
     assert errors == {}
     assert [p["name"] for p in payloads] == [m.name for m in cfg.models]
     assert dump(payloads) == oracle
@@ -189,7 +189,7 @@ def test_process_matches_local(scenario: tuple[Config, pd.DataFrame, str]) -> No
 def test_dask_local_cluster_matches_local(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     pytest.importorskip("distributed")
     cfg, obs, oracle = scenario
-    payloads, errors = run_chunks(with_executor(cfg, "dask", 2, 2), cfg.models, obs, as_of())
+    payloads, errors = run_chunks(with_executor(cfg, "dask", 2, 2), cfg.models, obs, as_of(), func=analyse)
     assert errors == {}
     assert dump(payloads) == oracle
 
@@ -198,21 +198,21 @@ def test_order_follows_the_models_argument(scenario: tuple[Config, pd.DataFrame,
     cfg, obs, oracle = scenario
     by_name = {p["name"]: p for p in json.loads(oracle)}
     order = [cfg.models[i] for i in (5, 0, 3, 1, 4, 2)]
-    payloads, _ = run_chunks(with_executor(cfg, "local", 2), order, obs, as_of())
+    payloads, _ = run_chunks(with_executor(cfg, "local", 2), order, obs, as_of(), func=analyse)
     assert [p["name"] for p in payloads] == [m.name for m in order]
     assert dump(payloads) == dump([by_name[m.name] for m in order])
 
 
 def test_empty_model_list(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     cfg, obs, _ = scenario
-    assert run_chunks(with_executor(cfg, "process"), [], obs, as_of()) == ([], {})
+    assert run_chunks(with_executor(cfg, "process"), [], obs, as_of(), func=analyse) == ([], {})
 
 
 def test_unknown_executor_is_a_value_error(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     cfg, obs, _ = scenario
     bad = cfg.model_copy(update={"check": cfg.check.model_copy(update={"executor": "threads"})})
     with pytest.raises(ValueError, match="check.executor"):
-        run_chunks(bad, cfg.models, obs, as_of())
+        run_chunks(bad, cfg.models, obs, as_of(), func=analyse)
 
 
 # ------------------------------------------------------------------------------------------------ failures
@@ -247,10 +247,7 @@ def test_failing_chunk_only_affects_its_models(boom_case: tuple[Config, pd.DataF
     assert len(tb) == 1 and tb[0].levelno == logging.DEBUG and tb[0].exc_info is not None
 
 
-def test_failing_chunk_via_monkeypatched_analyse(scenario: tuple[Config, pd.DataFrame, str],
-                                                 monkeypatch: pytest.MonkeyPatch) -> None:
-    import drift.check
-
+def test_failing_chunk_function(scenario: tuple[Config, pd.DataFrame, str]) -> None:
     cfg, obs, oracle = scenario
 
     def broken(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime) -> Any:
@@ -258,8 +255,7 @@ def test_failing_chunk_via_monkeypatched_analyse(scenario: tuple[Config, pd.Data
             raise np.linalg.LinAlgError("SVD did not converge")
         return analyse(cfg, models, obs, as_of)
 
-    monkeypatch.setattr(drift.check, "analyse", broken)
-    payloads, errors = run_chunks(with_executor(cfg, "local", 2), cfg.models, obs, as_of())
+    payloads, errors = run_chunks(with_executor(cfg, "local", 2), cfg.models, obs, as_of(), func=broken)
     assert errors == {"m4": "LinAlgError: SVD did not converge", "m5": "LinAlgError: SVD did not converge"}
     assert dump(payloads) == dump(json.loads(oracle)[:4])
 
@@ -270,7 +266,118 @@ def test_per_model_errors_of_analyse_are_kept(tmp_path: Path) -> None:
     obs = make_obs(3)
     obs = obs[obs["series"] != "y1"]
     single, single_err = analyse(cfg, cfg.models, obs, as_of())
-    payloads, errors = run_chunks(with_executor(cfg, "local", 2), cfg.models, obs, as_of())
+    payloads, errors = run_chunks(with_executor(cfg, "local", 2), cfg.models, obs, as_of(), func=analyse)
     assert list(errors) == ["m1"]
     assert errors == single_err
     assert dump(payloads) == dump(single)
+
+
+# ------------------------------------------------------------------------------------------------ loading
+# oracle: the check called once on all models (above); common practice, no source
+def test_loader_reads_each_chunk_once_and_matches_a_frame(scenario: tuple[Config, pd.DataFrame, str]) -> None:
+    cfg, obs, oracle = scenario
+    calls: list[list[str]] = []
+
+    def load(series: list[str]) -> pd.DataFrame:
+        calls.append(series)
+        return obs[obs["series"].isin(series)]
+
+    done: list[int] = []
+    payloads, errors = run_chunks(with_executor(cfg, "local", 4), cfg.models, load, as_of(), func=analyse,
+                                  on_done=done.append)
+    assert errors == {} and dump(payloads) == oracle
+    assert [sorted(c) for c in calls] == [sorted({s for m in ch for s in m.read_series})
+                                          for ch in chunk_models(cfg.models, 4)]
+    assert done == [4, 2]
+
+
+def test_a_failing_loader_fails_only_its_chunk(scenario: tuple[Config, pd.DataFrame, str]) -> None:
+    cfg, obs, oracle = scenario
+
+    def load(series: list[str]) -> pd.DataFrame:
+        if "y2" in series:
+            raise OSError("store went away")
+        return obs[obs["series"].isin(series)]
+
+    for ex in ("local", "process"):
+        payloads, errors = run_chunks(with_executor(cfg, ex, 2), cfg.models, load, as_of(), func=analyse)
+        assert errors == {"m2": "OSError: store went away", "m3": "OSError: store went away"}, ex
+        assert [p["name"] for p in payloads] == ["m0", "m1", "m4", "m5"]
+
+
+def test_the_executor_needs_its_function_and_imports_no_check() -> None:
+    import subprocess
+    import sys
+
+    code = "import sys, drift.executor; print('drift.check' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True).stdout
+    assert out.strip() == "False"
+    cfg = Config.model_validate({"models": []})
+    with pytest.raises(TypeError, match="chunk function"):
+        run_chunks(cfg, [], pd.DataFrame({"series": []}), as_of(), func=None)  # type: ignore[arg-type]
+
+
+def test_executor_mapping_in_config(tmp_path: Path) -> None:
+    cfg = write_config(tmp_path, 1, check="  executor: {kind: dask, address: 'tcp://10.0.0.5:8786', workers: 4}\n")
+    assert (cfg.check.executor, cfg.check.dask_scheduler, cfg.check.workers) == ("dask", "tcp://10.0.0.5:8786", 4)
+    cfg = write_config(tmp_path, 1, check="  executor: {kind: process}\n")
+    assert (cfg.check.executor, cfg.check.dask_scheduler) == ("process", None)
+    from drift.exceptions import ConfigError
+
+    for bad, words in (("{kind: local, address: 'tcp://x:1'}", "for kind dask"),
+                       ("{address: 'tcp://x:1'}", "needs 'kind'"),
+                       ("{kind: dask, port: 1}", "unknown key"),
+                       ("{kind: dask, address: somewhere}", "scheduler address")):
+        with pytest.raises(ConfigError, match=words):
+            write_config(tmp_path, 1, check=f"  executor: {bad}\n")
+
+
+# common practice, no source: an existing Dask cluster (a scheduler and two workers started as the
+# `dask` command-line programs on 127.0.0.1) gives the verdicts of the local executor
+@pytest.mark.slow
+def test_dask_existing_cluster_matches_local(scenario: tuple[Config, pd.DataFrame, str], tmp_path: Path) -> None:
+    pytest.importorskip("distributed")
+    import os
+    import shutil
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    if shutil.which("dask") is None:
+        pytest.skip("the dask command is not installed")
+    cfg, obs, oracle = scenario
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port = sock.getsockname()[1]
+    address = f"tcp://127.0.0.1:{port}"
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(p for p in (str(Path(__file__).parents[1]),
+                                                                   os.environ.get("PYTHONPATH")) if p)}
+    procs = [subprocess.Popen(["dask", "scheduler", "--host", "127.0.0.1", "--port", str(port),
+                               "--no-dashboard"], env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)]
+    try:
+        time.sleep(2)
+        for i in range(2):
+            procs.append(subprocess.Popen(["dask", "worker", address, "--nthreads", "1", "--no-dashboard",
+                                           "--name", f"w{i}", "--local-directory", str(tmp_path / f"w{i}")],
+                                          env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
+        from distributed import Client
+
+        with Client(address, timeout=60) as client:
+            client.wait_for_workers(2, timeout=60)
+        chk = cfg.check.model_validate({**cfg.check.model_dump(), "chunk_size": 2,
+                                        "executor": {"kind": "dask", "address": address}})
+        payloads, errors = run_chunks(cfg.model_copy(update={"check": chk}), cfg.models, obs, as_of(),
+                                      func=analyse)
+        assert errors == {}
+        assert dump(payloads) == oracle
+    finally:
+        for p in reversed(procs):
+            p.terminate()
+        for p in procs:
+            try:
+                p.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
+    assert sys.executable  # the workers ran this checkout (PYTHONPATH above)

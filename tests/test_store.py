@@ -368,3 +368,30 @@ def test_latest_vintages_of_a_period_span(store) -> None:
     assert pd.to_datetime(got["period"]).dt.date.tolist() == weeks[3:]
     assert got["value"].tolist() == [7.0, 4.0] and got["vintage"].tolist() == [2, 1]
     assert len(everything) == 5
+
+
+# common practice, no source: a check chunk's as-of read is one statement served by the unique index
+# (series first) on both backends; the plan is printed for the record (pytest -s)
+def test_as_of_read_is_one_indexed_query(store) -> None:
+    from drift.store import observations_as_of
+
+    t = datetime(2025, 1, 1, tzinfo=timezone.utc)
+    rows = [(f"s{i}", date(2024, 12, 2) + timedelta(weeks=w), float(w), t) for i in range(300) for w in range(20)]
+    _obs(store, rows)
+    series = [f"s{i}" for i in range(0, 300, 2)]  # a chunk of 50 models x 3 series
+    stmt = observations_as_of(series, t + timedelta(days=1))
+    with store.connect() as conn:
+        if store.dialect == "postgresql":
+            conn.exec_driver_sql("ANALYZE observations")
+            conn.exec_driver_sql("SET enable_seqscan = off")  # a tiny table: ask whether an index can serve it
+        compiled = stmt.compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
+        prefix = "EXPLAIN QUERY PLAN " if store.dialect == "sqlite" else "EXPLAIN "
+        plan = "\n".join(str(r[-1]) for r in conn.exec_driver_sql(prefix + compiled.string,
+                                                                  compiled.construct_params()
+                                                                  if compiled.positional is False else
+                                                                  tuple(compiled.params[k] for k in
+                                                                        compiled.positiontup)))
+        print(f"\n{store.dialect} plan of the as-of read:\n{plan}")
+    assert "ux_obs_vintage" in plan
+    got = store.load_observations(series, t + timedelta(days=1))
+    assert len(got) == 150 * 20 and set(got["series"]) == set(series)

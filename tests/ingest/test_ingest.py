@@ -474,7 +474,7 @@ def test_unchanged_file_recognised_by_size_and_mtime_without_reading(store, tmp_
     # invented data; common practice, no source (a file's size and modification time as its fingerprint)
     import os
 
-    import drift.ingest.base as base
+    from drift.ingest import base
 
     path = write(tmp_path / "data.csv", "week,sales\n2024-01-01,1\n2024-01-08,2\n")
     cfg = make_config(tmp_path, [csv_source()], [weekly_model("sales", [])])
