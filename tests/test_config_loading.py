@@ -125,3 +125,47 @@ def test_many_models_with_unique_names(tmp_path: Path) -> None:
     assert len(load_config(_write(tmp_path, text)).models) == 300
     with pytest.raises(ConfigError, match=r"model names must be unique; repeated: \['k0007'\]"):
         load_config(_write(tmp_path, text + block.replace("name: k000", "name: k0007")))
+
+
+RICH = """\
+base: &base {frequency: W, horizon: 2, unit: "units", ratio: 0.5, on: yes, off: false, none: ~, empty: null}
+dates: [2021-01-04, 2021-01-04 10:30:00, "2021-01-04"]
+numbers: [1, -2, 0x1f, 1_000, 3.5, .inf, -.inf, 1e3, "7", '8']
+text:
+  - plain
+  - "double \\u00e9 \\t"
+  - 'single'
+  - |
+    block
+    text
+  - >
+    folded
+    text
+merged:
+  <<: *base
+  horizon: 3
+list_alias: &l [a, b]
+again: *l
+1: integer key
+null: null key
+nested: {a: [{b: [{c: [1, 2]}]}]}
+"""
+
+
+@pytest.mark.parametrize("loader", ["C", "pure Python"])
+def test_construction_matches_pyyaml_safe_load(loader: str) -> None:
+    """Oracle: the data built from the checked nodes equal ``yaml.safe_load`` (PyYAML 6.0), merge keys, tags,
+    aliases (one shared object) and non-string keys included."""
+    if loader == "C" and not yaml.__with_libyaml__:
+        pytest.skip("PyYAML without libyaml")
+    cls = yaml.CSafeLoader if loader == "C" else yaml.SafeLoader
+    ld = cls(RICH)
+    try:
+        root = ld.get_single_node()
+        assert drift.config._inspect(root, "x.yaml") is True  # the aliases share nodes
+        data = drift.config._construct(ld, root)
+    finally:
+        ld.dispose()
+    assert data == yaml.safe_load(RICH)
+    assert data["list_alias"] is data["again"]
+    assert data["merged"]["frequency"] == "W" and data["merged"]["horizon"] == 3
