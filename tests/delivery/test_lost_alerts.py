@@ -47,6 +47,12 @@ pytestmark = pytest.mark.network
 OWNER, TEAM = "owner@example.test", "team@example.test"
 
 
+@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def store(request: pytest.FixtureRequest) -> Any:
+    """The outbox states on both store backends (tests/conftest.py)."""
+    return request.getfixturevalue("sqlite_store" if request.param == "sqlite" else "pg_store")
+
+
 def email_cfg(tmp_path: Path, port: int, **extra: Any) -> Any:
     alerts = {k: extra.pop(k) for k in ("max_attempts",) if k in extra}
     ch = {"kind": "email", "name": "mail", "host": "127.0.0.1", "port": port, "sender": "drift@example.test",
