@@ -235,7 +235,8 @@ def _weekly(rng: np.random.Generator, M: int, T: int) -> np.ndarray:
 
 
 def _check_pipeline(phi: float, m: int, M: int, seed: int, shift: float = 0.0,
-                    corrected: bool = True, oracle: bool = False) -> dict[str, float]:
+                    corrected: bool = True, oracle: bool = False,
+                    dets: tuple[str, ...] = tuple(DETECTORS)) -> dict[str, float]:
     """The check's calls (OLS on the reference, fit_error_model, prewhiten, monitor horizon 2) with
     X and error_model passed; alarm rates at level 0.05 per detector."""
     rng = np.random.default_rng(seed)
@@ -261,7 +262,7 @@ def _check_pipeline(phi: float, m: int, M: int, seed: int, shift: float = 0.0,
         kw = {"scale_dof": None}
     yt, Xt = prewhiten(y, X, em)
     return {det: float(np.mean(monitor(yt, Xt, m, horizon=2.0, detector=det, level=0.05, **kw).alarm_index >= 0))
-            for det in DETECTORS}
+            for det in dets}
 
 
 @pytest.mark.slow
@@ -299,9 +300,10 @@ def test_power_after_estimated_ar1_prewhitening() -> None:
     # Seeded simulation, invented weekly data (phi 0.5, m = 156): a level shift of 2 (errors' innovation
     # sd 1) at the middle of the monitored span. Measured: 0.77 csw / 0.84 mosum / 0.84 page against
     # 0.88 / 0.97 / 0.98 with the true filter: the wider boundary is the price of estimating phi.
-    new = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0)
-    best = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0, oracle=True)
-    for det in DETECTORS:
+    dets = ("csw", "mosum", "page", "shift")  # the variance monitor does not look for level shifts
+    new = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0, dets=dets)
+    best = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0, oracle=True, dets=dets)
+    for det in dets:
         assert new[det] > 0.7, (det, new)
         assert new[det] > best[det] - 0.2, (det, new, best)
 
@@ -318,7 +320,7 @@ def test_power_and_late_change_detection_speed() -> None:
     tb = 250
     y[:, tb:] += X[:, tb:, 1] * 1.0 + 1.0  # slope and level shift
     delays = {}
-    for det in DETECTORS:
+    for det in ("csw", "mosum", "page", "shift"):  # the variance monitor does not look for these
         r = monitor(y, X, m, detector=det, horizon=2.0)
         hit = r.alarm_index >= tb
         # csw is known to be slow on late changes (CSW 1996; REFERENCES.md): a lower bar for it.
