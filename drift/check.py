@@ -607,6 +607,7 @@ def _screen(group: list[_Ctx]) -> None:
                                  "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
                                  "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
                                  **({"beyond_horizon": True} if wi >= h_end else {})})
+        _monitor_chart(c, i, o, specs, mons, levels)
         if trigg is not None:
             sig = np.atleast_2d(trigg.signal)[i, sl]
             last_i = np.flatnonzero(np.isfinite(sig))
@@ -627,12 +628,11 @@ def _screen(group: list[_Ctx]) -> None:
                 date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
                 c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
                                 "threshold": crit, "level": 0.05, "date": date_})
+            # the retrospective CUSUM (kept for the chart when no monitor ran): its own crossing date only
             c.charts["cusum"] = {
                 "path": _list(np.atleast_2d(cus.path)[i, sl]),
                 "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
-                "alarm_date": min([a["date"] for a in c.alarms
-                                   if not a.get("warning") and a["date"] and a["test"].startswith("monitor-")],
-                                  default=None)}
+                "alarm_date": next((t["date"] for t in c.tests if t["test"] == "cusum"), None)}
         # rolling coefficients
         if roll is not None:
             coef_roll = np.atleast_3d(roll.coef)[i, sl]
@@ -665,6 +665,38 @@ def _screen(group: list[_Ctx]) -> None:
                 c.actions.append(Action("watch", severity="watch", reason=(
                     f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
                     f"{chk.level:.0%} level. Keep the model, look again next week.")))
+
+
+def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
+                   levels: list[tuple[float, float]]) -> None:
+    """The chart of the monitor that raised the alarm (the first to cross), else of the one nearest its
+    boundary: its path and its own boundary as the monitor computed them (read from its result, never
+    recomputed), and the period where that path crossed that boundary."""
+    drivers_i = list(c.design.driver_columns)
+    best: tuple[tuple[int, float], str, int | None, Any, float] | None = None
+    for (name, _det, j), r, (lv, _wl) in zip(specs, mons, levels):
+        if r is None or (j is not None and j >= len(drivers_i)) or getattr(r, "path", None) is None:
+            continue
+        ai = int(np.atleast_1d(r.alarm_index)[i])
+        stat = float(np.atleast_1d(r.statistic)[i])
+        key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
+        if best is None or key < best[0]:
+            best = (key, name, j, r, lv)
+    if best is None:
+        return
+    (_key, name, j, r, lv) = best
+    path = np.atleast_2d(np.asarray(r.path, float))[i]
+    bound = np.atleast_2d(np.asarray(r.boundary, float))[i]
+    n = c.design.n
+    if path.size != o + n or bound.size != o + n:
+        c.charts["monitor_note"] = f"the {name} path does not line up with the periods; not drawn"
+        return
+    ai = int(np.atleast_1d(r.alarm_index)[i])
+    c.charts["monitor"] = {
+        "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
+        "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
+        "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
+        "alarm_date": c.design.periods[ai - o].date().isoformat() if ai >= o else None}
 
 
 def _horizon_words(c: _Ctx) -> str:
@@ -718,10 +750,16 @@ def _refit_action(c: _Ctx, alarm_idx: int, lapsed: bool = False) -> None:
     except InsufficientDataError:
         pass
     c.charts["_effects"] = {e["driver"]: e for e in effects}
+    for e in effects:  # the coefficient chart draws the same before/after estimates beside the rolling one
+        if e["driver"] in c.charts.get("coefficients", {}) and e["before"] is not None and e["after"] is not None:
+            c.charts["coefficients"][e["driver"]]["split"] = {
+                "break": since_s, "before": e["before"], "after": e["after"],
+                "se_before": e["se_before"], "se_after": e["se_after"]}
     alarm = min((a for a in c.alarms if not a.get("warning") and a["test"].startswith("monitor-")),
                 key=lambda a: a["date"] or "9999")
     monitor = {k: alarm[k] for k in ("test", "driver", "date", "statistic", "level", "beyond_horizon")
                if alarm.get(k) is not None}
+    monitor["horizon"] = _horizon_words(c)
     ranked = [e for e in effects if e["pvalue_change"] is not None and e["before"] is not None
               and e["after"] is not None]
     moved = min(ranked, key=lambda e: e["pvalue_change"]) if ranked else None
@@ -1056,7 +1094,17 @@ def _forward_feed(c: _Ctx, dr: Any, ser: np.ndarray, per_ns: np.ndarray, feeds: 
     last = pd.Timestamp(int(have.max())) if have.size else None
     late = not bool(np.any(have == int(as_ns(pd.DatetimeIndex([need]))[0])))
     kind = "forecast" if dr.form == "forecast" else "plan"
-    feeds[dr.series] = {"periods": [], "available_at": [], "next_due": cur.tz_localize("UTC").isoformat(),
+    # the timeline of the chart: the periods of the last half year and when their first plan (forecast)
+    # was stored, as for a lagged feed
+    at_ns = as_ns(c.obs["available_at"])
+    start_ns = int(as_ns(shift_periods(pd.DatetimeIndex([cur]), m.frequency, 26))[0])
+    recent = rows[per_ns[rows] >= start_ns]
+    recent = recent[np.lexsort((at_ns[recent], per_ns[recent]))]
+    first = recent[np.r_[True, per_ns[recent][1:] != per_ns[recent][:-1]]] if recent.size else recent
+    feeds[dr.series] = {"periods": np.datetime_as_string(per_ns[first].astype("datetime64[ns]"), unit="D").tolist(),
+                        "available_at": [t + "+00:00" for t in np.datetime_as_string(
+                            at_ns[first].astype("datetime64[ns]"), unit="s").tolist()],
+                        "next_due": cur.tz_localize("UTC").isoformat(),
                         "late": late, "last_period": last.date().isoformat() if last is not None else None,
                         "form": dr.form}
     if late:
@@ -1204,7 +1252,11 @@ def _lag_drift(c: _Ctx) -> None:
     ref = slice(0, d.n_ref)
     det = d.X[:, d.deterministic]
     ok = np.isfinite(d.y[ref])
+    skipped: dict[str, str] = {}
+    c.charts["lag_profile_skipped"] = skipped  # why a driver has no profile (said beside the chart)
+    lagged = [dr.series for dr in m.drivers if dr.form == "lagged" and dr.series in d.driver_columns]
     if ok.sum() <= det.shape[1] + max_lag + 5:
+        skipped.update({s: f"too few reference periods for {max_lag} lags" for s in lagged})
         return
     # deterministic part estimated on the reference period only (no look-ahead into the monitoring span)
     def _resid(v: np.ndarray) -> np.ndarray:
@@ -1218,17 +1270,22 @@ def _lag_drift(c: _Ctx) -> None:
     fitted = d.X @ b_ref
     recent_n = min(chk.recent_window, d.n - d.n_ref)
     if recent_n < max(20, max_lag + 10):
+        skipped.update({s: f"{recent_n} periods monitored, {max(20, max_lag + 10)} needed" for s in lagged})
         return
     profiles: dict[str, Any] = {}
     obs = c.obs
     for dr in m.drivers:
         s = dr.series
-        if dr.form != "lagged" or s not in d.driver_columns or s in c.late:
+        if dr.form != "lagged" or s not in d.driver_columns:
+            continue
+        if s in c.late:
+            skipped[s] = "its feed is late"
             continue
         vint = obs[obs["series"] == s]
         # the driver's own values by period (latest vintage), on the target's period grid
         xv = latest_values(vint, d.periods)
         if np.isfinite(xv[ref]).sum() <= det.shape[1] + 5:
+            skipped[s] = "too few reference values"
             continue
         rx = _resid(xv)
         j = d.driver_columns[s]
@@ -1239,9 +1296,11 @@ def _lag_drift(c: _Ctx) -> None:
                 lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
         except (DriftError, np.linalg.LinAlgError) as exc:
             log.info("model %s: no lag profile for %s: %s", m.name, s, exc)
+            skipped[s] = f"cannot be computed ({exc})"
             continue
         if not (np.isfinite(lp_ref.ccf).any() and np.isfinite(lp_rec.ccf).any()):
-            continue  # a constant driver has no cross-correlation
+            skipped[s] = "constant: no cross-correlation"
+            continue
         cur = d.lags.get(s, dr.lag)
         profiles[s] = {"lags": list(range(max_lag + 1)), "reference": _list(lp_ref.ccf),
                        "recent": _list(lp_rec.ccf), "band_reference": _num(lp_ref.band),

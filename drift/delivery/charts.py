@@ -59,6 +59,8 @@ ONE_COLUMN_MAX = 3
 PALETTE_COLOURS = 128
 #: at most this many legend entries side by side
 LEGEND_COLUMNS = 5
+#: characters of legend text (labels plus their keys) that fit one row of an 800-pixel chart
+LEGEND_ROW_CHARS = 110
 #: periods of actuals shown before the first forecast, for context
 FORECAST_CONTEXT = 26
 
@@ -110,8 +112,11 @@ def _date_axis(ax: Axes) -> None:
 def _legend(fig: Figure, handles: Sequence[Any]) -> None:
     """One legend under the plot area (never over the data), in as few rows as fit."""
     handles = list(handles)
-    fig.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), LEGEND_COLUMNS),
-               fontsize=FONT - 0.5, frameon=False)
+    ncols = min(len(handles), LEGEND_COLUMNS)
+    # the row must fit the figure's width (about LEGEND_ROW_CHARS characters of legend text with keys)
+    while ncols > 1 and sum(len(str(h.get_label())) + 6 for h in handles[:ncols]) > LEGEND_ROW_CHARS:
+        ncols -= 1
+    fig.legend(handles=handles, loc="outside lower center", ncols=ncols, fontsize=FONT - 0.5, frameon=False)
 
 
 def _png(fig: Figure) -> bytes:
@@ -215,13 +220,21 @@ def _mark_reference(ax: Axes, periods: np.ndarray, start: np.datetime64 | None) 
     return [Patch(facecolor=SHADE, edgecolor="none", label="reference period")]
 
 
-def _flag(ax: Axes, t: np.ndarray, at: np.datetime64, text: str, *, bold: bool = False) -> None:
-    """Label a vertical marker at the top of the axes, on the side with more room."""
+def _flag(ax: Axes, t: np.ndarray, at: np.datetime64, text: str, *, bold: bool = False, row: int = 0) -> None:
+    """Label a vertical marker at the top of the axes, on the side with more room (``row`` 1: one text
+    line lower, for a second marker near the first)."""
     right_half = bool(t.size) and at > t[0] + (t[-1] - t[0]) * 0.6
     ax.annotate(text, xy=(at, 1.0), xycoords=("data", "axes fraction"),
-                xytext=(-4 if right_half else 4, -4), textcoords="offset points",
+                xytext=(-4 if right_half else 4, -4 - 14 * row), textcoords="offset points",
                 ha="right" if right_half else "left", va="top", **_text_kw(FONT),
                 fontweight="bold" if bold else "normal")
+
+
+def _num_label(x: float) -> str:
+    """A figure on a chart, as the reasons print it."""
+    from drift.verdicts import fmt_num
+
+    return fmt_num(x)
 
 
 def _fmt_day(d: np.datetime64) -> str:
@@ -238,8 +251,10 @@ def cusum_chart(
     monitor_start: Any = None,
     title: str | None = "CUSUM of recursive residuals",
     unit: str = "standardised units",
+    path_label: str = "CUSUM path",
+    alarm_label: str = "alarm",
 ) -> bytes:
-    """The CUSUM path against its boundaries, with the alarm marked and dated.
+    """A monitoring path against its own boundaries, with the crossing marked and dated.
 
     Parameters
     ----------
@@ -247,9 +262,11 @@ def cusum_chart(
     path : CUSUM values aligned to ``periods``; None/NaN where undefined (e.g. the first k periods).
     bounds : level -> boundary aligned to ``periods`` (e.g. ``{"0.05": [...], "0.01": [...]}``).
         Boundaries are drawn at +b and, when the path goes below zero, also at -b.
-    alarm_date : date of the first crossing, or None.
+    alarm_date : date of the first crossing *of this path* over these bounds, or None; the marker sits on
+        the path at that period.
     monitor_start : index into ``periods`` or date of the first monitoring period (shades the reference).
     title, unit : chart title and the y-axis unit.
+    path_label, alarm_label : legend entries of the path and the crossing.
 
     Returns
     -------
@@ -264,14 +281,15 @@ def cusum_chart(
     y = _floats(path, "path", t.size)
     fig, (ax,) = _new_figure()
     handles = _mark_reference(ax, t, _monitor_date(t, monitor_start))
-    (line,) = ax.plot(t, y, color=BLUE, linewidth=1.8, label="CUSUM path")
+    (line,) = ax.plot(t, y, color=BLUE, linewidth=1.8, label=path_label)
     handles.insert(0, line)
     two_sided = bool(np.nanmin(y) < 0) if np.isfinite(y).any() else False
     styles = [(ORANGE, "--"), (VERMILION, ":"), (GREY, "-.")]
     ordered = sorted((bounds or {}).items(), key=lambda kv: -_level_value(kv[0]))
     for (level, b), (colour, ls) in zip(ordered, styles):
         bb = _floats(b, f"bounds[{level!r}]", t.size)
-        (bl,) = ax.plot(t, bb, color=colour, linestyle=ls, linewidth=1.3, label=f"{_level_label(level)} bound")
+        key = f"{_level_label(level)} bound" if math.isfinite(_level_value(level)) else str(level)
+        (bl,) = ax.plot(t, bb, color=colour, linestyle=ls, linewidth=1.3, label=key)
         if two_sided:
             ax.plot(t, -bb, color=colour, linestyle=ls, linewidth=1.3)
         handles.append(bl)
@@ -281,10 +299,10 @@ def cusum_chart(
         idx = int(np.argmin(np.abs((t - a).astype(np.int64)))) if t.size else 0
         if t.size and np.isfinite(y[idx]):
             ax.plot([t[idx]], [y[idx]], marker="o", markersize=7, color=VERMILION, zorder=4)
-        _flag(ax, t, a, f"alarm {_fmt_day(a)}", bold=True)
-        handles.append(Line2D([], [], color=VERMILION, marker="o", linewidth=1.2, label="alarm"))
+        _flag(ax, t, a, f"{alarm_label} {_fmt_day(a)}", bold=True)
+        handles.append(Line2D([], [], color=VERMILION, marker="o", linewidth=1.2, label=alarm_label))
     ax.axhline(0.0, color=GREY, linewidth=0.6)
-    ax.set_ylabel(f"CUSUM ({unit})", **_text_kw())
+    ax.set_ylabel(f"{path_label} ({unit})", **_text_kw())
     ax.set_xlabel("period", **_text_kw())
     _date_axis(ax)
     _legend(fig, handles)
@@ -339,6 +357,23 @@ def coefficient_chart(
         label = f"rolling ({window} periods)" if window else "rolling"
         (line,) = ax.plot(t, coef, color=BLUE, linewidth=1.6, label=label)
         handles.insert(0, line)
+        split = d.get("split")
+        if isinstance(split, Mapping) and split.get("before") is not None and split.get("after") is not None:
+            at = _to_datetime64(split.get("break"))
+            before, after = float(split["before"]), float(split["after"])
+            sb, sa = split.get("se_before"), split.get("se_after")
+            seg = [(t[0], at, before, sb), (at, t[-1], after, sa)]
+            for x0, x1, v, se in seg:
+                ax.plot([x0, x1], [v, v], color=VERMILION, linewidth=2.0, solid_capstyle="butt")
+                if se is not None and math.isfinite(float(se)):
+                    ax.fill_between([x0, x1], v - 1.96 * float(se), v + 1.96 * float(se), color=VERMILION,
+                                    alpha=0.12, linewidth=0)
+            ax.axvline(at, color=VERMILION, linewidth=1.0, linestyle=":")  # type: ignore[arg-type]
+            ax.annotate(f"{_num_label(before)} → {_num_label(after)}", xy=(at, after), xytext=(4, -10),
+                        textcoords="offset points", ha="left", va="top",
+                        **{**_text_kw(FONT - 0.5), "color": VERMILION})
+            handles.append(Line2D([], [], color=VERMILION, linewidth=2.0,
+                                  label=f"before / since break {_fmt_day(at)}"))
         ref = d.get("reference")
         if ref is not None and math.isfinite(float(ref)):
             rl = ax.axhline(float(ref), color=ORANGE, linestyle="--", linewidth=1.4, label="reference fit")
@@ -404,15 +439,18 @@ def forecast_chart(
     handles.append(lf)
     if b is not None and np.isfinite(b).any():
         (lb,) = ax.plot(t[sl], b[sl], color=GREY, linewidth=1.1, linestyle="--", alpha=0.8,
-                        label="baseline (no drivers)")
+                        label="seasonal-naive baseline")
         handles.append(lb)
+    flagged = False
     if defined.size and defined[0] > lo:
         ax.axvline(t[defined[0]], color=GREY, linewidth=0.9)
         _flag(ax, t[sl], t[defined[0]], "monitoring starts")
+        flagged = True
     if event is not None:
         at = _to_datetime64(event)
         ax.axvline(at, color=VERMILION, linewidth=1.4)  # type: ignore[arg-type]
-        _flag(ax, t[sl], at, f"{event_label} {_fmt_day(at)}", bold=True)
+        # a second line of labels: the two markers are often close together
+        _flag(ax, t[sl], at, f"{event_label} {_fmt_day(at)}", bold=True, row=1 if flagged else 0)
     ax.set_ylabel(unit, **_text_kw())
     ax.set_xlabel("period", **_text_kw())
     _date_axis(ax)
@@ -535,7 +573,7 @@ def feeds_chart(
         if av.size != per.size:
             raise ValueError(f"feeds[{name!r}]: available_at has {av.size} values, periods has {per.size}")
         due = _to_datetime64(f.get("next_due"))
-        parsed.append((name, per, av, due, bool(f.get("late"))))
+        parsed.append((name, per, av, due, bool(f.get("late")), f.get("form") in ("known", "forecast")))
         for arr in (per, av, np.array([due])):
             ok = arr[~np.isnat(arr)]
             if ok.size and (np.isnat(latest) or ok.max() > latest):
@@ -543,7 +581,7 @@ def feeds_chart(
     end = _to_datetime64(now) if now is not None else latest
     any_late = False
     lane = 0.17
-    for row, (name, per, av, due, late) in enumerate(parsed):
+    for row, (name, per, av, due, late, ahead) in enumerate(parsed):
         y = len(names) - 1 - row
         order = np.argsort(per)
         per, av = per[order], av[order]
@@ -559,7 +597,9 @@ def feeds_chart(
             ax.barh(np.full(per_k.size, y + lane), widths - gap, left=per_k, height=0.16, color=GREY,
                     alpha=0.55, linewidth=0)
             arrived = ~np.isnat(av_k)
-            for e0, a0 in zip(ends[arrived], av_k[arrived]):
+            # a plan or forecast arrives before its period: joining it to the period's end would only
+            # cross the lanes; its markers say when it came
+            for e0, a0 in zip(ends[arrived], av_k[arrived]) if not ahead else ():
                 ax.plot([e0, a0], [y + lane - 0.08, y - lane], color=BLUE, linewidth=0.8, alpha=0.6)
             ax.plot(av_k[arrived], np.full(int(arrived.sum()), y - lane), linestyle="none", marker="o",
                     markersize=4.5, color=BLUE)
@@ -577,7 +617,8 @@ def feeds_chart(
     if not np.isnat(end):
         ax.axvline(end, color=INK, linewidth=0.8, linestyle=":")  # type: ignore[arg-type]  # stubs say float; datetime64 is converted by the date units
     ax.set_yticks(range(len(names)))
-    ax.set_yticklabels([str(n) for n in reversed(names)], fontsize=FONT, color=INK)
+    kinds = {n: {"known": " (plan)", "forecast": " (forecast)"}.get(str(feeds[n].get("form")), "") for n in names}
+    ax.set_yticklabels([f"{n}{kinds[n]}" for n in reversed(names)], fontsize=FONT, color=INK)
     ax.set_ylim(-0.6, len(names) - 0.4)
     ax.margins(x=0.06)
     ax.set_xlabel("time (UTC)", **_text_kw())
@@ -594,6 +635,19 @@ def feeds_chart(
     _legend(fig, handles)
     _title(fig, title)
     return _png(fig)
+
+
+def _boundary_label(level: Any) -> str:
+    """The legend key of a monitor's boundary: ``boundary, level 1.3%``."""
+    try:
+        v = float(level)
+    except (TypeError, ValueError):
+        return "boundary"
+    return f"boundary, level {v * 100:.2g}%" if math.isfinite(v) and 0 < v < 1 else "boundary"
+
+
+def _lower_first(text: str) -> str:
+    return text[:1].lower() + text[1:]
 
 
 def _level_value(level: Any) -> float:
@@ -674,17 +728,36 @@ def render_model_chart_set(model_payload: Mapping[str, Any], kinds: Sequence[str
     def draw(kind: str) -> bytes | None:
         block = charts.get(kind)
         if kind == "cusum":
+            mon = charts.get("monitor")
+            if isinstance(mon, Mapping) and _nonempty(mon.get("path")) and _nonempty(mon.get("boundary")) \
+                    and periods:
+                lvl = mon.get("level")
+                crossed = mon.get("alarm_date")
+                return cusum_chart(
+                    periods, mon["path"], {_boundary_label(lvl): mon["boundary"]}, crossed,
+                    monitor_start=mstart, path_label="monitor path", alarm_label="crossed",
+                    title=f"{name}: {_lower_first(str(mon.get('title') or mon.get('test')))}"
+                          + (" crossed its boundary" if crossed else ", nearest its boundary (no alarm)"))
             if not isinstance(block, Mapping) or not _nonempty(block.get("path")) or not periods:
-                notes[kind] = "no CUSUM path in this check"
+                notes[kind] = str(charts.get("monitor_note") or "no monitoring path in this check (nothing "
+                                  "monitored after the reference period yet)")
                 return None
+            notes[kind] = ("no monitor ran (nothing monitored yet): the retrospective CUSUM is drawn instead; "
+                           "it is reported but raises nothing alone")
             return cusum_chart(periods, block["path"], block.get("bounds") or {}, block.get("alarm_date"),
-                               monitor_start=mstart, title=f"{name}: CUSUM of recursive residuals")
+                               monitor_start=mstart, alarm_label="crossed 5%",
+                               title=f"{name}: retrospective CUSUM of recursive residuals")
         if kind == "coefficients":
             usable = {k: v for k, v in (block or {}).items()
                       if isinstance(v, Mapping) and _nonempty(v.get("coef"))} if isinstance(block, Mapping) else {}
             if not usable or not periods:
                 notes[kind] = "no rolling coefficients in this check"
                 return None
+            if any(isinstance(v.get("split"), Mapping) for v in usable.values()):
+                notes[kind] = (
+                    "The rolling estimate refits trend and season in each window, so it rests on the driver's "
+                    "own short-run movements and follows a change of effect late and noisily; the red lines "
+                    "are the effects estimated before and since the dated break (the refit's figures).")
             return coefficient_chart(periods, usable, monitor_start=mstart,
                                      title=f"{name}: rolling coefficients",
                                      unit=f"{unit} per driver unit")
@@ -700,9 +773,13 @@ def render_model_chart_set(model_payload: Mapping[str, Any], kinds: Sequence[str
             usable = {k: v for k, v in (block or {}).items()
                       if isinstance(v, Mapping) and _nonempty(v.get("lags")) and _nonempty(v.get("reference"))
                       } if isinstance(block, Mapping) else {}
+            skipped = charts.get("lag_profile_skipped")
+            why = "; ".join(f"{k}: {v}" for k, v in skipped.items()) if isinstance(skipped, Mapping) else ""
             if not usable:
-                notes[kind] = "no lag profile in this check"
+                notes[kind] = "no lag profile in this check" + (f" ({why})" if why else "")
                 return None
+            if why:
+                notes[kind] = f"not drawn for {why}"
             return lag_profile_chart(usable, title=f"{name}: cross-correlation by lag")
         if kind == "feeds":
             usable = {k: v for k, v in (block or {}).items()

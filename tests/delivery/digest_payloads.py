@@ -79,6 +79,9 @@ def make_payload(name: str = "k000", verdict: str = "refit", *, seed: int = 7, a
             "periods": periods,
             "monitor_start_index": N_REF,
             "cusum": {"path": path, "bounds": {"0.05": b05, "0.01": b01}, "alarm_date": alarm},
+            # the monitor that raised the alarm, with its own boundary (here: the same invented path)
+            "monitor": {"test": "monitor-cusum", "title": "The recursive-CUSUM monitor", "path": path,
+                        "boundary": b05, "level": 0.0125, "alarm_date": alarm},
             "coefficients": {
                 f"{name}_promo": {"coef": coef_l, "lower": lower, "upper": upper, "reference": 2.01, "window": 52},
                 f"{name}_temp": {"coef": [None] * 52 + [_r(c) for c in coef2[52:]],

@@ -187,7 +187,7 @@ def test_thin_payloads_do_not_break_the_digest(tmp_path: Path, store) -> None:
                                         "drivers": [None, {"series": None}], "accuracy": "n/a"}])
     d = dg.build_digest(_cfg(tmp_path), store, now=MON2)
     assert {m.name for m in d.models} == {"bare", "odd"}
-    assert "no CUSUM path in this check" in d.html
+    assert "no monitoring path in this check" in d.html
 
 
 def test_bad_arguments(tmp_path: Path, store) -> None:
