@@ -67,8 +67,11 @@ def check_date(v: date) -> date:
     return v
 
 def check_name(v: str) -> str:
-    """``v`` when a store can keep it as a name: at most :data:`MAX_NAME_LENGTH` characters (a NUL byte is
-    refused for every string of the config when it is parsed); ValueError otherwise."""
+    """``v`` when a store can keep it as a name: at most :data:`MAX_NAME_LENGTH` characters, no NUL byte (one
+    written as ``\\0`` is refused for every string when the YAML is parsed; this catches one decoded from
+    ``!!binary``); ValueError otherwise."""
+    if "\x00" in v:
+        raise ValueError(f"{v[:40]!r} contains a NUL byte: no store keeps one in text; remove it")
     if len(v) > MAX_NAME_LENGTH:
         raise ValueError(f"'{v[:40]}…' is {len(v)} characters long; names are at most {MAX_NAME_LENGTH} "
                          "characters (the store keeps no more)")

@@ -43,7 +43,9 @@ def _write(tmp_path: Path, text: str) -> Path:
     (MINIMUM.replace("name: kiosks", f"name: {LONG}"), "sources[0].name", "characters long"),
     (MINIMUM.replace("path: data/*.csv", 'path: "data/\\0.csv"'), "sources[0].path", "contains a NUL byte"),
     (MINIMUM + CHANNELS.replace("NAME", LONG), "alerts.channels[0].name", "characters long"),
-], ids=["long-model", "nul-model", "nul-target", "long-driver", "long-source", "nul-path", "long-channel"])
+    (MINIMUM.replace("name: k000", "name: !!binary azAAMA=="), "models[0].name", "contains a NUL byte"),
+], ids=["long-model", "nul-model", "nul-target", "long-driver", "long-source", "nul-path", "long-channel",
+        "nul-from-binary"])
 def test_names_no_store_keeps_are_refused_at_load(tmp_path: Path, text: str, key: str, words: str) -> None:
     p = _write(tmp_path, text)
     with pytest.raises(ConfigError) as err:
