@@ -306,7 +306,7 @@ def _row(rows: list[list[int]], change: int | None) -> dict[str, Any]:
     if change is None:
         return {"alarm": alarm, "detect": None, "median": None, "p90": None, "early": None, "n": n}
     delay = np.array([min(x for x in r if x >= change) - change for r in rows if any(x >= change for x in r)])
-    return {"alarm": alarm, "detect": delay.size / max(n, 1),
+    return {"alarm": alarm, "detect": delay.size / max(n, 1), "delays": sorted(delay.tolist()),
             "early": float(np.mean([any(x < change for x in r) for r in rows])) if n else 0.0,
             "median": float(np.median(delay)) if delay.size else None,
             "p90": float(np.quantile(delay, 0.9)) if delay.size else None, "n": n}
@@ -368,6 +368,9 @@ def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
         ok = v is not None and (v <= bound if kind == "max" else v >= bound)
         label = {"hard": "hard action", "refit": "refit", "median": "median delay (any alarm)"}[fig]
         out.append((f"{name}: {label} {want}", shown, ok))
+    bad = {name: r["drift"]["errors"] for name, r in sc.items() if r["drift"]["errors"]}
+    out.append(("every model checked (no error entries)",
+                ", ".join(f"{k} {v}" for k, v in bad.items()) or "0 errors", not bad))
     for name, r in sc.items():
         if r["change"] is not None:
             v = r["monitors"]["any"]["early"]
