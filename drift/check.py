@@ -553,8 +553,10 @@ def _screen(group: list[_Ctx]) -> None:
         for name, rc, test in (("cusum", cus, "cusum"), ("cusum-squares", cusq, "cusum_squares")):
             crossed = enough & (np.atleast_1d(rc.first_crossing[0.05]) >= 0)
             dates = np.full(len(group), -1, dtype=np.int64)
-            if crossed.any():
-                dates[crossed] = engine.first_signal(W[crossed], test, 0.05)
+            if crossed.any():  # replayed on the monitored columns only (the rows before are all NaN)
+                lo = int(m[crossed].min())
+                found = engine.first_signal(W[crossed][:, lo:], test, 0.05)
+                dates[crossed] = np.where(found >= 0, found + lo, -1)
             retro_dates[name] = dates
     window = chk.rolling_window or chk.recent_window
     roll = None
