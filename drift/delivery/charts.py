@@ -61,6 +61,8 @@ PALETTE_COLOURS = 128
 LEGEND_COLUMNS = 5
 #: characters of legend text (labels plus their keys) that fit one row of an 800-pixel chart
 LEGEND_ROW_CHARS = 110
+#: a monitoring path beyond this many times its largest boundary is cut at that height (and said so)
+CLIP_FACTOR = 4.0
 #: periods of actuals shown before the first forecast, for context
 FORECAST_CONTEXT = 26
 
@@ -302,6 +304,18 @@ def cusum_chart(
         _flag(ax, t, a, f"{alarm_label} {_fmt_day(a)}", bold=True)
         handles.append(Line2D([], [], color=VERMILION, marker="o", linewidth=1.2, label=alarm_label))
     ax.axhline(0.0, color=GREY, linewidth=0.6)
+    # a path far beyond its boundaries would squeeze the crossing into a few pixels: show the boundaries
+    # and the crossing, and say where the path goes off the chart
+    top = max((float(np.nanmax(np.abs(_floats(b, "bound", t.size)))) for _lvl, b in ordered
+               if np.isfinite(_floats(b, "bound", t.size)).any()), default=math.nan)
+    ymax = float(np.nanmax(np.abs(y))) if np.isfinite(y).any() else math.nan
+    if math.isfinite(top) and math.isfinite(ymax) and ymax > CLIP_FACTOR * top:
+        lim = CLIP_FACTOR * top
+        ax.set_ylim(-lim if two_sided else -0.1 * lim, lim)
+        k = int(np.nanargmax(np.abs(y)))
+        ax.annotate(f"path off the chart, to {_num_label(float(y[k]))} on {_fmt_day(t[k])}",
+                    xy=(1.0, 0.02 if y[k] < 0 else 0.98), xycoords="axes fraction", ha="right",
+                    va="bottom" if y[k] < 0 else "top", **_text_kw(FONT - 0.5))
     ax.set_ylabel(f"{path_label} ({unit})", **_text_kw())
     ax.set_xlabel("period", **_text_kw())
     _date_axis(ax)

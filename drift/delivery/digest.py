@@ -280,10 +280,13 @@ def _main_action(payload: Mapping[str, Any], verdict: str) -> Mapping[str, Any] 
 def _evidence(payload: Mapping[str, Any]) -> str:
     alarms = [a for a in payload.get("alarms") or [] if isinstance(a, Mapping)]
     if alarms:
-        a = alarms[0]
+        # the alarm a refit names (the first monitor to cross), else the earliest; warnings after alarms
+        a = min(alarms, key=lambda a: (bool(a.get("warning")), str(a.get("date") or "9999")))
         lvl = a.get("level")
         at = f" at {_num(float(lvl) * 100)}%" if isinstance(lvl, (int, float)) else ""
-        return (f"{a.get('test', 'test')} alarm{at}" + (f" on {a['date']}" if a.get("date") else "")
+        kind = "warning" if a.get("warning") else "alarm"
+        return (f"{a.get('test', 'test')}{' (' + str(a['driver']) + ')' if a.get('driver') else ''} {kind}{at}"
+                + (f" on {a['date']}" if a.get("date") else "")
                 + (f" ({_num(a.get('statistic'))} > {_num(a.get('threshold'))})"
                    if a.get("statistic") is not None and a.get("threshold") is not None else ""))
     tests = [t for t in payload.get("tests") or []
