@@ -248,3 +248,31 @@ def test_demo_every_chart_is_drawn_or_says_why(demo: Any) -> None:
     con.close()
     feed = payload["charts"]["feeds"]["campaign_north"]
     assert feed["form"] == "known" and len(feed["periods"]) > 20 and len(feed["available_at"]) == len(feed["periods"])
+
+
+def test_drift_report_command_writes_the_report_and_records_nothing(demo: Any, tmp_path: Path) -> None:
+    import sqlite3
+    import subprocess
+    import sys
+
+    def counts() -> tuple[int, int, int]:
+        con = sqlite3.connect(str(demo.out / "drift.db"))
+        try:
+            return tuple(con.execute(f"select count(*) from {t}").fetchone()[0]  # type: ignore[return-value]
+                         for t in ("runs", "verdicts", "alerts"))
+        finally:
+            con.close()
+
+    before = counts()
+    out = tmp_path / "rep"
+    r = subprocess.run([sys.executable, "-m", "drift.cli", "report", "--config", str(demo.config), "--model", "east",
+                        "--as-of", "2025-12-31", "--out", str(out)], capture_output=True, text=True, check=False)
+    assert r.returncode == 0, r.stderr
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "east — refit" in md and "north" not in md
+    assert (out / "report.html").exists() and list(out.glob("*.png"))
+    # the same renderer as the demo: east's section reads the same in both reports
+    demo_md = demo.report.read_text(encoding="utf-8")
+    section = md[md.index("## east"):md.index("![")]
+    assert section in demo_md
+    assert counts() == before

@@ -91,3 +91,10 @@ def test_every_image_loads_in_chromium(tmp_path: Path, outputs: dict[str, Any], 
     assert n_charts >= 4
     # an unescaped name would add an <img src=x> that cannot load: the probe counts every image
     assert _probe(tmp_path, html, key) == (n_charts, 0)
+
+
+def test_digest_heads_with_refit_and_lists_the_late_feed(outputs: dict[str, Any]) -> None:
+    # the README's verdict order: a confirmed change outranks a late feed, which is listed beside it
+    text = outputs["digest_txt"].read_text(encoding="utf-8")
+    line = next(x for x in text.splitlines() if x.strip().startswith(f"{EVIL}: refit"))
+    assert line.rstrip().endswith("Also data late: x1.")
