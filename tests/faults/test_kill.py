@@ -52,7 +52,7 @@ ROOT = Path(__file__).resolve().parents[2]
 SEED = 20260413
 #: trials per fault kind (the suite's budget; raise it for a longer local run)
 TRIALS = {kind: int(os.environ.get("DRIFT_FAULT_TRIALS", n)) for kind, n in
-          (("ingest", 10), ("check", 8), ("deliver", 8), ("deliver-refused", 6))}
+          (("ingest", 10), ("check", 8), ("deliver", 6), ("deliver-refused", 4))}
 #: the recipient the "deliver-refused" trials' server refuses for good (RFC 5321 section 4.2.1: 5xx)
 GONE = "gone@example.test"
 #: seconds the mail server waits before answering the message data (so kills land mid-send)
