@@ -25,7 +25,7 @@ from typing import Any
 
 import jinja2
 
-from drift.verdicts import accuracy_sentence, fmt_num, fmt_p
+from drift.verdicts import accuracy_sentence, fmt_num, fmt_p, label
 
 #: the footer of every message (plain words; also used by the folder pages)
 FOOTER = ("This is statistical evidence, not certainty: whether to refit, re-lag or drop anything "
@@ -82,31 +82,24 @@ def fmt(value: Any) -> str:
 
 
 def headline(notice: Mapping[str, Any]) -> str:
-    """What the alert says, in a few plain words (no model name)."""
+    """What the alert says, in the vocabulary's words (:data:`drift.verdicts.LABEL`; no model name):
+    ``refit``, ``data late: x1``, ``drop a driver: x1``, ``re-lag: x1 to lag 3``, ``watch``."""
     action = str(notice.get("action") or "watch")
     detail = notice.get("detail") or {}
     driver = detail.get("driver")
-    if action == "refit":
-        text = "refit suggested"
-    elif action == "drop-driver":
-        text = f"consider dropping {driver}" if driver else "consider dropping a driver"
-    elif action == "relag":
+    text = label(action)
+    if action == "relag" and driver:
         lag = detail.get("lag")
-        text = (f"{driver or 'a driver'} fits better at lag {lag}" if lag is not None
-                else f"consider a different lag for {driver or 'a driver'}")
-    elif action == "data-late":
-        text = f"{driver} data is late" if driver else "driver data is late"
-    elif action == "watch":
-        text = "worth watching"
-    else:
-        text = action
+        text += f": {driver}" + (f" to lag {lag}" if lag is not None else "")
+    elif driver:
+        text += f": {driver}"
     if action != "watch" and notice.get("severity") == "watch":
         text += " (watch)"
     return text
 
 
 def subject_for(notice: Mapping[str, Any]) -> str:
-    """The subject line, e.g. ``drift: k000 — refit suggested``."""
+    """The subject line, e.g. ``drift: k000 — refit``."""
     event = notice.get("event")
     model = str(notice.get("model") or "?")
     head = headline(notice)

@@ -43,7 +43,7 @@ def test_new_condition_opens_and_enqueues_one_row_per_channel(cfg: Any, store: A
     assert sorted(r.channel for r in rows) == ["archive", "folder"]
     assert all(r.status == "pending" and r.attempts == 0 and r.alert == ev[0].alert_id for r in rows)
     assert len({r.idempotency_key for r in rows}) == 2
-    assert rows[0].subject == "drift: k000 — refit suggested"
+    assert rows[0].subject == "drift: k000 — refit"
     doc = json.loads(rows[0].payload)
     assert doc["charts"] is None  # chart data only travels on e-mail rows
     assert doc["detail"]["since"] == "2024-11-04"
@@ -135,7 +135,7 @@ def test_cleared_notice_when_configured(tmp_path: Path, store: Any, monkeypatch:
     ev = process_alerts(cfg, store, outcome(payload("k000", []), run_id=2), now=T0 + dt.timedelta(days=1))
     assert [(e.event, e.notified) for e in ev] == [("cleared", True)]
     rows = outbox_rows(store)
-    assert len(rows) == 2 and rows[1].subject == "drift: k000 — cleared: refit suggested"
+    assert len(rows) == 2 and rows[1].subject == "drift: k000 — cleared: refit"
 
 
 def test_partial_outcome_leaves_other_models_alone(cfg: Any, store: Any) -> None:
@@ -171,7 +171,7 @@ def test_min_action_act_opens_watch_silently_then_sends_when_it_becomes_act(cfg:
 def test_min_action_watch_sends_watch(tmp_path: Path, store: Any) -> None:
     cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out"}], min_action="watch")
     ev = process_alerts(cfg, store, outcome(payload("k000", [action("watch", "watch")])), now=T0)
-    assert ev[0].notified and outbox_rows(store)[0].subject == "drift: k000 — worth watching"
+    assert ev[0].notified and outbox_rows(store)[0].subject == "drift: k000 — watch"
 
 
 def test_deterministic(tmp_path: Path) -> None:

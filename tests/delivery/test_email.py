@@ -59,7 +59,7 @@ def test_message_structure(tmp_path: Path, store: Any, smtp_server: SmtpServer) 
     assert m.mail_from == "drift@example.test"
     assert m.rcpt_tos == ["owner@example.test", "team@example.test"]
     msg = parse(m.content)
-    assert msg["Subject"] == "drift: k000 — refit suggested"
+    assert msg["Subject"] == "drift: k000 — refit"
     [row] = rows(store)
     assert row.status == "sent" and row.sent_at == T0
     assert row.idempotency_key in msg["Message-ID"]
@@ -121,7 +121,7 @@ def test_starttls_login(tmp_path: Path, store: Any, smtp_tls_server: SmtpServer,
     process_alerts(cfg, store, outcome(payload("k000", [action("relag", driver="k000_promo", lag=3)])), now=T0)
     rep = deliver_pending(cfg, store, now=T0, channels=senders(cfg))
     assert rep.sent == 1, rep.errors
-    assert "k000_promo fits better at lag 3" in parse(smtp_tls_server.messages[0].content)["Subject"]
+    assert "re-lag: k000_promo to lag 3" in parse(smtp_tls_server.messages[0].content)["Subject"]
 
 
 def test_starttls_required_but_not_configured_fails(tmp_path: Path, store: Any,

@@ -45,7 +45,7 @@ def test_lines_and_pages(cfg: Any, store: Any, tmp_path: Path) -> None:
     md = (folder / "run-2025-12-29-7.md").read_text(encoding="utf-8")
     html = (folder / "run-2025-12-29-7.html").read_text(encoding="utf-8")
     for page in (md, html):
-        assert "k000_promo fits better at lag 3" in page and "k001_temp data is late" in page
+        assert "re-lag: k000_promo to lag 3" in page and "data late: k001_temp" in page
         assert "2024-11-04" in page and "statistical evidence, not certainty" in page
         assert "2.01" in page  # the numbers behind the relag (reference coefficient)
 

@@ -52,13 +52,13 @@ def test_every_message_states_action_reason_numbers_as_of_footer(a: dict[str, An
 
 def test_subjects() -> None:
     base = {"model": "k000", "severity": "act"}
-    assert subject_for({**base, "action": "refit"}) == "drift: k000 — refit suggested"
+    assert subject_for({**base, "action": "refit"}) == "drift: k000 — refit"
     assert subject_for({**base, "action": "relag", "detail": {"driver": "p", "lag": 2}}) == \
-        "drift: k000 — p fits better at lag 2"
-    assert subject_for({**base, "action": "data-late", "detail": {"driver": "t"}}) == "drift: k000 — t data is late"
-    assert subject_for({**base, "action": "refit", "severity": "watch"}) == "drift: k000 — refit suggested (watch)"
+        "drift: k000 — re-lag: p to lag 2"
+    assert subject_for({**base, "action": "data-late", "detail": {"driver": "t"}}) == "drift: k000 — data late: t"
+    assert subject_for({**base, "action": "refit", "severity": "watch"}) == "drift: k000 — refit (watch)"
     assert subject_for({**base, "action": "refit", "event": "worse"}).endswith("(worse than before)")
-    assert subject_for({**base, "action": "refit", "event": "cleared"}) == "drift: k000 — cleared: refit suggested"
+    assert subject_for({**base, "action": "refit", "event": "cleared"}) == "drift: k000 — cleared: refit"
 
 
 def test_worse_message_says_what_it_was() -> None:

@@ -31,7 +31,7 @@ def test_post_json(tmp_path: Path, store: Any, http_sink: HttpSink, monkeypatch:
     assert (b["model"], b["condition"], b["severity"], b["as_of"]) == ("k000", "drop-driver:k000_temp", "act",
                                                                        "2025-12-29")
     assert "charts" not in b and "statistical evidence" in b["text"]
-    assert b["subject"] == "drift: k000 — consider dropping k000_temp"
+    assert b["subject"] == "drift: k000 — drop a driver: k000_temp"
 
 
 def test_500_keeps_pending_then_sends_once(tmp_path: Path, store: Any, http_sink: HttpSink) -> None:
