@@ -75,3 +75,17 @@ def test_degenerate_model_is_an_error_entry_naming_the_problem(tmp_path: Path, c
     assert m["verdict"] == "error", m
     for w in words:
         assert w in m["reason"], m["reason"]
+
+
+def test_quarantined_columns_on_every_store(store, tmp_path: Path) -> None:
+    """The count and first record the check's reason quotes, read alike from SQLite and PostgreSQL."""
+    from drift.ingest import ingest_all
+    from tests.ingest.helpers import NOW, make_config
+
+    (tmp_path / "data.csv").write_text("week,a,b\n2024-01-01,1e308,1\n2024-01-08,2e308,2\n2024-01-15,x,3\n")
+    src = {"name": "src", "kind": "csv", "path": "data.csv", "period_column": "week", "frequency": "W"}
+    ingest_all(make_config(tmp_path, [src]), store, now=NOW)
+    held = store.quarantined_columns(["a", "b", "c"])
+    assert list(held) == ["a"]
+    n, row, why = held["a"]
+    assert (n, row) == (3, 2) and "beyond ±1e+100" in why
