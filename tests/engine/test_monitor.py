@@ -300,7 +300,9 @@ def test_power_after_estimated_ar1_prewhitening() -> None:
     # Seeded simulation, invented weekly data (phi 0.5, m = 156): a level shift of 2 (errors' innovation
     # sd 1) at the middle of the monitored span. Measured: 0.77 csw / 0.84 mosum / 0.84 page against
     # 0.88 / 0.97 / 0.98 with the true filter: the wider boundary is the price of estimating phi.
-    dets = ("csw", "mosum", "page", "shift")  # the variance monitor does not look for level shifts
+    # the claim is about these three; the abrupt-shift monitor measured 0.69 here (a long-lasting shift of
+    # 2 innovation sd is the CUSUMs' case), the variance monitor does not look for level shifts
+    dets = ("csw", "mosum", "page")
     new = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0, dets=dets)
     best = _check_pipeline(0.5, 156, 500, seed=31, shift=2.0, oracle=True, dets=dets)
     for det in dets:
