@@ -123,7 +123,7 @@ def simulate_family(reps: int, rng: np.random.Generator, chunk: int = 4000) -> d
                 n = m + k
                 per_h[h]["csw"][lo:hi] = (s * s / n - np.log(n / m)).max(axis=1)
                 per_h[h]["page"][lo:hi] = (rng_ / np.sqrt(m * (1.0 + k / m))).max(axis=1)
-                L = max(1, int(round(0.25 * m)))
+                L = max(1, round(0.25 * m))
                 lagged = s0[:, np.maximum(k - L, 0)]
                 per_h[h]["mosum"][lo:hi] = (np.abs(s - lagged) / np.sqrt(L)).max(axis=1)
         p_shared = {d: _pvalues(stats[d]) for d in ("shift", "variance")}
