@@ -143,7 +143,7 @@ def test_only_http_urls_in_the_config(tmp_path: Path, url: str) -> None:
     f.write_text(f"alerts:\n  channels:\n    - kind: webhook\n      url: '{url}'\n", encoding="utf-8")
     with pytest.raises(ConfigError, match=r"http:// or https://") as err:
         load_config(f)
-    assert "alerts.channels" in str(err.value)
+    assert "alerts.channels[0].url" in str(err.value)
 
 
 def test_a_receiver_echoing_the_token_does_not_leak_it(tmp_path: Path, store: Any,
