@@ -15,6 +15,7 @@ import sqlalchemy as sa
 from drift.config import Config
 from drift.lock import STALE_AFTER_SECONDS, is_stale, read_lock
 from drift.store import Store, alert_snoozes, alerts, outbox, utcnow
+from drift.verdicts import label
 
 #: outbox statuses that need an operator's look (a send that may or may not have arrived; given up)
 _OPERATOR_STATUSES = ("uncertain", "dead")
@@ -247,7 +248,7 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append(f"open alerts: {sum(len(v) for v in al.values())}" if al else "open alerts: none")
     for model, items in al.items():
         for a in items:
-            lines.append(f"  {model}: {a['action']} ({a['condition']}), since {_t(a['first_seen'])}"
+            lines.append(f"  {model}: {label(a['action'])} ({a['condition']}), since {_t(a['first_seen'])}"
                          + (f"; snoozed until {a['snoozed_until']} by {a['snoozed_by']}" if a.get("snoozed_until")
                             else ""))
     eps = [e for e in (status.get("epochs") or {}).items() if e[1].get("number", 1) > 1]
