@@ -1429,6 +1429,7 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         with Progress(progress, "checking", len(chosen)) as bar:
             payloads, errors = run_chunks(cfg, chosen, load, moment, func=analyse, on_done=bar.advance)
         _quarantine_hint(store, chosen, moment, errors)
+        _late_quarantine_hint(store, payloads)
         failed = [error_entry(m, errors[m.name], day) for m in chosen if m.name in errors]
         by_name = {m.name: m for m in written}
         for entry in (*payloads, *failed):
@@ -1455,6 +1456,21 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         if record:
             store.finish_run(run_id, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
+
+
+def _late_quarantine_hint(store: Any, payloads: Sequence[dict[str, Any]]) -> None:
+    """Add to a data-late reason what ingest quarantined of the late series: a feed whose new values are
+    all refused (beyond the size drift computes with, not numbers, ...) looks late to the check, and the
+    quarantine says why (wide sources: the column is the series)."""
+    late = [a for p in payloads for a in p.get("actions", ()) if a.get("action") == "data-late" and a.get("driver")]
+    if not late:
+        return
+    held = store.quarantined_columns(sorted({str(a["driver"]) for a in late}))
+    for a in late:
+        if a["driver"] in held:
+            n, row, why = held[a["driver"]]
+            a["reason"] += (f" Ingest quarantined {n} value(s) of '{a['driver']}' (the first in row {row}: {why}): "
+                            "the feed may be arriving but refused; drift quarantine lists them.")
 
 
 def _quarantine_hint(store: Any, models: Sequence[ModelConfig], moment: datetime, errors: dict[str, str]) -> None:

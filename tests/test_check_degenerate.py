@@ -77,6 +77,24 @@ def test_degenerate_model_is_an_error_entry_naming_the_problem(tmp_path: Path, c
         assert w in m["reason"], m["reason"]
 
 
+def test_a_feed_refused_at_ingest_is_not_only_late(tmp_path: Path) -> None:
+    """The target's values since 2025-06-02 are 1.5e308: quarantined at ingest, so the feed looks late; the
+    data-late reason says what ingest refused (was: only 'late', an unrelated reason)."""
+    def edit(df: pd.DataFrame) -> None:
+        df.loc[pd.to_datetime(df["week"]) >= "2025-06-02", "k000_units"] = 1.5e308
+
+    folder = _project(tmp_path, edit)
+    assert invoke("ingest", "--config", "drift.yaml", cwd=folder)[0] == 0
+    code, out, err = invoke("check", "--config", "drift.yaml", "--as-of", "2025-12-31", "--json", "--no-deliver",
+                            cwd=folder)
+    assert code == 0, err
+    (m,) = json.loads(out)["models"]
+    (late,) = [a for a in m["actions"] if a["action"] == "data-late"]
+    assert late["driver"] == "k000_units" and late["missing_periods"] == 30
+    assert "Ingest quarantined 30 value(s) of 'k000_units'" in late["reason"], late["reason"]
+    assert "beyond ±1e+100" in late["reason"]
+
+
 def test_quarantined_columns_on_every_store(store, tmp_path: Path) -> None:
     """The count and first record the check's reason quotes, read alike from SQLite and PostgreSQL."""
     from drift.ingest import ingest_all
