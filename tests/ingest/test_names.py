@@ -71,3 +71,35 @@ def test_long_format_series_name_no_store_keeps(store, tmp_path, name: str, word
     assert (q.row, q.column) == (3, "series")
     for w in words:
         assert w in q.reason, q.reason
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def store_url(request, tmp_path: Path) -> str:
+    if request.param == "sqlite":
+        return f"sqlite:///{tmp_path / 'drift.db'}"
+    return request.getfixturevalue("pg_schema")
+
+
+def test_the_cli_run_goes_on_past_names_no_store_keeps(tmp_path: Path, store_url: str) -> None:
+    """Reproduced: on PostgreSQL a column named with a NUL, one named with 250 characters, or a value holding
+    a NUL aborted the whole ingest (exit 1) and the check then found no data; SQLite stored them."""
+    import json
+
+    from tests.test_cli_end_to_end import kiosk_data
+    from tests.test_cli_robustness import invoke
+    from tests.test_config import MINIMUM
+
+    kiosk_data(tmp_path / "data")
+    for f in sorted((tmp_path / "data").glob("*.csv")):
+        lines = f.read_text().splitlines()
+        lines[0] += ",bad\x00name," + LONG
+        lines[1:] = [line + ",1.0,2.0" for line in lines[1:]]
+        lines[3] = lines[3].replace(",1.0,2.0", ",1\x000,2.0")
+        f.write_text("\n".join(lines) + "\n")
+    (tmp_path / "drift.yaml").write_text(MINIMUM.replace("sqlite:///drift.db", f"'{store_url}'"), encoding="utf-8")
+    code, out, err = invoke("ingest", "--config", "drift.yaml", cwd=tmp_path)
+    assert code == 0 and "777 new" in out, (out, err)
+    code, out, err = invoke("check", "--config", "drift.yaml", "--as-of", "2025-12-31", "--json", "--no-deliver",
+                            cwd=tmp_path)
+    assert code == 0, err
+    assert json.loads(out)["models"][0]["verdict"] == "refit"
