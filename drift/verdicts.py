@@ -203,6 +203,11 @@ def window_words(used: int, window: int) -> str:
     return f"{used} of the last {window} periods"
 
 
+def as_map(x: Any) -> Mapping[str, Any]:
+    """``x`` when it is a mapping, else an empty one (payload blocks may be missing or null)."""
+    return x if isinstance(x, Mapping) else {}
+
+
 def _window_of(acc: Mapping[str, Any], n: int | None) -> str:
     window = acc.get("window")
     if not isinstance(window, int) or window <= 0:
@@ -216,8 +221,8 @@ def accuracy_sentence(acc: Mapping[str, Any] | None, unit: str | None = None) ->
     both on the one scale it says (the reference period's seasonal-naive MAE). "" without figures."""
     if not isinstance(acc, Mapping):
         return ""
-    m = acc.get("model") if isinstance(acc.get("model"), Mapping) else {}
-    b = acc.get("baseline") if isinstance(acc.get("baseline"), Mapping) else {}
+    m = as_map(acc.get("model"))
+    b = as_map(acc.get("baseline"))
     if not m or m.get("mae") is None:
         return ""
     u = f" {unit}" if unit else ""
@@ -226,11 +231,11 @@ def accuracy_sentence(acc: Mapping[str, Any] | None, unit: str | None = None) ->
            f"{u}, RMSE {fmt_num(m.get('rmse'))}, bias {fmt_num(m.get('bias'))}.")
     if b.get("mae") is not None:
         out += f" A seasonal-naive forecast on the same periods: MAE {fmt_num(b.get('mae'))}{u}."
-    scale = acc.get("scale") if isinstance(acc.get("scale"), Mapping) else None
+    scale = as_map(acc.get("scale"))
     if m.get("mase") is not None:
         vs = f" vs {fmt_num(b.get('mase'))} for the seasonal-naive forecast" if b.get("mase") is not None else ""
         on = (f" (each MAE divided by the seasonal-naive MAE of the reference period, {fmt_num(scale['mae'])}{u})"
-              if scale and scale.get("mae") is not None else " (MAE divided by the reference period's "
+              if scale.get("mae") is not None else " (MAE divided by the reference period's "
               "seasonal-naive MAE)")
         out += f" MASE {fmt_num(m.get('mase'))}{vs}{on}."
     return out
@@ -240,8 +245,8 @@ def accuracy_short(acc: Mapping[str, Any] | None) -> str:
     """A table cell: ``MASE 1.46 vs 1.57 seasonal naive (52 of 52)``; MAE when there is no MASE."""
     if not isinstance(acc, Mapping):
         return ""
-    m = acc.get("model") if isinstance(acc.get("model"), Mapping) else {}
-    b = acc.get("baseline") if isinstance(acc.get("baseline"), Mapping) else {}
+    m = as_map(acc.get("model"))
+    b = as_map(acc.get("baseline"))
     key, name = ("mase", "MASE") if m.get("mase") is not None else ("mae", "MAE")
     if m.get(key) is None:
         return ""

@@ -25,7 +25,7 @@ from typing import Any
 
 import jinja2
 
-from drift.verdicts import accuracy_sentence, fmt_num, fmt_p, label
+from drift.verdicts import accuracy_sentence, as_map, fmt_num, fmt_p, label
 
 #: the footer of every message (plain words; also used by the folder pages)
 FOOTER = ("This is statistical evidence, not certainty: whether to refit, re-lag or drop anything "
@@ -139,14 +139,14 @@ def facts(notice: Mapping[str, Any]) -> list[tuple[str, str]]:
     if action == "relag" and detail.get("lag") is not None:
         out.append(("Lag that fits best now", fmt(detail["lag"])))
     if drv.get("coef_reference") is not None or drv.get("coef_recent") is not None:
-        ref = ctx.get("reference") if isinstance(ctx.get("reference"), Mapping) else {}
+        ref = as_map(ctx.get("reference"))
         span = f" ({ref['start']} to {ref['end']})" if ref.get("start") and ref.get("end") else ""
         out.append((f"Coefficient, reference period{span}", fmt(drv.get("coef_reference"))))
         recent = fmt(drv.get("coef_recent"))
         ci = drv.get("ci_recent")
         if isinstance(ci, (list, tuple)) and len(ci) == 2:
             recent += f" (interval {fmt(ci[0])} to {fmt(ci[1])})"
-        rw = drv.get("recent_window") if isinstance(drv.get("recent_window"), Mapping) else {}
+        rw = as_map(drv.get("recent_window"))
         which = (f"last {rw['n']} periods ({rw.get('start')} to {rw.get('end')})" if rw.get("n")
                  else "recent window")
         out.append((f"Coefficient, {which}", recent))

@@ -11,7 +11,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from drift.verdicts import accuracy_sentence, fmt_num, fmt_p
+from drift.verdicts import accuracy_sentence, as_map, fmt_num, fmt_p
 
 
 @dataclass(frozen=True)
@@ -44,7 +44,7 @@ def driver_table(payload: Mapping[str, Any]) -> Table | None:
     drivers = [d for d in payload.get("drivers") or [] if isinstance(d, Mapping)]
     if not drivers:
         return None
-    ref = payload.get("reference") if isinstance(payload.get("reference"), Mapping) else {}
+    ref = as_map(payload.get("reference"))
     rw = next((d["recent_window"] for d in drivers if isinstance(d.get("recent_window"), Mapping)), None)
     brk = next((d["break"] for d in drivers if isinstance(d.get("break"), Mapping)), None)
     headers = ["driver", "lag", "form", f"coef., reference fit ({_span(ref)})" if ref else "coef., reference fit",
@@ -61,10 +61,10 @@ def driver_table(payload: Mapping[str, Any]) -> Table | None:
         row = [str(d.get("series")), "—" if d.get("lag") is None else str(d.get("lag")), str(d.get("form") or "—"),
                num(d.get("coef_reference")), recent]
         if brk is not None:
-            b = d.get("break") if isinstance(d.get("break"), Mapping) else {}
+            b = as_map(d.get("break"))
             row += [num(b.get("before")), num(b.get("after")),
                     fmt_p(b.get("pvalue_change")) if b.get("pvalue_change") is not None else "—"]
-        w = d.get("worth") if isinstance(d.get("worth"), Mapping) else {}
+        w = as_map(d.get("worth"))
         row += [fmt_p(w.get("pvalue")) if w.get("pvalue") is not None else "—",
                 f"late (last period {d.get('last_period')})" if d.get("late") else "on time"]
         rows.append(tuple(row))
@@ -93,7 +93,7 @@ def accuracy_text(payload: Mapping[str, Any]) -> str:
 
 def context_line(payload: Mapping[str, Any]) -> str:
     """Target, unit, reference period, monitoring start, last period: the frame of a model's figures."""
-    ref = payload.get("reference") if isinstance(payload.get("reference"), Mapping) else {}
+    ref = as_map(payload.get("reference"))
     bits = []
     if payload.get("target"):
         bits.append(f"Target {payload['target']}" + (f" ({payload['unit']})" if payload.get("unit") else ""))
