@@ -311,20 +311,15 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
 
 
 def _horizon_periods(cfg: Config, m: ModelConfig, n_ref: int) -> int:
-    """``check.horizon`` in the model's periods, within what the simulated tables cover.
-
-    Raises
-    ------
-    DriftError : the horizon is longer than 6 times the reference period or than the steps tabulated.
-    """
+    """``check.horizon`` in the model's periods, capped at what the simulated tables cover (6 times the
+    reference length and 1,040 periods); a capped horizon is said wherever the horizon is quoted
+    (:func:`_horizon_words`)."""
     n = cfg.check.horizon_periods(m.frequency, n_ref)
-    limit = min(int(_mon_table.HORIZONS[-1] * n_ref), int(_fam_table.N_GRID[-1]))
-    if n > limit:
-        raise DriftError(
-            f"model '{m.name}': check.horizon ({cfg.check.horizon!r}) is {n} periods, longer than the "
-            f"monitors are calibrated for with its {n_ref}-period reference (at most {limit}: 6 times the "
-            f"reference and {_fam_table.N_GRID[-1]} periods); shorten check.horizon")
-    return n
+    return min(n, _horizon_limit(n_ref))
+
+
+def _horizon_limit(n_ref: int) -> int:
+    return max(1, min(int(_mon_table.HORIZONS[-1] * n_ref), int(_fam_table.N_GRID[-1])))
 
 
 #: smallest size of a series drift computes with: a target or driver whose values on the usable reference
@@ -704,6 +699,10 @@ def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | No
 def _horizon_words(c: _Ctx) -> str:
     """How check.horizon reads for this model, e.g. "2 years = 104 periods"."""
     h = c.cfg.check.horizon
+    asked = c.cfg.check.horizon_periods(c.model.frequency, c.design.n_ref)
+    if asked > c.horizon_n:
+        return (f"{c.horizon_n} periods: check.horizon ({h}) is {asked}, more than the monitors are calibrated "
+                f"for with a {c.design.n_ref}-period reference")
     if isinstance(h, float):
         return f"{h:g} times the {c.design.n_ref}-period reference = {c.horizon_n} periods"
     return f"{h} = {c.horizon_n} periods" if not h.endswith("periods") else h

@@ -389,3 +389,19 @@ def test_no_alarm_dated_before_the_break_beyond_the_nominal_rate(tmp_path) -> No
         detected += any(r >= true for r in rows)
     assert early <= stats.binom.ppf(0.99, n, cfg.check.level), early
     assert detected >= 0.8 * n, detected
+
+
+def test_horizon_longer_than_the_tables_is_capped_not_an_error(tmp_path) -> None:
+    # invented scenario (simulation): 20 years of weekly monitoring is 1,044 periods, beyond 6 times the
+    # 156-week reference (936, the simulated tables' edge): the model is checked with the horizon capped
+    from drift.check import prepare_model
+
+    cfg = config(tmp_path)
+    periods, values = simulate(Scenario(seed=905))
+    moment = end_moment(periods)
+    obs = known_by(observations(periods, values), moment)
+    assert prepare_model(cfg, cfg.models[0], obs, moment).horizon_n == 104  # the default '2 years'
+    cfg = cfg.model_copy(update={"check": cfg.check.model_copy(update={"horizon": "20 years"})})
+    assert prepare_model(cfg, cfg.models[0], obs, moment).horizon_n == 936
+    (p,), errors = analyse(cfg, cfg.models, obs, moment)
+    assert not errors and p["verdict"] != "error"
