@@ -1213,7 +1213,8 @@ def _drivers_and_worth(c: _Ctx) -> None:
                                                 "n": int(both.sum()), "pvalue": _num(cw.pvalue)}
             # a driver that still helps the forecasts is never proposed for dropping
             if not helps and covers_zero:
-                reason = (f"Driver '{s}' is not earning its place: over the last {int(both.sum())} periods it no "
+                reason = (f"Driver '{s}' is not earning its place: over "
+                          f"{window_words(int(both.sum()), chk.recent_window)} it no "
                           f"longer improves the forecasts (Clark–West p = {fmt_p(cw.pvalue)}) and its recent "
                           f"coefficient interval [{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] "
                           f"covers zero; MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
@@ -1342,13 +1343,16 @@ def _lag_drift(c: _Ctx) -> None:
             # (at the old lag its effect has gone, which is what a drop-driver test sees)
             dropped = [a for a in c.actions if a.action == "drop-driver" and a.extra.get("driver") == s]
             c.actions = [a for a in c.actions if a not in dropped]
-            c.actions.append(Action("relag", extra={"driver": s, "lag": new}, reason=(
+            figs = {"r": _num(round(r_new, 4)), "band": _num(round(float(lp_rec.band), 4)),
+                    "mae_new": round(mae_new, 4), "mae_current": round(mae_cur, 4), "n": int(both.sum()),
+                    "window": int(recent_n), "dm_pvalue": _num(dm.pvalue), "cw_pvalue": _num(cw.pvalue)}
+            c.actions.append(Action("relag", extra={"driver": s, "lag": new, "figures": figs}, reason=(
                 f"Driver '{s}' now leads the target by {new} period{'s' if new != 1 else ''} instead of {cur}: "
                 f"its cross-correlation peaks at lag {new} over the last {recent_n} periods "
-                f"(r = {float(np.asarray(lp_rec.ccf)[new]):.2f}, band ±{float(lp_rec.band):.2f}), and "
-                f"at lag {new} the one-step MAE would be {fmt_num(mae_new)} instead of {fmt_num(mae_cur)} "
-                f"{m.unit}." + (f" At lag {cur} it no longer helps, but at lag {new} it does: keep it." if dropped
-                                else ""))))
+                f"(r = {fmt_num(figs['r'])}, band ±{fmt_num(figs['band'])}), and at lag {new} the one-step MAE "
+                f"would be {fmt_num(figs['mae_new'])} instead of {fmt_num(figs['mae_current'])} {m.unit} over "
+                f"{window_words(figs['n'], recent_n)} (Diebold–Mariano p = {fmt_p(figs['dm_pvalue'])})."
+                + (f" At lag {cur} it no longer helps, but at lag {new} it does: keep it." if dropped else ""))))
     if profiles:
         c.charts["lag_profile"] = profiles
 

@@ -276,3 +276,20 @@ def test_drift_report_command_writes_the_report_and_records_nothing(demo: Any, t
     section = md[md.index("## east"):md.index("![")]
     assert section in demo_md
     assert counts() == before
+
+
+@pytest.mark.parametrize("sc, action", [
+    (Scenario(seed=200, b1=2.0, lag1_after=3, change_at=N_REF), "relag"),       # x1 now leads by 3 weeks
+    (Scenario(seed=304, n_mon=100, b1_after=0.0, change_at=N_REF + 4), "drop-driver"),  # x1's effect gone
+])
+def test_relag_and_drop_reasons_quote_payload_figures(tmp_path: Path, sc: Scenario, action: str) -> None:
+    # invented scenarios (simulation): every number of these reasons is one of the action's own figures
+    from tests.check_scenarios import end_moment
+
+    cfg = config(tmp_path)
+    periods, values = simulate(sc)
+    moment = end_moment(periods)
+    (p,), errors = analyse(cfg, cfg.models, known_by(observations(periods, values), moment), moment)
+    assert not errors
+    assert action in [a["action"] for a in p["actions"]], p["actions"]
+    _check_reasons(p, cfg.check.level)
