@@ -12,16 +12,18 @@ Every output (messages, digest, report, terminal tables, status) takes its words
 
 False-alarm control (per model, over the monitoring horizon)
 -----------------------------------------------------------
-``refit`` needs a *sequential* monitoring detector to cross its boundary. The detectors that watch every
-model are the Chu–Stinchcombe–White recursive CUSUM (quick on early changes) and a detector quick on late
-changes (Page-type CUSUM by default) on the recursive residuals, plus one score monitor per driver (the
-recursive residuals weighted by the driver's orthogonalised column: its coefficient's fluctuation process,
-which has power against changes the residual mean does not show). Each runs at ``level / (number of
-monitors)`` (Bonferroni, floored at the tables' 0.5%), so the chance that a stable model is ever told to
-refit within the horizon is at most ``level``. Monitoring at ``warn_level`` and the CUSUM of squares of
-the monitored residuals beyond its 1% bound (a variance change) only give ``watch``; the retrospective CUSUM
-and CUSUM of squares at 5% are reported but raise nothing alone (re-run on every check, their crossings
-would accumulate on stable models). Change
+``refit`` needs a member of the *monitor family* to cross its boundary (:func:`drift.engine.family_levels`):
+on the recursive residuals the Chu–Stinchcombe–White recursive CUSUM (small persistent changes), an
+abrupt-shift monitor (Page CUSUM with a reference value) and an error-variance monitor; per driver its
+effect monitor (the recursive residuals weighted by the driver's orthogonalised column: its coefficient's
+fluctuation process, which has power against changes the residual mean does not show) and an abrupt-shift
+monitor of it. All are sequential (each period's statistic uses data up to it), so an alarm's date is when
+a check would have raised it. Their levels are calibrated together (jointly simulated within a stream,
+weighted Šidák across streams) so that the chance that a stable model is ever told to refit within the
+horizon (``check.horizon``, default 2 years) is at most ``level``; beyond it they keep running without the
+guarantee, and the reason says so. The family at ``warn_level`` only gives ``watch``; the retrospective
+CUSUM and CUSUM of squares are reported in ``tests`` (dated by replay) but raise nothing (re-run on every
+check, their crossings would accumulate on stable models). Change
 points and the sup-F search only *date* a break that the monitors found; they never raise one alone.
 ``drop-driver`` and ``relag`` have their own out-of-sample tests; ``data-late`` is a fact about the feed,
 not a test.
