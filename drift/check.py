@@ -1400,7 +1400,7 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
 
     A model that cannot be checked does not stop the run: it gets an error entry (``outcome.errors`` and
     ``outcome.failed``). ``progress``: a bar on stderr (None = when stderr is a terminal and the check has
-    more than one chunk; False = never). The run is recorded ``ok`` when every model was checked, ``partial`` when some
+    ``drift.progress.AUTO_MODELS`` models or more; True = always; False = never). The run is recorded ``ok`` when every model was checked, ``partial`` when some
     were not (its detail counts them: ``checked``, ``failed``, ``errors``).
 
     Raises

@@ -32,7 +32,6 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
-import sys
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
@@ -44,6 +43,7 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
+from drift import progress as bars
 from drift.config import Config, SourceConfig
 from drift.exceptions import ConfigError, InputError
 from drift.ingest.csv import read_csv
@@ -547,7 +547,7 @@ class _Progress:
         self._enabled = enabled
         self._bar: Any = None
 
-    def __enter__(self) -> _Progress:
+    def __enter__(self) -> _Progress:  # noqa: PYI034
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -557,7 +557,7 @@ class _Progress:
 
     def _want(self, show: bool) -> bool:
         if self._enabled is None:
-            return show and sys.stderr.isatty()
+            return show and bars.stderr_is_terminal()
         return self._enabled
 
     def task(self, description: str, total: int, *, show: bool) -> int | None:
@@ -567,7 +567,7 @@ class _Progress:
             from rich.console import Console
             from rich.progress import Progress
 
-            self._bar = Progress(console=Console(stderr=True), transient=True)
+            self._bar = Progress(console=Console(stderr=True, force_terminal=True), transient=True)  # as check's
             self._bar.start()
         return int(self._bar.add_task(description, total=total))
 
