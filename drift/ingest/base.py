@@ -66,6 +66,9 @@ _NOT_PARSING = frozenset({"name", "path", "url", "url_env", "since"})
 #: auto progress shows a bar from this many files, or for a batch of this many cells
 PROGRESS_FILES = 5
 PROGRESS_CELLS = 200_000
+#: a wide file of more cells than this is validated and written by groups of series columns (one
+#: transaction still): peak memory follows the group, not the file
+PART_CELLS = 500_000
 
 
 @dataclass(frozen=True)
@@ -377,8 +380,9 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str,
     """Validate a batch, then claim it and store it in one transaction (see the module docstring)."""
     t0 = time.monotonic()
     store, now, bar = run.store, run.now, run.bar
-    checked: Validated = validate(raw, source, run.rules)
-    good = checked.good
+    parts = _column_parts(raw, source)
+    # one part (most files): validated before the claim, so the store's write lock is held only to write
+    first: Validated | None = validate(parts[0], source, run.rules) if len(parts) == 1 else None
     claim = claim_key(source, raw.content_hash, settings)
     with store.begin() as conn:
         batch_id = store.claim_batch(conn, source=source.name, file=raw.label, content_hash=raw.content_hash,
@@ -387,27 +391,48 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str,
         if batch_id is None:
             log.info("source %s: %s was stored by another ingest running at the same time, skipped",
                      source.name, raw.label)
-            return IngestSummary(source.name, files=1, known=len(good), skipped=1)
-        latest = None
-        if len(good):  # the keys of the incoming periods only (a daily file reads one period, not the history)
-            span = pd.to_datetime(good["period"])
-            latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist(),
-                                           (span.min().date(), span.max().date()))
-        new, n_known, n_revised = _classify(good, latest, now, run.rules.forward)
-        qrows, resolve = _quarantine_delta(conn, store, source, raw.label, checked.quarantine)
-        task = bar.task(f"{source.name}: {Path(raw.label).name}", len(new) + len(qrows),
-                        show=len(new) + len(qrows) >= PROGRESS_CELLS)
-        n_stored = len(new) - n_revised
-        if len(new):
-            inserted = store.insert_observations(conn, _observation_columns(new, source.name, batch_id, now),
-                                                 lambda k: bar.advance(task, k))
-            if inserted < len(new):
-                # another writer stored some of these keys and vintages first (the database refused the
-                # copies): count what this batch really stored
-                log.warning("source %s, %s: %d values were already stored by a concurrent writer and were "
-                            "skipped", source.name, raw.label, len(new) - inserted)
-                n_stored, n_revised = store.batch_counts(conn, batch_id)
-                n_known += len(new) - inserted
+            known = len(first.good) if first is not None else sum(len(validate(p, source, run.rules).good)
+                                                                  for p in parts)
+            return IngestSummary(source.name, files=1, known=known, skipped=1)
+        cells = int(raw.frame.shape[0]) * max(int(raw.frame.shape[1]) - 1, 1)
+        task = bar.task(f"{source.name}: {Path(raw.label).name}", cells, show=cells >= PROGRESS_CELLS)
+        n_known = n_revised = n_new = 0
+        short = False
+        qframes: list[pd.DataFrame] = []
+        # a large wide file streams through validate -> classify -> insert by groups of series columns,
+        # inside this one transaction: memory follows the group, and the file is still stored whole or not
+        for part in parts:
+            checked = first if first is not None else validate(part, source, run.rules)
+            good = checked.good
+            qframes.append(checked.quarantine)
+            latest = None
+            if len(good):  # the keys of the incoming periods only (a daily file reads one period, not the history)
+                span = pd.to_datetime(good["period"])
+                latest = store.latest_vintages(conn, pd.unique(good["series"]).tolist(),
+                                               (span.min().date(), span.max().date()))
+            new, k, r = _classify(good, latest, now, run.rules.forward)
+            del good, latest, checked
+            n_known += k
+            n_revised += r
+            n_new += len(new)
+            if len(new):
+                inserted = store.insert_observations(conn, _observation_columns(new, source.name, batch_id, now),
+                                                     lambda k: bar.advance(task, k))
+                if inserted < len(new):
+                    # another writer stored some of these keys and vintages first (the database refused the
+                    # copies): count what this batch really stored
+                    log.warning("source %s, %s: %d values were already stored by a concurrent writer and were "
+                                "skipped", source.name, raw.label, len(new) - inserted)
+                    n_known += len(new) - inserted
+                    short = True
+            del new
+        n_stored = n_new - n_revised
+        if short:
+            n_stored, n_revised = store.batch_counts(conn, batch_id)
+        # row-level records (a bad period) repeat in every group of columns: kept once
+        qall = qframes[0] if len(qframes) == 1 else pd.concat(qframes, ignore_index=True).drop_duplicates(
+            ignore_index=True)
+        qrows, resolve = _quarantine_delta(conn, store, source, raw.label, qall)
         if len(qrows):
             recs = [{"batch": batch_id, "source": source.name, "file": raw.label, "row": int(r.row),
                      "column": r.column, "raw_value": r.raw_value, "reason": r.reason, "created_at": now}
@@ -427,6 +452,27 @@ def _ingest_batch(run: _Run, source: SourceConfig, raw: RawTable, settings: str,
     return IngestSummary(source.name, files=1, stored=n_stored, known=n_known, revised=n_revised,
                          quarantined=len(qrows), quarantine_files={raw.label: len(qrows)} if len(qrows) else {},
                          quarantine_first=first, resolved=len(resolve))
+
+
+def _column_parts(raw: RawTable, source: SourceConfig) -> list[RawTable]:
+    """A wide table of more than :data:`PART_CELLS` cells as groups of its series columns (each with the
+    period / available / issued columns), so that validation and writing hold one group at a time; other
+    tables whole. A series is one column, so no key spans two groups."""
+    frame = raw.frame
+    if source.long_format or frame.size <= PART_CELLS:
+        return [raw]
+    keep = [c for c in (source.period_column, source.available_column, source.issued_column)
+            if c is not None and c in frame.columns]
+    values = [c for c in frame.columns if c not in keep]
+    per = max(1, PART_CELLS // max(len(frame), 1))
+    if len(values) <= per:
+        return [raw]
+    out = []
+    for i in range(0, len(values), per):
+        cols = keep + values[i:i + per]
+        out.append(replace(raw, frame=frame[cols], empty={c: m for c, m in raw.empty.items() if c in cols},
+                           unnamed=frozenset(u for u in raw.unnamed if u in cols)))
+    return out
 
 
 def _classify(good: pd.DataFrame, latest: pd.DataFrame | None, now: datetime,

@@ -516,5 +516,36 @@ def test_schema_4_store_gains_the_file_columns(tmp_path):
     with store.connect() as conn:
         cols = {c["name"] for c in sa.inspect(conn).get_columns("batches")}
         version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar_one()
-    assert {"file_size", "file_mtime_ns"} <= cols and int(version) == SCHEMA_VERSION == 5
+    assert {"file_size", "file_mtime_ns"} <= cols and int(version) == SCHEMA_VERSION
     store.dispose()
+
+
+# oracle: the same file ingested whole (common practice, no source); invented data
+def test_wide_file_by_column_groups_stores_what_the_whole_file_does(tmp_path, monkeypatch):
+    from drift.ingest import base
+    from drift.store import open_store
+
+    names = [f"s{i}" for i in range(7)]
+    lines = ["week," + ",".join(names)]
+    for w in range(6):
+        day = (pd.Timestamp("2024-01-01") + pd.Timedelta(weeks=w)).date().isoformat()
+        cells = [str(10 * i + w) for i in range(7)]
+        cells[2] = "x" if w == 3 else cells[2]  # a non-numeric cell
+        lines.append(f"{'not a date' if w == 4 else day}," + ",".join(cells))  # a bad period row
+    lines.append("2024-01-08," + ",".join(str(i) for i in range(7)))  # week 2 again: duplicate keys
+    write(tmp_path / "data.csv", "\n".join(lines) + "\n")
+    models = [weekly_model(n, []) for n in names]
+    results = []
+    for part_cells in (10_000, 8):  # whole, then groups of one or two series columns
+        monkeypatch.setattr(base, "PART_CELLS", part_cells)
+        st = open_store(f"sqlite:///{tmp_path / f'p{part_cells}.db'}")
+        cfg = make_config(tmp_path, [csv_source()], models)
+        (s,) = ingest_all(cfg, st, now=NOW)
+        results.append(((s.stored, s.known, s.revised, s.quarantined),
+                        obs(st).sort_values(["series", "period"]).reset_index(drop=True),
+                        quar(st).sort_values(["row", "column"]).reset_index(drop=True)))
+        st.dispose()
+    (c1, o1, q1), (c2, o2, q2) = results
+    assert c1 == c2 and c1[0] > 0 and c1[3] > 0
+    pd.testing.assert_frame_equal(o1, o2)
+    pd.testing.assert_frame_equal(q1, q2)
