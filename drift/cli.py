@@ -59,6 +59,16 @@ def _opened(config: str, need: tuple[str, ...] = ()) -> Iterator[tuple[Any, Any]
         store.dispose()
 
 
+def _name(value: str | None) -> str | None:
+    """A ``--by`` value the store keeps (:func:`drift.config.check_name`): a usage error (exit 2) otherwise."""
+    from drift.config import check_name
+
+    try:
+        return None if value is None else check_name(value)
+    except ValueError as exc:
+        raise click.BadParameter(str(exc)) from None
+
+
 def _day(value: str | None, flag: str) -> date | None:
     """A date option: YYYY-MM-DD within the dates drift can compute with (:data:`drift.config.DATE_RANGE`)."""
     from drift.config import DATE_RANGE
@@ -440,7 +450,8 @@ def refit(config: str, model: str, since: str | None, as_of: str | None, as_json
 @click.option("--since", default=None, help="Fit the new epoch on data from this day.")
 @click.option("--lag", type=int, default=None, help="relag: the driver's new lag (default: the verdict's).")
 @click.option("--driver", default=None, help="relag / drop-driver: the driver (default: the verdict's).")
-@click.option("--by", default=None, help="Who decided (default: the operating-system user).")
+@click.option("--by", default=None, callback=lambda ctx, param, v: _name(v),
+              help="Who decided (default: the operating-system user).")
 @click.option("--as-of", "as_of", default=None,
               help="The check date the decision is made at (default: the model's latest check).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
@@ -467,7 +478,8 @@ def accept(config: str, model: str, action: str, note: str | None, since: str | 
 @click.option("--action", default=None, help="Only this alert (an action such as refit, or drop-driver:SERIES).")
 @click.option("--until", "until", required=True, help="Do not send it again before this day (YYYY-MM-DD).")
 @click.option("--note", default=None, help="Why (kept with the snooze).")
-@click.option("--by", default=None, help="Who decided (default: the operating-system user).")
+@click.option("--by", default=None, callback=lambda ctx, param, v: _name(v),
+              help="Who decided (default: the operating-system user).")
 def snooze(config: str, model: str, action: str | None, until: str, note: str | None, by: str | None) -> None:
     """Wait on an open alert: not sent again until a day, unless it gets worse."""
     uday = _day(until, "--until")

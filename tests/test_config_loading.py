@@ -171,3 +171,14 @@ def test_construction_matches_pyyaml_safe_load(loader: str) -> None:
     assert data == yaml.safe_load(RICH)
     assert data["list_alias"] is data["again"]
     assert data["merged"]["frequency"] == "W" and data["merged"]["horizon"] == 3
+
+
+@pytest.mark.parametrize("args", [["snooze", "--model", "k000", "--until", "2030-01-01"],
+                                  ["accept", "--model", "k000", "--action", "refit"]])
+def test_who_decided_is_a_name_the_store_keeps(tmp_path: Path, args: list[str]) -> None:
+    """Reproduced: ``--by`` of 250 characters aborted the command on PostgreSQL with a database error (the
+    column holds 200); it is a usage error (exit 2) before anything is opened, on every store."""
+    _write(tmp_path, MINIMUM)
+    code, _, err = invoke(*args, "--config", "drift.yaml", "--by", "b" * 250, cwd=tmp_path)
+    assert code == 2 and "--by" in err and "250 characters long" in err and "Traceback" not in err, err
+    assert not (tmp_path / "drift.db").exists()
