@@ -405,3 +405,16 @@ def test_horizon_longer_than_the_tables_is_capped_not_an_error(tmp_path) -> None
     assert prepare_model(cfg, cfg.models[0], obs, moment).horizon_n == 936
     (p,), errors = analyse(cfg, cfg.models, obs, moment)
     assert not errors and p["verdict"] != "error"
+
+
+def test_alarm_after_the_horizon_says_the_guarantee_lapsed(tmp_path) -> None:
+    # invented scenario (simulation): a horizon of a quarter of the 156-week reference (39 weeks) and a
+    # large change 60 weeks into monitoring: the monitors keep running beyond the horizon, the refit says
+    # its alarm came without the false-alarm guarantee, and the alarm is marked beyond_horizon
+    cfg = config(tmp_path)
+    cfg = cfg.model_copy(update={"check": cfg.check.model_copy(update={"horizon": 0.25})})
+    p = _check(cfg, Scenario(seed=906, n_mon=80, b1_after=0.5, change_at=N_REF + 60))
+    (r,) = _acts(p, "refit")
+    assert "without the false-alarm guarantee" in r["reason"]
+    first = min((a for a in p["alarms"] if not a.get("warning")), key=lambda a: a["date"])
+    assert first["beyond_horizon"] is True and _row(first["date"]) >= N_REF + 60
