@@ -139,7 +139,8 @@ def format_table(outcome: CheckOutcome) -> str:
         if accuracy_text(m):
             lines.append(f"    {accuracy_text(m)}")
         for t in m["tests"]:
-            lines.append(f"    {t['test']:<16} stat {_n(t.get('statistic')):>8}  p {fmt_p(t.get('pvalue'), t.get('test')):>8}"
+            name = str(t["test"]) + (f" ({t['driver']})" if t.get("driver") else "")
+            lines.append(f"    {name:<34} stat {_n(t.get('statistic')):>8}  p {fmt_p(t.get('pvalue'), t.get('test')):>8}"
                          + (f"  signalled {t['date']}" if t.get("date") else ""))
     for name, err in outcome.errors.items():
         lines.append("")
