@@ -121,6 +121,9 @@ def test_demo_east_one_pair_of_numbers(demo: Any, demo_json: dict[str, Any]) -> 
                 key=lambda a: a["date"])
     assert (first["test"], first["date"]) == (refit["monitor"]["test"], refit["monitor"]["date"])
     assert moved["pvalue_change"] == min(e["pvalue_change"] for e in refit["effects"])
+    # the coefficient chart draws those same estimates beside the rolling one, split at the dated break
+    split = east["charts"]["coefficients"]["web_orders_east"]["split"]
+    assert (split["break"], split["before"], split["after"]) == (refit["since"], moved["before"], moved["after"])
 
 
 def test_demo_accuracy_is_one_window_and_one_scale(demo: Any, demo_json: dict[str, Any]) -> None:
