@@ -337,7 +337,8 @@ def drift_figures(entries: list[dict[str, Any]], freq: Frequency, change: int | 
     return {"hard": hard / max(n, 1), "refit": refit / max(n, 1), "verdicts": verdicts, "n": n}, figures
 
 
-#: issue 9's targets: (scenario, figure, bound, "max" or "min"); delays in weeks, for monthly models the same
+#: issue 9's targets: (scenario, figure, bound, "max" or "min"), judged on the point estimate (its 95 %
+#: interval over the models is printed beside it, so that a miss within sampling error reads as one); delays in weeks, for monthly models the same
 #: calendar time rounded up to whole months (3 weeks -> 1 month, 12 weeks -> 3 months)
 TARGETS = (
     ("iid", "hard", 0.05, "max"),
@@ -349,6 +350,15 @@ TARGETS = (
 )
 #: alarms dated before the change: none beyond the nominal rate (5 %)
 EARLY_MAX = 0.05
+
+
+def _interval(share: float, n: int) -> tuple[str, float, float]:
+    """The 95 % Clopper-Pearson interval of a share of n models (how far sampling alone moves it): its
+    text, low and high."""
+    from scipy import stats
+
+    ci = stats.binomtest(round(share * n), n).proportion_ci(0.95)
+    return f" (95 % interval {100 * ci.low:.1f}-{100 * ci.high:.1f} %)", float(ci.low), float(ci.high)
 
 
 def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
@@ -366,6 +376,11 @@ def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
         want = (f"{'<=' if kind == 'max' else '>='} "
                 + (f"{bound} {unit}" if fig == "median" else f"{100 * bound:.0f} %"))
         ok = v is not None and (v <= bound if kind == "max" else v >= bound)
+        if fig != "median" and v is not None:
+            text, lo, hi = _interval(v, sc[name]["drift"]["n"])
+            shown += text
+            if not ok and (lo <= bound if kind == "max" else hi >= bound):
+                shown += ", a miss within sampling error"
         label = {"hard": "hard action", "refit": "refit", "median": "median delay (any alarm)"}[fig]
         out.append((f"{name}: {label} {want}", shown, ok))
     bad = {name: r["drift"]["errors"] for name, r in sc.items() if r["drift"]["errors"]}
@@ -374,8 +389,8 @@ def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
     for name, r in sc.items():
         if r["change"] is not None:
             v = r["monitors"]["any"]["early"]
-            out.append((f"{name}: alarms dated before the change <= {100 * EARLY_MAX:.0f} %", _pct(v),
-                        v <= EARLY_MAX))
+            out.append((f"{name}: alarms dated before the change <= {100 * EARLY_MAX:.0f} %",
+                        _pct(v) + _interval(v, r["drift"]["n"])[0], v <= EARLY_MAX))
     return out
 
 
@@ -451,7 +466,7 @@ def main(argv: list[str] | None = None) -> None:
     print(markdown(res))
     print()
     for what, shown, ok in targets(res):
-        print(f"target {what}: {shown} {'met' if ok else 'NOT met'}")
+        print(f"target {what}: {'met' if ok else 'NOT met'}, {shown}")
     for s, r in res["scenarios"].items():
         print(f"{s}: verdicts {r['drift']['verdicts']}")
     print(f"ingest {res['timing']['ingest_s']:.1f} s, check {res['timing']['check_s']:.1f} s, "
