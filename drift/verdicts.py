@@ -122,10 +122,13 @@ def sort_actions(actions: list[Action]) -> list[Action]:
 
 
 def fmt_num(x: float | None, digits: int = 3) -> str:
-    """A number for a sentence: 3 significant digits, thousands separators for large values."""
-    if x is None:
+    """A number for a sentence: 3 significant digits, thousands separators for large values, powers of ten
+    beyond a billion or below 1e-4 (``1.23e+97``, not 98 digits)."""
+    if x is None or not math.isfinite(float(x)):
         return "n/a"
     ax = abs(x)
+    if ax >= 1e9 or 0 < ax < 1e-4:
+        return f"{x:.{digits}g}"
     if ax >= 1000:
         return f"{x:,.0f}"
     if ax >= 100:

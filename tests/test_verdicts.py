@@ -9,6 +9,8 @@ from __future__ import annotations
 from datetime import date
 from pathlib import Path
 
+import pytest
+
 from drift.check import CheckOutcome
 from drift.delivery import digest
 from drift.report import format_table
@@ -21,6 +23,7 @@ from drift.verdicts import (
     VERDICTS,
     Action,
     change_words,
+    fmt_num,
     fmt_p,
     label,
     overall,
@@ -97,3 +100,14 @@ def test_change_words_never_a_fall_over_100_percent() -> None:
     for b, a in ((3.53, -8.64), (1.0, -0.2), (0.4, -40.0), (2.0, 0.0), (5.0, 0.01)):
         words = change_words(b, a)
         assert "%" not in words or int(words.split("about ")[1].rstrip("%")) < 100, words
+
+
+@pytest.mark.parametrize("x, words", [
+    (1234.4, "1,234"), (123.4, "123"), (1.2345, "1.23"), (0.0, "0"), (-0.012345, "-0.0123"),
+    (1.2345e97, "1.23e+97"), (-2.5e12, "-2.5e+12"), (3.21e-7, "3.21e-07"),
+    (None, "n/a"), (float("nan"), "n/a"), (float("inf"), "n/a"),
+])
+def test_numbers_for_sentences(x, words):
+    """Huge and tiny values read as powers of ten, not 98 digits with separators (common practice, no
+    source)."""
+    assert fmt_num(x) == words
