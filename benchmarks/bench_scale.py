@@ -21,7 +21,9 @@ process and its finished children):
 ``reingest`` the same files again, unchanged (the daemon's every run);
 ``append``   the one-week file added beside the first one, ingested (the daily case);
 ``check``    ``run_check`` on the wide SQLite store as of the day after the appended week, with each
-             executor (``local``, ``process`` with 2 workers, ``dask`` on a LocalCluster of 2 workers);
+             executor (``local``, ``process`` with 2 workers, ``dask`` on a LocalCluster of 2 workers,
+             ``dask-cluster``: an existing cluster by address, a ``dask scheduler`` and two ``dask worker``
+             processes of one thread started on 127.0.0.1 before the stage, their CPU reported beside it);
 ``engine``   ``drift.engine.recursive_fit`` and ``recursive_residuals`` on the models' designs
              (M x 260 x 4: intercept, trend, two lagged drivers);
 ``yardstick`` a per-model loop of statsmodels ``RecursiveLS`` (fit) over ``--sample`` models, scaled to M.
@@ -110,7 +112,8 @@ def write_files(folder: Path, models: int) -> None:
     long(slice(WEEKS, WEEKS + 1), folder / "daily" / "long-0001.csv")
 
 
-def write_config(folder: Path, models: int, layout: str, store_url: str, executor: str = "local") -> Path:
+def write_config(folder: Path, models: int, layout: str, store_url: str, executor: str = "local",
+                 address: str | None = None) -> Path:
     ref_end = str(START + 7 * (N_REF - 1))
     if layout == "wide":
         src = "  - {name: feed, kind: csv, path: 'wide/wide-*.csv', period_column: week}\n"
@@ -118,7 +121,8 @@ def write_config(folder: Path, models: int, layout: str, store_url: str, executo
         src = ("  - {name: feed, kind: csv, path: 'long/long-*.csv', period_column: week, series_column: series, "
                "value_column: value}\n")
     ex = {"local": "executor: local", "process": "executor: process\n  workers: 2",
-          "dask": "executor: dask\n  workers: 2"}[executor]
+          "dask": "executor: dask\n  workers: 2",
+          "dask-cluster": f"executor: {{kind: dask, address: '{address}'}}"}[executor]
     text = [f"store: '{store_url}'\n", "sources:\n", src, f"check:\n  {ex}\n  chunk_size: 500\n", "models:\n"]
     text += [f"  - name: m{i:05d}\n    target: m{i:05d}_y\n    frequency: W\n    drivers:\n"
              f"      - {{series: m{i:05d}_x1, lag: 1}}\n      - {{series: m{i:05d}_x2, lag: 1}}\n"
@@ -212,7 +216,7 @@ def run_stage(args: argparse.Namespace) -> dict:
             out["result"] = f"{s.stored} new, {s.known} known, {s.skipped} skipped"
         elif stage == "check":
             url = _store_url("sqlite", folder, "wide")
-            path = write_config(folder, args.models, "wide", url, args.executor)
+            path = write_config(folder, args.models, "wide", url, args.executor, args.address)
             tc = time.perf_counter()
             cfg = load_config(path)
             out["config_s"] = round(time.perf_counter() - tc, 2)
@@ -305,6 +309,73 @@ def _child(args: argparse.Namespace, stage: str, **kw: str) -> dict:
     return row
 
 
+class DaskCluster:
+    """A ``dask scheduler`` and two one-thread ``dask worker`` processes on 127.0.0.1 (the scheduler picks
+    its port and writes it to a scheduler file); shut down through the scheduler, killed if they linger."""
+
+    def __init__(self, folder: Path, workers: int = 2) -> None:
+        self.folder, self.workers = folder, workers
+        self.procs: list[subprocess.Popen] = []
+        self.address = ""
+
+    def __enter__(self) -> DaskCluster:  # noqa: PYI034
+        import psutil
+
+        self.folder.mkdir(parents=True, exist_ok=True)
+        sfile = self.folder / "scheduler.json"
+        env = {**os.environ, "PYTHONPATH": os.pathsep.join(
+            p for p in (str(Path(__file__).resolve().parents[1]), os.environ.get("PYTHONPATH")) if p)}
+        quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL, "env": env}
+        self.procs.append(subprocess.Popen(["dask", "scheduler", "--host", "127.0.0.1", "--port", "0",
+                                            "--no-dashboard", "--scheduler-file", str(sfile)], **quiet))
+        t0 = time.monotonic()
+        while not sfile.exists() and time.monotonic() - t0 < 60:
+            time.sleep(0.2)
+        self.address = json.loads(sfile.read_text())["address"]
+        for i in range(self.workers):
+            self.procs.append(subprocess.Popen(
+                ["dask", "worker", "--scheduler-file", str(sfile), "--host", "127.0.0.1", "--nthreads", "1",
+                 "--no-dashboard", "--name", f"w{i}", "--local-directory", str(self.folder / f"w{i}")], **quiet))
+        from distributed import Client
+
+        with Client(self.address, timeout=60) as client:
+            client.wait_for_workers(self.workers, timeout=120)
+        self._ps = [psutil.Process(p.pid) for p in self.procs]
+        self._cpu0 = self._tree_cpu()
+        return self
+
+    def _tree_cpu(self) -> float:
+        import psutil
+
+        total = 0.0
+        for proc in self._ps:
+            try:
+                for q in (proc, *proc.children(recursive=True)):
+                    t = q.cpu_times()
+                    total += t.user + t.system
+            except psutil.Error:
+                pass
+        return total
+
+    def cpu_s(self) -> float:
+        return self._tree_cpu() - self._cpu0
+
+    def __exit__(self, *exc: object) -> None:
+        try:
+            from distributed import Client
+
+            with Client(self.address, timeout=30) as client:
+                client.shutdown()
+        except Exception:  # noqa: BLE001, S110 - the processes are killed below
+            pass
+        for p in self.procs:
+            try:
+                p.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
+
+
 def _load() -> str:
     return "/".join(f"{x:.1f}" for x in os.getloadavg())
 
@@ -372,6 +443,13 @@ def drive(args: argparse.Namespace, models: int) -> list[tuple[str, dict]]:
                 if not (folder / "wide" / "wide-0001.csv").exists():
                     _child(args, "append", backend="sqlite", layout="wide")
                 for ex in args.executors:
+                    if ex == "dask-cluster":
+                        with DaskCluster(folder / "dask") as cluster:
+                            row = _child(args, "check", executor=ex, address=cluster.address)
+                            row["result"] = (f"{row.get('result', '')}; scheduler and workers (outside the "
+                                             f"tree) {cluster.cpu_s():.1f} s CPU")
+                        show("check, dask by address (2 workers)", row)
+                        continue
                     show(f"check, {ex}" + (" (2 workers)" if ex != "local" else ""),
                          _child(args, "check", executor=ex))
             for stage in ("engine", "yardstick"):
@@ -424,8 +502,8 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--stages", nargs="+", default=list(STAGES), choices=STAGES)
     ap.add_argument("--backends", nargs="+", default=["sqlite", "postgres"], choices=["sqlite", "postgres"])
     ap.add_argument("--layouts", nargs="+", default=["wide", "long"], choices=["wide", "long"])
-    ap.add_argument("--executors", nargs="+", default=["local", "process", "dask"],
-                    choices=["local", "process", "dask"])
+    ap.add_argument("--executors", nargs="+", default=["local", "process", "dask", "dask-cluster"],
+                    choices=["local", "process", "dask", "dask-cluster"])
     ap.add_argument("--sample", type=int, default=100, help="models in the RecursiveLS yardstick loop")
     ap.add_argument("--timeout", type=float, default=1200, help="seconds before a stage is stopped")
     ap.add_argument("--profile", action="store_true", help="cProfile one local check instead")
@@ -436,6 +514,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--backend", default="sqlite", help=argparse.SUPPRESS)
     ap.add_argument("--layout", default="wide", help=argparse.SUPPRESS)
     ap.add_argument("--executor", default="local", help=argparse.SUPPRESS)
+    ap.add_argument("--address", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.stage:
         args.models = args.models[0]

@@ -1,0 +1,180 @@
+"""drift against an existing Dask cluster: `drift check` with ``check.executor: {kind: dask, address: ...}``.
+
+A ``dask scheduler`` and two ``dask worker`` processes (one thread each) are started on 127.0.0.1 with the
+``dask`` command-line programs, the scheduler choosing its own free port (it writes its address to a
+scheduler file). The workers run with a guard that refuses and records any SQLite connection, so the test
+shows that they only compute while the coordinator (the `drift check` process) alone reads and writes the
+store. The check through the cluster, configured either way (the mapping or ``dask_scheduler``), gives the
+JSON and the stored verdicts and payloads of the local executor. Invented scenario: the models of
+``tests/test_executor.py`` (every second model's first-driver coefficient falls from 2.0 to 0.8). Oracle:
+the local executor (common practice, no source).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import sqlalchemy as sa
+
+from tests.test_executor import N_REF, START, as_of, make_obs
+
+pytestmark = pytest.mark.slow
+
+N_MODELS = 6
+ROOT = Path(__file__).resolve().parents[1]
+
+# imported first by every Python process of the workers (their PYTHONPATH starts with its folder)
+GUARD = """\
+import os
+import sqlite3
+import sqlite3.dbapi2
+
+
+def _refuse(*args, **kwargs):
+    with open(os.environ["DRIFT_TEST_DB_MARK"], "a", encoding="utf-8") as f:
+        f.write(f"pid {os.getpid()} opened {args[:1]!r}\\n")
+    raise sqlite3.OperationalError("a Dask worker must not open a database")
+
+
+sqlite3.connect = sqlite3.dbapi2.connect = _refuse
+"""
+
+
+class Cluster:
+    def __init__(self, address: str, mark: Path, procs: list[subprocess.Popen[bytes]]) -> None:
+        self.address, self.mark, self.procs = address, mark, procs
+
+
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
+    if shutil.which("dask") is None:
+        pytest.skip("the dask command-line program is not installed")
+    pytest.importorskip("distributed")
+    from distributed import Client
+
+    d = tmp_path_factory.mktemp("dask")
+    (d / "guard").mkdir()
+    (d / "guard" / "sitecustomize.py").write_text(GUARD, encoding="utf-8")
+    mark = d / "db-opened.txt"
+    env = {**os.environ, "DRIFT_TEST_DB_MARK": str(mark),
+           "PYTHONPATH": os.pathsep.join(p for p in (str(d / "guard"), str(ROOT), os.environ.get("PYTHONPATH"))
+                                         if p)}
+    sfile = d / "scheduler.json"
+    logs = [open(d / f"{name}.log", "wb") for name in ("scheduler", "w0", "w1")]  # noqa: SIM115 - closed below
+    procs = [subprocess.Popen(["dask", "scheduler", "--host", "127.0.0.1", "--port", "0", "--no-dashboard",
+                               "--scheduler-file", str(sfile)], env=env, stdout=logs[0], stderr=subprocess.STDOUT)]
+    try:
+        deadline = time.monotonic() + 60
+        while not sfile.exists():
+            assert procs[0].poll() is None, (d / "scheduler.log").read_text()
+            assert time.monotonic() < deadline, "the scheduler wrote no scheduler file within 60 s"
+            time.sleep(0.2)
+        address = json.loads(sfile.read_text())["address"]
+        assert address.startswith("tcp://127.0.0.1:")
+        for i in range(2):
+            procs.append(subprocess.Popen(
+                ["dask", "worker", "--scheduler-file", str(sfile), "--host", "127.0.0.1", "--nthreads", "1",
+                 "--no-dashboard", "--name", f"w{i}", "--local-directory", str(d / f"w{i}")],
+                env=env, stdout=logs[i + 1], stderr=subprocess.STDOUT))
+        with Client(address, timeout=60) as client:
+            client.wait_for_workers(2, timeout=120)
+        yield Cluster(address, mark, procs)
+        # clean shutdown: the scheduler tells its workers to close, and every process ends by itself
+        with Client(address, timeout=60) as client:
+            client.shutdown()
+        for p in procs:
+            p.wait(timeout=60)
+        assert [p.poll() for p in procs] == [0, 0, 0], "the cluster did not end cleanly"
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.wait()
+        for f in logs:
+            f.close()
+
+
+@pytest.fixture(scope="module")
+def project(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    """A wide CSV of the scenario's series, ingested once into ``ingested.db`` (copied for each check)."""
+    d = tmp_path_factory.mktemp("project")
+    obs = make_obs(N_MODELS)
+    wide = obs.pivot(index="period", columns="series", values="value")
+    wide.index = wide.index.strftime("%Y-%m-%d")
+    (d / "data").mkdir()
+    wide.rename_axis("week").to_csv(d / "data" / "feed.csv")
+    write_project_config(d, "ingested.db", "  executor: local\n")
+    r = drift("ingest", "--config", "drift-ingested.db.yaml", cwd=d)
+    assert r.returncode == 0, r.stderr
+    return d, as_of().date().isoformat()
+
+
+def write_project_config(d: Path, store: str, check: str) -> Path:
+    ref_end = (START + pd.Timedelta(weeks=N_REF - 1)).date()
+    models = "".join(f"""\
+  - name: m{i}
+    target: y{i}
+    frequency: W
+    drivers:
+      - {{series: a{i}, lag: 1}}
+      - {{series: b{i}, lag: 1}}
+    reference: {{start: {START.date()}, end: {ref_end}}}
+""" for i in range(N_MODELS))
+    path = d / f"drift-{store}.yaml"
+    path.write_text(f"store: sqlite:///{store}\nsources:\n  - {{name: feed, kind: csv, path: data/feed.csv, "
+                    f"period_column: week}}\nmodels:\n{models}check:\n  chunk_size: 1\n{check}", encoding="utf-8")
+    return path
+
+
+def drift(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH")) if p)}
+    return subprocess.run([sys.executable, "-m", "drift.cli", *args], capture_output=True, text=True, cwd=cwd,
+                          env=env, timeout=600, check=False)
+
+
+def check(d: Path, day: str, store: str, check_yaml: str) -> tuple[dict, list[tuple[str, str, str]], str]:
+    """`drift check --json` on a copy of the ingested store; its JSON, stored verdicts and stderr."""
+    shutil.copy(d / "ingested.db", d / store)
+    write_project_config(d, store, check_yaml)
+    r = drift("--log-level", "info", "check", "--config", f"drift-{store}.yaml", "--as-of", day, "--json",
+              "--no-deliver", cwd=d)
+    assert r.returncode == 0, r.stderr
+    eng = sa.create_engine(f"sqlite:///{d / store}")
+    with eng.connect() as conn:
+        rows = [tuple(r) for r in conn.execute(sa.text("select model, verdict, payload from verdicts order by id"))]
+    eng.dispose()
+    return json.loads(r.stdout), rows, r.stderr
+
+
+def test_existing_cluster_gives_the_local_verdicts_and_workers_never_open_the_store(
+        cluster: Cluster, project: tuple[Path, str]) -> None:
+    from distributed import Client
+
+    d, day = project
+    local, local_rows, _ = check(d, day, "local.db", "  executor: local\n")
+    assert local["failed"] == 0 and len(local_rows) == N_MODELS
+    assert {m["verdict"] for m in local["models"]} >= {"keep", "refit"}  # both kinds of model are there
+    with Client(cluster.address, timeout=60) as client:
+        before = client.run(lambda dask_worker: dask_worker.state.executed_count)
+        guarded = client.run(lambda: __import__("sqlite3").connect.__name__)
+    assert sorted(guarded.values()) == ["_refuse", "_refuse"]  # the guard is in force in both workers
+    for store, yaml in (("mapping.db", f"  executor: {{kind: dask, address: '{cluster.address}'}}\n"),
+                        ("synonym.db", f"  executor: dask\n  dask_scheduler: {cluster.address}\n")):
+        got, rows, err = check(d, day, store, yaml)
+        assert f"Dask scheduler {cluster.address}: 2 worker(s)" in err, err  # the cluster, not a LocalCluster
+        assert got == local, store
+        assert rows == local_rows, store  # the same verdicts and payloads (charts included), in the same order
+    with Client(cluster.address, timeout=60) as client:
+        after = client.run(lambda dask_worker: dask_worker.state.executed_count)
+    ran = {w: after[w] - before.get(w, 0) for w in after}
+    assert len(ran) == 2 and sum(ran.values()) >= 2 * N_MODELS and all(n > 0 for n in ran.values()), ran
+    assert not cluster.mark.exists(), cluster.mark.read_text()  # no worker process tried to open a database
