@@ -1,0 +1,62 @@
+"""Accuracy of the as-deployed forecasts.
+
+Takes a model's design and its one-step errors; gives the ``accuracy`` block of the payload: MAE, RMSE,
+MASE and bias of the model and of the seasonal-naive baseline scored on the same periods, on one MASE
+scale from the reference period. Used by :mod:`drift.checking.screening` (drift's recursive fit) and
+:mod:`drift.checking.production` (the production model's own errors).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from drift.panel import Design
+
+
+def _seasonal_naive(y: np.ndarray, s: float | None) -> np.ndarray:
+    lag = round(s) if s else 1
+    out = np.full_like(y, np.nan)
+    out[lag:] = y[:-lag]
+    return out
+
+
+def _mase_scale(d: Design) -> dict[str, Any] | None:
+    """The MASE denominator: the mean absolute seasonal-naive error (one season back) over the reference
+    period, with the span and count it covers; None when it cannot be formed or is zero."""
+    base = _seasonal_naive(d.y, d.season_length)
+    err = np.abs(d.y[: d.n_ref] - base[: d.n_ref])
+    ok = np.flatnonzero(np.isfinite(err))
+    if ok.size == 0 or float(err[ok].mean()) <= 0:
+        return None
+    return {"mae": round(float(err[ok].mean()), 4), "n": int(ok.size),
+            "start": d.periods[int(ok[0])].date().isoformat(), "end": d.periods[int(ok[-1])].date().isoformat()}
+
+
+def _accuracy_block(d: Design, err: np.ndarray, mon: np.ndarray, window: int) -> dict[str, Any]:
+    """The as-deployed accuracy of one model: its one-step errors ``err`` and those of the seasonal-naive
+    baseline scored on the *same* periods (the last ``window`` rows of the monitored span ``mon`` where the
+    model has an error), MASE of both on one scale (:func:`_mase_scale`), and the window as used."""
+    base = _seasonal_naive(d.y, d.season_length)
+    e_model = np.where(mon, err, np.nan)[-window:]
+    scored = np.isfinite(e_model)
+    e_base = np.where(scored, (d.y - base)[-window:], np.nan)
+    scale = _mase_scale(d)
+    s = scale["mae"] if scale else None
+    rows = np.flatnonzero(scored) + (d.n - min(window, d.n))
+    return {"model": _accuracy(e_model, s), "baseline": _accuracy(e_base, s),
+            "window": int(min(window, int(mon.sum()))),
+            "start": d.periods[int(rows[0])].date().isoformat() if rows.size else None,
+            "end": d.periods[int(rows[-1])].date().isoformat() if rows.size else None,
+            "scale": scale}
+
+
+def _accuracy(err: np.ndarray, scale: float | None) -> dict[str, Any]:
+    e = err[np.isfinite(err)]
+    if e.size == 0:
+        return {"mae": None, "rmse": None, "mase": None, "bias": None, "n": 0}
+    mae = float(np.mean(np.abs(e)))
+    return {"mae": round(mae, 4), "rmse": round(float(np.sqrt(np.mean(e ** 2))), 4),
+            "mase": round(mae / scale, 4) if scale else None, "bias": round(float(np.mean(e)), 4),
+            "n": int(e.size)}

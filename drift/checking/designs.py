@@ -1,0 +1,209 @@
+"""Designs: a model's observations → its as-of design, prewhitened and validated.
+
+Takes the config, a model and the observations known at the check's moment; gives the model's context
+(``_Ctx``) with the design (:func:`drift.panel.build_design`), the design filtered by the model's error
+model (``errors: ar(p)/arma``), the monitoring horizon in periods, or raises a ``DriftError`` that says
+why this model's data cannot be checked (missing series, values beyond what can be computed with, too
+few reference rows, a constant target, collinear regressors), before it is batched with others.
+"""
+
+from __future__ import annotations
+
+from datetime import date, datetime, timedelta
+
+import numpy as np
+import pandas as pd
+
+from drift import engine
+from drift.checking.context import _Ctx
+from drift.config import MAX_ABS_VALUE, Config, ModelConfig
+from drift.engine.tables import family as _fam_table
+from drift.engine.tables import monitoring as _mon_table
+from drift.exceptions import DriftError, InsufficientDataError
+from drift.panel import Design, build_design, shift_periods
+from drift.verdicts import fmt_num
+
+
+def prepare_model(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: datetime) -> _Ctx:
+    """The model's design as the check builds it at ``as_of`` (prewhitened and validated), for the
+    commands that fit proposals on it (:mod:`drift.refit`).
+
+    Raises
+    ------
+    DriftError : the model cannot be checked with these data (the reason says why).
+    """
+    by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+    return _prepare(cfg, model, by_series, as_of, (as_of - timedelta(microseconds=1)).date())
+
+
+def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as_of: datetime,
+             day: date) -> _Ctx:
+    """The model's design, prewhitened and validated (:func:`_validate`).
+
+    Raises
+    ------
+    DriftError : the model cannot be checked with these data; the message says why and what to do.
+    """
+    absent = [s for s in dict.fromkeys(m.series) if s not in by_series]
+    which = ", ".join(repr(a) for a in absent)
+    if absent and len(absent) == len(set(m.series)):
+        raise DriftError(
+            f"model '{m.name}': none of its series ({which}) has a value available by the end of "
+            f"{day.isoformat()} (UTC): the check date is before the data, or the series were never "
+            "ingested (drift ingest reports what it stored)")
+    if m.reference.end > day:
+        raise DriftError(
+            f"model '{m.name}': its reference period ends {m.reference.end.isoformat()}, after the check date "
+            f"{day.isoformat()}: the deployed model cannot have been fitted on it yet; set reference.end to "
+            "the last period the deployed model was fitted on, or check as of a later date")
+    if absent:
+        raise DriftError(
+            f"model '{m.name}': no observations of {which} are in the store as of {day.isoformat()}; "
+            "check the source and the series names (drift ingest reports what it stored)")
+    extra = [by_series[m.forecast_series]] if m.forecast_series in by_series else []  # logged forecasts
+    mobs = pd.concat([by_series[s] for s in dict.fromkeys(m.series)] + extra, ignore_index=True)
+    d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
+    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
+    c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
+    c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
+    c.horizon_n = _horizon_periods(cfg, m, d.n_ref)
+    _validate(c)
+    return c
+
+
+def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None, float]:
+    """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``).
+
+    Returns the filtered (y, X), a description of the error model and the extra variance its estimation
+    adds to the log of the monitoring scale (see :meth:`drift.engine.arma.ErrorModel.log_scale_variance`).
+    The AR(1) estimate is bias-corrected for the model's own regressors (trend and season bias it down).
+    """
+    p, q = model.error_order
+    if p == 0 and q == 0:
+        return d.y, d.X, None, 0.0
+    ref = slice(0, d.n_ref)
+    ok = np.isfinite(d.y[ref]) & np.isfinite(d.X[ref]).all(axis=1)
+    if ok.sum() <= d.k + p + q + 2:
+        raise InsufficientDataError(f"model '{model.name}': error model {model.errors}", d.k + p + q + 3,
+                                    int(ok.sum()))
+    b, *_ = np.linalg.lstsq(d.X[ref][ok], d.y[ref][ok], rcond=None)
+    resid = np.where(ok, d.y[ref] - np.where(ok[:, None], d.X[ref], 0.0) @ b, np.nan)
+    em = engine.fit_error_model(resid, model.errors, X=d.X[ref])
+    yt, Xt = engine.prewhiten(d.y, d.X, em)
+    extra = float(np.atleast_1d(em.log_scale_variance())[0])
+    par = em.params()
+    desc = model.errors + " with " + ", ".join(
+        f"{n}{i + 1} = {v:.2f}" for n, arr in (("phi", par["ar"]), ("theta", par["ma"])) for i, v in
+        enumerate(np.atleast_1d(arr)))
+    return np.asarray(yt, float), np.asarray(Xt, float), desc, extra if np.isfinite(extra) else 0.0
+
+
+def _horizon_periods(cfg: Config, m: ModelConfig, n_ref: int) -> int:
+    """``check.horizon`` in the model's periods, capped at what the simulated tables cover (6 times the
+    reference length and 1,040 periods); a capped horizon is said wherever the horizon is quoted
+    (:func:`_horizon_words`)."""
+    n = cfg.check.horizon_periods(m.frequency, n_ref)
+    return min(n, _horizon_limit(n_ref))
+
+
+def _horizon_limit(n_ref: int) -> int:
+    return max(1, min(int(_mon_table.HORIZONS[-1] * n_ref), int(_fam_table.N_GRID[-1])))
+
+
+#: smallest size of a series drift computes with: a target or driver whose values on the usable reference
+#: rows are all below this in size (but not all zero) is out of scale the other way from
+#: :data:`~drift.config.MAX_ABS_VALUE`: squares of values below ~1.5e-154 underflow to 0 in double
+#: precision, so least squares would see an all-zero column (common practice, no source)
+MIN_SCALE = 1e-100
+
+
+#: a column whose part orthogonal to the columns before it is below this fraction of its own size (on the
+#: usable reference rows) is taken as collinear with them: least squares in double precision cannot
+#: separate their effects (condition number beyond ~1e7; common practice, no source)
+COLLINEAR_RTOL = 1e-7
+
+
+def _validate(c: _Ctx) -> None:
+    """Data problems of one model, found before it is batched with others.
+
+    Raises
+    ------
+    InsufficientDataError : fewer usable reference rows than the fit needs (regressors + 3); the hint
+        says which series leave rows unusable.
+    DriftError : a value too large to compute with (named with its period), a constant target, or
+        collinear regressors on the reference rows (named, with the linear relation between them).
+    """
+    d, m = c.design, c.model
+    with np.errstate(invalid="ignore"):
+        huge_y = np.flatnonzero(np.abs(d.y) > MAX_ABS_VALUE)
+        huge_x = np.argwhere(np.abs(d.X) > MAX_ABS_VALUE)
+    if huge_y.size or huge_x.size:
+        if huge_y.size:
+            t = int(huge_y[0])
+            what = (f"the target '{m.target}' has the value {float(d.y[t]):.6g} for the period starting "
+                    f"{d.periods[t].date().isoformat()}")
+        else:
+            t, j = (int(i) for i in huge_x[0])
+            what = f"{d.columns[j]} has the value {float(d.X[t, j]):.6g} in the row of {d.periods[t].date().isoformat()}"
+            for s, col in d.driver_columns.items():
+                if col == j:
+                    lag = d.lags.get(s, 0)
+                    when = shift_periods(d.periods[t:t + 1], m.frequency, lag)[0]
+                    what = (f"the driver '{s}' has the value {float(d.X[t, j]):.6g} for the period starting "
+                            f"{when.date().isoformat()}")
+        raise DriftError(f"model '{m.name}': {what}: beyond {MAX_ABS_VALUE:.0e} in size, too large to compute "
+                         "with (its squares overflow); check the source")
+    ref = slice(0, d.n_ref)
+    ok = np.isfinite(c.y[ref]) & np.isfinite(c.X[ref]).all(axis=1)
+    _check_scale(c, ok)
+    need = d.k + 3
+    if c.n_ref_ok < need:
+        raw_ok = {"target " + repr(m.target): np.isfinite(d.y[ref])}
+        raw_ok.update({d.columns[j]: np.isfinite(d.X[ref, j]) for j in range(d.k)})
+        gaps = sorted(((int((~v).sum()), name) for name, v in raw_ok.items() if (~v).any()), reverse=True)
+        where = ("; rows without a value: " + ", ".join(f"{name} {n}" for n, name in gaps[:4])) if gaps else ""
+        raise InsufficientDataError(
+            f"model '{m.name}': reference fit ({m.reference.start.isoformat()} to {m.reference.end.isoformat()}, "
+            f"{d.n_ref} periods)", need, c.n_ref_ok,
+            f"{d.k} regressors ({', '.join(d.columns)}){where}")
+    y_ok = d.y[ref][np.isfinite(d.y[ref])]
+    if y_ok.size and np.ptp(y_ok) == 0:
+        raise DriftError(
+            f"model '{m.name}': the target '{m.target}' is constant ({fmt_num(float(y_ok[0]))}) over the "
+            f"reference period: there is no variation for its drivers to explain; check the source")
+    Xr = d.X[ref][ok]
+    norms = np.linalg.norm(Xr, axis=0)
+    zero = [d.columns[j] for j in range(d.k) if norms[j] == 0]
+    if zero:
+        raise DriftError(
+            f"model '{m.name}': the column(s) {', '.join(zero)} are zero on every usable reference row: their "
+            "effect cannot be estimated; check the driver's series and lag")
+    r = np.abs(np.diag(np.linalg.qr(Xr / norms, mode="r")))
+    dep = np.flatnonzero(r < COLLINEAR_RTOL)
+    if dep.size:
+        j = int(dep[0])
+        indep = [i for i in range(j) if i not in set(dep.tolist())]
+        b, *_ = np.linalg.lstsq(Xr[:, indep], Xr[:, j], rcond=None)
+        terms = [f"{fmt_num(float(bi))} × {d.columns[i]}" for i, bi in zip(indep, b)
+                 if abs(bi) * norms[i] > 1e-6 * norms[j]]
+        raise DriftError(
+            f"model '{m.name}': the regressors are collinear on the {int(ok.sum())} usable reference rows: "
+            f"{d.columns[j]} = {' + '.join(terms) or '0'}; their effects cannot be told apart. Drop one of "
+            "these drivers (or change its lag), or check the source")
+
+
+def _check_scale(c: _Ctx, ok: np.ndarray) -> None:
+    """DriftError when the target or a driver is, on the usable reference rows, not all zero but nowhere as
+    large as :data:`MIN_SCALE` (its squares underflow: the fit would read it as zero)."""
+    d, m = c.design, c.model
+    named = [(f"the target '{m.target}'", d.y[: d.n_ref][ok])]
+    named += [(f"the driver '{s}'", d.X[: d.n_ref, j][ok]) for s, j in d.driver_columns.items()]
+    for what, v in named:
+        if not v.size:
+            continue
+        top = float(np.max(np.abs(v)))
+        if 0 < top < MIN_SCALE:
+            raise DriftError(
+                f"model '{m.name}': {what} is too small in scale to compute with: its largest value on the "
+                f"usable reference rows is {top:.3g} in size, below {MIN_SCALE:.0e} (squares of such values "
+                "underflow to 0); rescale the series (another unit) or check the source")
