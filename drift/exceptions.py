@@ -10,7 +10,8 @@ Hierarchy::
     ├── InsufficientDataError       data cannot support a test: says needed vs available  (also a ValueError)
     ├── DeliveryError               a channel failed to deliver (kept pending, retried later)
     ├── DecisionError               a refit/accept/snooze that does not fit the store's state  -> CLI exit 2
-    └── LockError                   another daemon holds the store
+    ├── LockError                   another daemon holds the store
+    └── ClusterError                the Dask cluster at check.executor.address answers not, or has no worker
 
 Bad *arguments* to library functions raise the built-in ``ValueError`` / ``TypeError`` naming the
 parameter and the allowed values; these classes are for conditions a user has to act on.
@@ -117,3 +118,8 @@ class DecisionError(DriftError):
 
 class LockError(DriftError):
     """Another drift daemon holds this store."""
+
+
+class ClusterError(DriftError):
+    """The Dask cluster named by ``check.executor.address`` (``check.dask_scheduler``) cannot run the check:
+    no scheduler answers there, or it has no worker. Nothing was checked."""

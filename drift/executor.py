@@ -61,6 +61,7 @@ import numpy as np
 import pandas as pd
 
 from drift.config import Config, ModelConfig
+from drift.exceptions import ClusterError
 
 log = logging.getLogger(__name__)
 
@@ -80,6 +81,8 @@ THREAD_ENV = {
 }
 #: workers of a LocalCluster started for the run when ``check.workers`` is unset
 DEFAULT_DASK_WORKERS = 2
+#: how long a check waits for the first worker of an existing cluster that has none yet
+WORKER_WAIT_SECONDS = 60
 
 
 # ------------------------------------------------------------------------------------------------ splitting
@@ -224,6 +227,9 @@ def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame | L
         when ``func`` is not callable.
     ImportError
         for the dask executor when ``dask.distributed`` is not installed (``pip install drift[dask]``).
+    ClusterError
+        for the dask executor with an address, when no scheduler answers there or it has no worker within
+        :data:`WORKER_WAIT_SECONDS`.
     """
     if not callable(func):
         raise TypeError(f"func must be the chunk function (e.g. drift.check.analyse), got {func!r}")
@@ -340,9 +346,9 @@ def _run_dask(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
                                env={k: v for k, v in THREAD_ENV.items() if k not in os.environ})
         log.info("started a local Dask cluster with %d worker(s)", workers or DEFAULT_DASK_WORKERS)
     try:
-        with Client(cluster if cluster is not None else address) as client:
+        with _connect(Client, cluster if cluster is not None else address) as client:
             if cluster is None:
-                log.info("Dask scheduler %s: %d worker(s)", address, len(client.scheduler_info()["workers"]))
+                _wait_for_a_worker(client, address)
             slots = max(1, sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values()))
             cfg_f = client.scatter(cfg, broadcast=True)
 
@@ -353,6 +359,35 @@ def _run_dask(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
     finally:
         if cluster is not None:
             cluster.close()
+
+
+_KEY = "check.executor.address (check.dask_scheduler)"
+
+
+def _connect(client_cls: Any, target: Any) -> Any:
+    """A client of the LocalCluster, or of the scheduler at an address; an unreachable one is a ClusterError."""
+    if not isinstance(target, str):
+        return client_cls(target)
+    try:
+        return client_cls(target)
+    except (OSError, TimeoutError) as exc:
+        raise ClusterError(f"{_KEY}: no Dask scheduler answers at {target} ({type(exc).__name__}: {exc}); start "
+                           f"one there with `dask scheduler` or correct the address") from exc
+
+
+def _wait_for_a_worker(client: Any, address: str) -> None:
+    """Wait up to :data:`WORKER_WAIT_SECONDS` for a first worker: chunks sent to a cluster without one would
+    wait for ever."""
+    n = len(client.scheduler_info()["workers"])
+    if n == 0:
+        log.warning("Dask scheduler %s has no worker yet; waiting up to %s s for one", address, WORKER_WAIT_SECONDS)
+        try:
+            client.wait_for_workers(1, timeout=WORKER_WAIT_SECONDS)
+        except (OSError, TimeoutError) as exc:
+            raise ClusterError(f"{_KEY}: the Dask scheduler at {address} has no worker (waited "
+                               f"{WORKER_WAIT_SECONDS} s); start them with `dask worker {address}`") from exc
+        n = len(client.scheduler_info()["workers"])
+    log.info("Dask scheduler %s: %d worker(s)", address, n)
 
 
 def _log_failure(i: int, n: int, chunk: Sequence[ModelConfig], exc: BaseException) -> None:

@@ -7,7 +7,8 @@ shows that they only compute while the coordinator (the `drift check` process) a
 store. The check through the cluster, configured either way (the mapping or ``dask_scheduler``), gives the
 JSON and the stored verdicts and payloads of the local executor. Invented scenario: the models of
 ``tests/test_executor.py`` (every second model's first-driver coefficient falls from 2.0 to 0.8). Oracle:
-the local executor (common practice, no source).
+the local executor (common practice, no source). A scheduler that does not answer, or answers without
+workers, is an error naming the configuration key, not a hang.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import socket
 import subprocess
 import sys
 import time
@@ -25,9 +27,12 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
+from drift import executor
+from drift.check import analyse
+from drift.config import Config
+from drift.exceptions import ClusterError
+from drift.executor import run_chunks
 from tests.test_executor import N_REF, START, as_of, make_obs
-
-pytestmark = pytest.mark.slow
 
 N_MODELS = 6
 ROOT = Path(__file__).resolve().parents[1]
@@ -155,6 +160,7 @@ def check(d: Path, day: str, store: str, check_yaml: str) -> tuple[dict, list[tu
     return json.loads(r.stdout), rows, r.stderr
 
 
+@pytest.mark.slow
 def test_existing_cluster_gives_the_local_verdicts_and_workers_never_open_the_store(
         cluster: Cluster, project: tuple[Path, str]) -> None:
     from distributed import Client
@@ -178,3 +184,35 @@ def test_existing_cluster_gives_the_local_verdicts_and_workers_never_open_the_st
     ran = {w: after[w] - before.get(w, 0) for w in after}
     assert len(ran) == 2 and sum(ran.values()) >= 2 * N_MODELS and all(n > 0 for n in ran.values()), ran
     assert not cluster.mark.exists(), cluster.mark.read_text()  # no worker process tried to open a database
+
+
+def with_address(address: str) -> Config:
+    cfg = Config.model_validate({"models": [{"name": "m0", "target": "y0", "frequency": "W",
+                                             "drivers": [{"series": "a0", "lag": 1}],
+                                             "reference": {"start": "2021-01-04", "end": "2023-12-25"}}]})
+    chk = cfg.check.model_validate({**cfg.check.model_dump(), "executor": {"kind": "dask", "address": address}})
+    return cfg.model_copy(update={"check": chk})
+
+
+def test_a_scheduler_that_does_not_answer_is_named() -> None:
+    pytest.importorskip("distributed")
+    import dask
+
+    with socket.socket() as sock:  # a port nobody listens on once closed
+        sock.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{sock.getsockname()[1]}"
+    cfg = with_address(address)
+    with dask.config.set({"distributed.comm.timeouts.connect": "2s"}), \
+            pytest.raises(ClusterError, match=rf"check.executor.address.*{address}.*dask scheduler"):
+        run_chunks(cfg, cfg.models, make_obs(1), as_of(), func=analyse)
+
+
+def test_a_scheduler_without_workers_is_an_error_not_a_hang(monkeypatch: pytest.MonkeyPatch) -> None:
+    pytest.importorskip("distributed")
+    from distributed import LocalCluster
+
+    monkeypatch.setattr(executor, "WORKER_WAIT_SECONDS", 1)
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=None) as lc:
+        cfg = with_address(lc.scheduler_address)
+        with pytest.raises(ClusterError, match=r"no worker.*dask worker"):
+            run_chunks(cfg, cfg.models, make_obs(1), as_of(), func=analyse)
