@@ -8,7 +8,6 @@ the JSON contract of ``drift check --json`` plus a ``charts`` block for the dige
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Sequence
 from dataclasses import MISSING, dataclass, field, fields
 from datetime import date, datetime, time, timedelta, timezone
@@ -19,9 +18,15 @@ import pandas as pd
 from scipy import stats
 
 from drift import engine
-
-# the stages (drift.checking); every name drift.check offered before the split is still importable here
 from drift.checking.accuracy import _accuracy, _accuracy_block, _mase_scale, _seasonal_naive  # noqa: F401
+from drift.checking.actions import (  # noqa: F401
+    _date_break,
+    _horizon_words,
+    _refit_action,
+    _relationship_actions,
+    _sentence_start,
+    _test_words,
+)
 from drift.checking.context import _Ctx, _failure, _list, _num
 from drift.checking.designs import (  # noqa: F401
     COLLINEAR_RTOL,
@@ -34,6 +39,7 @@ from drift.checking.designs import (  # noqa: F401
     _validate,
     prepare_model,
 )
+from drift.checking.screening import MIN_DOF, _monitor, _monitor_chart, _screen  # noqa: F401
 from drift.config import (
     MAX_LAG_BY_FREQ,
     Config,
@@ -42,21 +48,18 @@ from drift.config import (
     period_length,
     period_start,
 )
-from drift.engine.split import split_coefficients
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.executor import run_chunks
 from drift.panel import as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
 from drift.progress import Progress
 from drift.replay import h_step_errors
-from drift.verdicts import ERROR, Action, change_words, fmt_num, fmt_p, overall, sort_actions, window_words
+from drift.verdicts import ERROR, Action, fmt_num, fmt_p, overall, sort_actions, window_words
 
 log = logging.getLogger(__name__)
 
 #: smallest per-monitor level the simulated monitoring tables cover (drift.engine.tables.monitoring)
 MIN_LEVEL = min(_mon_table.TAIL_PROBS)
-#: smallest scale degrees of freedom the tables cover
-MIN_DOF = float(_mon_table.DOF[0])
 
 
 def as_of_moment(day: date) -> datetime:
@@ -187,385 +190,6 @@ def _screen_isolated(group: list[_Ctx], errors: dict[str, str]) -> None:
         for c in part:
             _reset(c)
         _screen_isolated(part, errors)
-
-
-def _screen(group: list[_Ctx]) -> None:
-    """Batched screening pass: recursive fit, monitoring, CUSUM family, rolling coefficients."""
-    cfg = group[0].cfg
-    chk = cfg.check
-    ds = [c.design for c in group]
-    Y = np.full((len(group), max(d.n for d in ds)), np.nan)
-    Xs = np.full((*Y.shape, ds[0].k), np.nan)
-    off = np.zeros(len(group), int)
-    for i, c in enumerate(group):
-        o = Y.shape[1] - c.design.n
-        Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
-    m = np.array([c.design.n_ref for c in group]) + off
-    rf = engine.recursive_fit(Y, Xs, coef_se=False)  # the check reads coefficients, not their errors
-    # The monitor family (engine.family_levels): on the recursive residuals the CUSUM monitor (small
-    # persistent changes), the abrupt-shift monitor (Page CUSUM with a reference value) and the variance
-    # monitor; per driver slot its effect monitor (the driver's score process, also when the change
-    # leaves the residual mean alone) and an abrupt-shift monitor of that score. The family signals when
-    # any member crosses; the members' levels are calibrated jointly so that a stable model is told to
-    # refit within the horizon with probability at most check.level.
-    n_ref = np.array([c.design.n_ref for c in group], float)
-    h_steps = np.array([c.horizon_n for c in group], float)
-    hz = h_steps / m  # ratio whose ceil(hz * m) is the horizon in steps (m counts the batch's front padding)
-    n_drv = max(len(c.design.driver_columns) for c in group)
-    lv_r, lv_e = engine.family_levels(chk.level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
-    wl_r, wl_e = engine.family_levels(chk.warn_level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
-    specs: list[tuple[str, str, int | None]] = [
-        ("monitor-cusum", "csw", None), ("monitor-shift", "shift", None), ("monitor-variance", "variance", None)]
-    specs += [("monitor-effect", chk.monitor_detector, j) for j in range(n_drv)]
-    specs += [("monitor-effect-shift", "shift", j) for j in range(n_drv)]
-    weights = None
-    if n_drv and np.any(m < Y.shape[1]):
-        slots = np.full((len(group), n_drv), -1)
-        for i, c in enumerate(group):
-            slots[i, : len(c.design.driver_columns)] = list(c.design.driver_columns.values())
-        weights = engine.score_weights(Xs, m, slots)
-    # scale estimated on the reference rows (and the error model's extra uncertainty)
-    n_ok = np.array([c.n_ref_ok for c in group], float)
-    logvar = 0.5 / np.maximum(n_ok - ds[0].k, 1.0) + np.array([c.scale_logvar for c in group])
-    dof = np.maximum(0.5 / logvar, MIN_DOF)
-    mons: list[Any] = []
-    warns: list[Any] = []
-    levels: list[tuple[float, float]] = []
-    try:
-        ref_fit = engine.reference_fit(Y, Xs, m)
-    except InsufficientDataError as exc:
-        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
-        ref_fit = None
-    for _name, det, j in specs:
-        lvl = (lv_r, wl_r) if j is None else (lv_e, wl_e)
-        levels.append(lvl)
-        if ref_fit is None or (j is not None and weights is None):
-            mons.append(None)
-            warns.append(None)
-            continue
-        wj = None if j is None else weights[:, j]  # type: ignore[index]
-        kw = {"horizon": hz, "detector": det, "weights": wj, "scale_dof": dof, "extend": True, "reference": ref_fit}
-        mons.append(_monitor(Y, Xs, m, level=lvl[0], **kw))
-        warns.append(_monitor(Y, Xs, m, level=lvl[1], **kw))
-    # Trigg's tracking signal on the as-deployed one-step errors of the monitored span (reported for the
-    # demand planners who read it; it raises nothing: at a fixed time, not over the horizon)
-    trigg = None
-    fe_all = np.where(np.arange(Y.shape[1])[None, :] >= m[:, None], rf.forecast_error, np.nan)
-    ref_err = np.where(np.arange(Y.shape[1])[None, :] < m[:, None], np.abs(rf.forecast_error), np.nan)
-    finite_ref = np.isfinite(ref_err)
-    mad0 = np.where(finite_ref.any(axis=1), np.sum(np.where(finite_ref, ref_err, 0.0), axis=1)
-                    / np.maximum(finite_ref.sum(axis=1), 1), np.nan)
-    if np.isfinite(fe_all).sum(axis=1).min() >= 2 and np.all(np.isfinite(mad0) & (mad0 > 0)):
-        try:
-            trigg = engine.trigg_signal(fe_all, 0.1, level=0.01, mad0=mad0)
-        except (DriftError, ValueError) as exc:
-            log.info("tracking signal skipped: %s", exc)
-    # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals (reported, charted;
-    # they raise nothing). Their whole-sample normalisation can put today's first crossing before the
-    # data that caused it, so a crossing is dated by replaying the test as of each period (first_signal:
-    # the first check of the run of checks up to today that all crossed).
-    W = rf.resid.copy()
-    cols = np.arange(W.shape[1])[None, :]
-    W[cols < m[:, None]] = np.nan
-    enough = np.sum(np.isfinite(W), axis=1) >= 3
-    cus = cusq = None
-    retro_dates: dict[str, np.ndarray] = {}
-    if enough.any():
-        Wc = np.where(enough[:, None], W, 0.0)  # rows without residuals get a dummy, masked below
-        Wc[~enough, :3] = 1.0
-        cus = engine.cusum(Wc)
-        cusq = engine.cusum_squares(Wc)
-        for name, rc, test in (("cusum", cus, "cusum"), ("cusum-squares", cusq, "cusum_squares")):
-            crossed = enough & (np.atleast_1d(rc.first_crossing[0.05]) >= 0)
-            dates = np.full(len(group), -1, dtype=np.int64)
-            if crossed.any():  # replayed on the monitored columns only (the rows before are all NaN)
-                lo = int(m[crossed].min())
-                found = engine.first_signal(W[crossed][:, lo:], test, 0.05)
-                dates[crossed] = np.where(found >= 0, found + lo, -1)
-            retro_dates[name] = dates
-    window = chk.rolling_window or chk.recent_window
-    roll = None
-    if window >= ds[0].k + 2 and window <= Y.shape[1]:
-        roll = engine.rolling_coefficients(Y, Xs, window)
-    for i, c in enumerate(group):
-        o, d = off[i], c.design
-        sl = slice(o, None)
-        c.charts["periods"] = [p.date().isoformat() for p in d.periods]
-        c.charts["monitor_start_index"] = int(d.n_ref)
-        fe = rf.forecast_error[i, sl]
-        # as-deployed one-step forecasts of the target. With AR errors the one-step error of y equals that
-        # of the prewhitened y~ (y_t - x_t'b - phi (y_{t-1} - x_{t-1}'b) = y~_t - x~_t'b), so one formula
-        fc = d.y - fe
-        base = _seasonal_naive(d.y, d.season_length)
-        mon_mask = np.arange(d.n) >= d.n_ref
-        c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
-                                "baseline": _list(np.where(mon_mask, base, np.nan))}
-        c.accuracy = _accuracy_block(d, fe, mon_mask, chk.recent_window)
-        ref_scale = (c.accuracy["scale"] or {}).get("mae")
-        if c.model.horizon > 1:
-            eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
-            c.accuracy["h_step"] = {"horizon": c.model.horizon,
-                                    **_accuracy(np.where(mon_mask, eh, np.nan)[-chk.recent_window:], ref_scale)}
-        # monitoring: every date is the period at which a check run then would have signalled (the
-        # monitors are sequential: each row's statistic and boundary use rows up to it only)
-        alarm_idx = None
-        lapsed = False
-        drivers_i = list(d.driver_columns)
-        for (name, _det, j), r, rw, (lv, wl) in zip(specs, mons, warns, levels):
-            if (j is not None and j >= len(drivers_i)) or r is None or rw is None:
-                continue
-            extra = {} if j is None else {"driver": drivers_i[j]}
-            ai = int(np.atleast_1d(r.alarm_index)[i])
-            h_end = int(np.atleast_1d(r.horizon_end)[i])
-            stat = float(np.atleast_1d(r.statistic)[i])
-            pv = _num(np.atleast_1d(r.pvalue)[i])
-            date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
-            c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
-                            "level": _num(round(lv, 6)), "date": date_})
-            beyond = {"beyond_horizon": True} if ai >= h_end else {}
-            if ai >= 0:
-                c.alarms.append({"test": name, **extra, "date": date_, "statistic": _num(round(stat, 4)),
-                                 "threshold": 1.0, "level": _num(round(lv, 6)), **beyond})
-                if alarm_idx is None or ai - o < alarm_idx:
-                    alarm_idx, lapsed = ai - o, bool(beyond)
-            wi = int(np.atleast_1d(rw.alarm_index)[i])
-            if ai < 0 and wi >= 0:
-                c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
-                                 "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
-                                 "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
-                                 **({"beyond_horizon": True} if wi >= h_end else {})})
-        _monitor_chart(c, i, o, specs, mons, levels)
-        if trigg is not None:
-            sig = np.atleast_2d(trigg.signal)[i, sl]
-            last_i = np.flatnonzero(np.isfinite(sig))
-            fs = int(np.atleast_1d(trigg.first_signal)[i]) - o
-            if last_i.size:
-                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
-                                "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,
-                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
-        # retrospective CUSUM family: reported in ``tests`` and charted, not alarms: re-run on every check
-        # at 5%, their crossings pile up on stable models (their sequential versions are the family's CUSUM
-        # and variance monitors). Their date is the first check of the standing crossing (first_signal).
-        if cus is not None and cusq is not None and enough[i]:
-            for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
-                fc_idx = int(retro_dates[name][i])
-                rstat = _num(np.atleast_1d(rc.statistic)[i])
-                cv = rc.critical_values.get(0.05)
-                crit = None if cv is None else _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
-                date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
-                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
-                                "threshold": crit, "level": 0.05, "date": date_})
-            # the retrospective CUSUM (kept for the chart when no monitor ran): its own crossing date only
-            c.charts["cusum"] = {
-                "path": _list(np.atleast_2d(cus.path)[i, sl]),
-                "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
-                "alarm_date": next((t["date"] for t in c.tests if t["test"] == "cusum"), None)}
-        # rolling coefficients
-        if roll is not None:
-            coef_roll = np.atleast_3d(roll.coef)[i, sl]
-            se_roll = np.atleast_3d(roll.se)[i, sl]
-            c.charts["_roll_coef"] = coef_roll  # the full model's rolling fit, reused for its forecasts
-            c.charts["coefficients"] = {}
-            ref_coef = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
-            for s, j in d.driver_columns.items():
-                c.charts["coefficients"][s] = {
-                    "coef": _list(coef_roll[:, j]), "lower": _list(coef_roll[:, j] - 1.96 * se_roll[:, j]),
-                    "upper": _list(coef_roll[:, j] + 1.96 * se_roll[:, j]),
-                    "reference": _num(ref_coef[j]), "window": int(window)}
-        c.charts["_ref_coef"] = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
-        c.charts["_fe"] = fe
-        # verdict on the relationship
-        span = d.n - d.n_ref
-        if alarm_idx is None and span > c.horizon_n:
-            end = d.periods[d.n_ref + c.horizon_n - 1].date().isoformat()
-            c.actions.append(Action("watch", severity="watch", reason=(
-                f"The monitoring horizon ended on {end} ({_horizon_words(c)}): the monitors keep watching "
-                f"the newest data, but their false-alarm guarantee covered only the horizon. Refit on recent "
-                f"data and move the reference period forward (or lengthen check.horizon).")))
-        if alarm_idx is not None:
-            _refit_action(c, alarm_idx, lapsed)
-        else:
-            warn = sorted((a for a in c.alarms if a.get("warning")), key=lambda a: a["date"])
-            if warn:
-                what = (f"{_test_words(warn[0]['test'], warn[0].get('driver'))} passed its warning boundary "
-                        f"on {warn[0]['date']}")
-                c.actions.append(Action("watch", severity="watch", reason=(
-                    f"Early sign of change: {what}; the monitoring detectors have not confirmed it at the "
-                    f"{chk.level:.0%} level. Keep the model, look again next week.")))
-
-
-def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
-                   levels: list[tuple[float, float]]) -> None:
-    """The chart of the monitor that raised the alarm (the first to cross), else of the one nearest its
-    boundary: its path and its own boundary as the monitor computed them (read from its result, never
-    recomputed), and the period where that path crossed that boundary."""
-    drivers_i = list(c.design.driver_columns)
-    best: tuple[tuple[int, float], str, int | None, Any, float] | None = None
-    for (name, _det, j), r, (lv, _wl) in zip(specs, mons, levels):
-        if r is None or (j is not None and j >= len(drivers_i)) or getattr(r, "path", None) is None:
-            continue
-        ai = int(np.atleast_1d(r.alarm_index)[i])
-        stat = float(np.atleast_1d(r.statistic)[i])
-        key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
-        if best is None or key < best[0]:
-            best = (key, name, j, r, lv)
-    if best is None:
-        return
-    (_key, name, j, r, lv) = best
-    path = np.atleast_2d(np.asarray(r.path, float))[i]
-    bound = np.atleast_2d(np.asarray(r.boundary, float))[i]
-    n = c.design.n
-    if path.size != o + n or bound.size != o + n:
-        c.charts["monitor_note"] = f"the {name} path does not line up with the periods; not drawn"
-        return
-    ai = int(np.atleast_1d(r.alarm_index)[i])
-    c.charts["monitor"] = {
-        "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
-        "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
-        "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
-        "alarm_date": c.design.periods[ai - o].date().isoformat() if ai >= o else None}
-
-
-def _horizon_words(c: _Ctx) -> str:
-    """How check.horizon reads for this model, e.g. "2 years = 104 periods"."""
-    h = c.cfg.check.horizon
-    asked = c.cfg.check.horizon_periods(c.model.frequency, c.design.n_ref)
-    if asked > c.horizon_n:
-        return (f"{c.horizon_n} periods: check.horizon ({h}) is {asked}, more than the monitors are calibrated "
-                f"for with a {c.design.n_ref}-period reference")
-    if isinstance(h, float):
-        return f"{h:g} times the {c.design.n_ref}-period reference = {c.horizon_n} periods"
-    return f"{h} = {c.horizon_n} periods" if not h.endswith("periods") else h
-
-
-def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
-    """engine.monitor, or None when no model of the batch can be monitored yet (e.g. no data after the
-    reference period): the batch then simply has no monitoring evidence."""
-    try:
-        return engine.monitor(Y, X, m, **kw)
-    except InsufficientDataError as exc:
-        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
-        return None
-
-
-def _refit_action(c: _Ctx, alarm_idx: int, lapsed: bool = False) -> None:
-    """Date the break the monitors found, name the monitor that crossed and, separately, the driver whose
-    effect moved most (the smallest p-value of the change in the before/after regression).
-
-    ``lapsed``: the first alarm came after the monitoring horizon (the reason says the guarantee had lapsed).
-
-    The figures quoted are those put in the action (``monitor``, ``effects``, ``moved``) and in each
-    driver's ``break`` entry: one computation for the reason, the JSON and the tables.
-    """
-    d, m = c.design, c.model
-    since = _date_break(c, alarm_idx)
-    c.charts["break_index"] = since
-    since_s = d.periods[since].date().isoformat()
-    before_end = d.periods[since - 1].date().isoformat() if since > 0 else since_s
-    effects: list[dict[str, Any]] = []
-    try:
-        cols = list(d.driver_columns.values())
-        if cols:
-            sp = split_coefficients(c.y, c.X, since, cols)
-            for k, s in enumerate(d.driver_columns):
-                effects.append({"driver": s, "before": _num(round(float(sp.before[k]), 6)),
-                                "after": _num(round(float(sp.after[k]), 6)),
-                                "se_before": _num(round(float(sp.se_before[k]), 6)),
-                                "se_after": _num(round(float(sp.se_after[k]), 6)),
-                                "pvalue_change": _num(sp.pvalue_diff[k]),
-                                "before_window": {"start": d.periods[0].date().isoformat(), "end": before_end,
-                                                  "n": int(sp.nobs_before)},
-                                "after_window": {"start": since_s, "end": d.periods[-1].date().isoformat(),
-                                                 "n": int(sp.nobs_after)}})
-            c.charts["_split"] = sp
-    except InsufficientDataError:
-        pass
-    c.charts["_effects"] = {e["driver"]: e for e in effects}
-    for e in effects:  # the coefficient chart draws the same before/after estimates beside the rolling one
-        if e["driver"] in c.charts.get("coefficients", {}) and e["before"] is not None and e["after"] is not None:
-            c.charts["coefficients"][e["driver"]]["split"] = {
-                "break": since_s, "before": e["before"], "after": e["after"],
-                "se_before": e["se_before"], "se_after": e["se_after"]}
-    alarm = min((a for a in c.alarms if not a.get("warning") and a["test"].startswith("monitor-")),
-                key=lambda a: a["date"] or "9999")
-    monitor = {k: alarm[k] for k in ("test", "driver", "date", "statistic", "level", "beyond_horizon")
-               if alarm.get(k) is not None}
-    monitor["horizon"] = _horizon_words(c)
-    ranked = [e for e in effects if e["pvalue_change"] is not None and e["before"] is not None
-              and e["after"] is not None]
-    moved = min(ranked, key=lambda e: e["pvalue_change"]) if ranked else None
-    level = c.cfg.check.level
-    text = (f"The relationship changed around {since_s}. "
-            f"{_sentence_start(_test_words(alarm['test'], alarm.get('driver')))} crossed its boundary on "
-            f"{alarm['date']} "
-            + (f"(after the monitoring horizon, {_horizon_words(c)}, had ended: without the false-alarm "
-               f"guarantee, which covered only the horizon)." if lapsed else
-               f"(false-alarm rate of the monitors together held at {level:.0%} over the monitoring horizon, "
-               f"{_horizon_words(c)})."))
-    if moved is not None:
-        unit = next((dr.unit for dr in m.drivers if dr.series == moved["driver"] and dr.unit), None)
-        per = f" {m.unit} per {unit}" if unit else ""
-        figures = (f"{fmt_num(moved['before'])} before {since_s} → {fmt_num(moved['after'])}{per} since "
-                   f"({change_words(moved['before'], moved['after'])}; p = {fmt_p(moved['pvalue_change'])} "
-                   f"for no change)")
-        if moved["pvalue_change"] < level:
-            text += f" The driver effect that moved most: {moved['driver']}, {figures}."
-        else:
-            text += (f" No single driver's effect moved significantly (the most: {moved['driver']}, {figures}): "
-                     f"the level or several coefficients shifted together.")
-    text += f" Refit on data since {since_s}."
-    c.actions.append(Action("refit", reason=text, extra={
-        "since": since_s, "monitor": monitor, "moved": moved["driver"] if moved is not None else None,
-        "effects": effects}))
-
-
-def _sentence_start(text: str) -> str:
-    """``text`` with its first letter capitalised and the rest left alone (``str.capitalize`` would turn
-    "recursive-CUSUM" into "recursive-cusum")."""
-    return text[:1].upper() + text[1:]
-
-
-def _test_words(name: str, driver: str | None = None) -> str:
-    if name == "monitor-effect":
-        return f"the monitor of the {driver} effect"
-    if name == "monitor-effect-shift":
-        return f"the abrupt-shift monitor of the {driver} effect"
-    return {"monitor-cusum": "the recursive-CUSUM monitor", "monitor-page": "the Page-CUSUM monitor",
-            "monitor-shift": "the abrupt-shift monitor", "monitor-variance": "the error-variance monitor",
-            "monitor-mosum": "the moving-sum monitor", "cusum": "the recursive CUSUM",
-            "cusum-squares": "the CUSUM of squares"}.get(name, name)
-
-
-def _date_break(c: _Ctx, alarm_idx: int) -> int:
-    """Row of the first observation of the new regime: change-point search on the monitored recursive
-    residuals (mean shift, l2 cost, BIC penalty); the latest change point at or before the alarm row, or
-    the row before the alarm if none is found.
-
-    The search runs over every monitored residual known at the check, not only those up to the alarm: a
-    monitor often fires one or two periods after a large break, and a search that stopped at the alarm
-    could not place a change point there (each segment needs ``min_size`` rows), so it dated the break
-    early. Change points after the alarm (the recursive errors decay as the fit adapts) are ignored.
-    """
-    d = c.design
-    fe = c.charts["_fe"]
-    lo = d.n_ref
-    w = fe[lo:]
-    ok = np.isfinite(w)
-    n_upto = int(ok[: max(0, alarm_idx + 1 - lo)].sum())
-    if n_upto >= 4 and ok.sum() >= 8:
-        try:
-            ww = w[ok]
-            sig2 = float(np.var(np.diff(ww)) / 2) or None
-            cp = engine.change_points(ww, cost="l2", min_size=max(3, int(0.1 * n_upto)), sigma2=sig2)
-            bks = np.atleast_1d(cp.break_indices[0] if isinstance(cp.break_indices, list) else cp.break_indices)
-            rows = np.flatnonzero(ok) + lo
-            cands = [int(rows[int(b)]) for b in np.ravel(bks) if 0 < int(b) < len(rows)]
-            before = [r for r in cands if r <= alarm_idx]
-            if before:
-                return max(before)
-        except (DriftError, ValueError) as exc:
-            log.debug("change-point dating failed for %s: %s", d.model, exc)
-    return int(max(lo, alarm_idx - 1))
 
 
 # ------------------------------------------------------------------------------------------------ deployed

@@ -1,0 +1,257 @@
+"""Screening: a batch of models' designs → their monitors, tests and charts, in one batched pass.
+
+Takes a batch of contexts (same number of regressors, built by :mod:`drift.checking.designs`); runs, over
+the batch at once, the recursive fit, the monitor family (CUSUM, abrupt-shift and variance monitors of the
+residuals, per driver its effect monitor), Trigg's tracking signal, the retrospective CUSUM family and the
+rolling coefficients; gives each model its ``tests``, ``alarms``, ``accuracy``, charts (forecast, monitor,
+CUSUM, coefficients) and the figures later stages reuse (``charts['_fe']``, ``'_ref_coef'``,
+``'_roll_coef'``), then its relationship actions (:mod:`drift.checking.actions`).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from drift import engine
+from drift.checking.accuracy import _accuracy, _accuracy_block, _seasonal_naive
+from drift.checking.actions import _relationship_actions, _sentence_start, _test_words
+from drift.checking.context import _Ctx, _list, _num, log
+from drift.engine.tables import monitoring as _mon_table
+from drift.exceptions import DriftError, InsufficientDataError
+from drift.replay import h_step_errors
+
+#: smallest scale degrees of freedom the tables cover
+MIN_DOF = float(_mon_table.DOF[0])
+
+
+def _screen(group: list[_Ctx]) -> None:
+    """Batched screening pass: recursive fit, monitoring, CUSUM family, rolling coefficients."""
+    cfg = group[0].cfg
+    chk = cfg.check
+    ds = [c.design for c in group]
+    Y = np.full((len(group), max(d.n for d in ds)), np.nan)
+    Xs = np.full((*Y.shape, ds[0].k), np.nan)
+    off = np.zeros(len(group), int)
+    for i, c in enumerate(group):
+        o = Y.shape[1] - c.design.n
+        Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
+    m = np.array([c.design.n_ref for c in group]) + off
+    rf = engine.recursive_fit(Y, Xs, coef_se=False)  # the check reads coefficients, not their errors
+    # The monitor family (engine.family_levels): on the recursive residuals the CUSUM monitor (small
+    # persistent changes), the abrupt-shift monitor (Page CUSUM with a reference value) and the variance
+    # monitor; per driver slot its effect monitor (the driver's score process, also when the change
+    # leaves the residual mean alone) and an abrupt-shift monitor of that score. The family signals when
+    # any member crosses; the members' levels are calibrated jointly so that a stable model is told to
+    # refit within the horizon with probability at most check.level.
+    n_ref = np.array([c.design.n_ref for c in group], float)
+    h_steps = np.array([c.horizon_n for c in group], float)
+    hz = h_steps / m  # ratio whose ceil(hz * m) is the horizon in steps (m counts the batch's front padding)
+    n_drv = max(len(c.design.driver_columns) for c in group)
+    lv_r, lv_e = engine.family_levels(chk.level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
+    wl_r, wl_e = engine.family_levels(chk.warn_level, n_drv, h_steps, h_steps / n_ref, chk.monitor_detector)
+    specs: list[tuple[str, str, int | None]] = [
+        ("monitor-cusum", "csw", None), ("monitor-shift", "shift", None), ("monitor-variance", "variance", None)]
+    specs += [("monitor-effect", chk.monitor_detector, j) for j in range(n_drv)]
+    specs += [("monitor-effect-shift", "shift", j) for j in range(n_drv)]
+    weights = None
+    if n_drv and np.any(m < Y.shape[1]):
+        slots = np.full((len(group), n_drv), -1)
+        for i, c in enumerate(group):
+            slots[i, : len(c.design.driver_columns)] = list(c.design.driver_columns.values())
+        weights = engine.score_weights(Xs, m, slots)
+    # scale estimated on the reference rows (and the error model's extra uncertainty)
+    n_ok = np.array([c.n_ref_ok for c in group], float)
+    logvar = 0.5 / np.maximum(n_ok - ds[0].k, 1.0) + np.array([c.scale_logvar for c in group])
+    dof = np.maximum(0.5 / logvar, MIN_DOF)
+    mons: list[Any] = []
+    warns: list[Any] = []
+    levels: list[tuple[float, float]] = []
+    try:
+        ref_fit = engine.reference_fit(Y, Xs, m)
+    except InsufficientDataError as exc:
+        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
+        ref_fit = None
+    for _name, det, j in specs:
+        lvl = (lv_r, wl_r) if j is None else (lv_e, wl_e)
+        levels.append(lvl)
+        if ref_fit is None or (j is not None and weights is None):
+            mons.append(None)
+            warns.append(None)
+            continue
+        wj = None if j is None else weights[:, j]  # type: ignore[index]
+        kw = {"horizon": hz, "detector": det, "weights": wj, "scale_dof": dof, "extend": True, "reference": ref_fit}
+        mons.append(_monitor(Y, Xs, m, level=lvl[0], **kw))
+        warns.append(_monitor(Y, Xs, m, level=lvl[1], **kw))
+    # Trigg's tracking signal on the as-deployed one-step errors of the monitored span (reported for the
+    # demand planners who read it; it raises nothing: at a fixed time, not over the horizon)
+    trigg = None
+    fe_all = np.where(np.arange(Y.shape[1])[None, :] >= m[:, None], rf.forecast_error, np.nan)
+    ref_err = np.where(np.arange(Y.shape[1])[None, :] < m[:, None], np.abs(rf.forecast_error), np.nan)
+    finite_ref = np.isfinite(ref_err)
+    mad0 = np.where(finite_ref.any(axis=1), np.sum(np.where(finite_ref, ref_err, 0.0), axis=1)
+                    / np.maximum(finite_ref.sum(axis=1), 1), np.nan)
+    if np.isfinite(fe_all).sum(axis=1).min() >= 2 and np.all(np.isfinite(mad0) & (mad0 > 0)):
+        try:
+            trigg = engine.trigg_signal(fe_all, 0.1, level=0.01, mad0=mad0)
+        except (DriftError, ValueError) as exc:
+            log.info("tracking signal skipped: %s", exc)
+    # retrospective CUSUM / CUSUM of squares on the monitored recursive residuals (reported, charted;
+    # they raise nothing). Their whole-sample normalisation can put today's first crossing before the
+    # data that caused it, so a crossing is dated by replaying the test as of each period (first_signal:
+    # the first check of the run of checks up to today that all crossed).
+    W = rf.resid.copy()
+    cols = np.arange(W.shape[1])[None, :]
+    W[cols < m[:, None]] = np.nan
+    enough = np.sum(np.isfinite(W), axis=1) >= 3
+    cus = cusq = None
+    retro_dates: dict[str, np.ndarray] = {}
+    if enough.any():
+        Wc = np.where(enough[:, None], W, 0.0)  # rows without residuals get a dummy, masked below
+        Wc[~enough, :3] = 1.0
+        cus = engine.cusum(Wc)
+        cusq = engine.cusum_squares(Wc)
+        for name, rc, test in (("cusum", cus, "cusum"), ("cusum-squares", cusq, "cusum_squares")):
+            crossed = enough & (np.atleast_1d(rc.first_crossing[0.05]) >= 0)
+            dates = np.full(len(group), -1, dtype=np.int64)
+            if crossed.any():  # replayed on the monitored columns only (the rows before are all NaN)
+                lo = int(m[crossed].min())
+                found = engine.first_signal(W[crossed][:, lo:], test, 0.05)
+                dates[crossed] = np.where(found >= 0, found + lo, -1)
+            retro_dates[name] = dates
+    window = chk.rolling_window or chk.recent_window
+    roll = None
+    if window >= ds[0].k + 2 and window <= Y.shape[1]:
+        roll = engine.rolling_coefficients(Y, Xs, window)
+    for i, c in enumerate(group):
+        o, d = off[i], c.design
+        sl = slice(o, None)
+        c.charts["periods"] = [p.date().isoformat() for p in d.periods]
+        c.charts["monitor_start_index"] = int(d.n_ref)
+        fe = rf.forecast_error[i, sl]
+        # as-deployed one-step forecasts of the target. With AR errors the one-step error of y equals that
+        # of the prewhitened y~ (y_t - x_t'b - phi (y_{t-1} - x_{t-1}'b) = y~_t - x~_t'b), so one formula
+        fc = d.y - fe
+        base = _seasonal_naive(d.y, d.season_length)
+        mon_mask = np.arange(d.n) >= d.n_ref
+        c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
+                                "baseline": _list(np.where(mon_mask, base, np.nan))}
+        c.accuracy = _accuracy_block(d, fe, mon_mask, chk.recent_window)
+        ref_scale = (c.accuracy["scale"] or {}).get("mae")
+        if c.model.horizon > 1:
+            eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
+            c.accuracy["h_step"] = {"horizon": c.model.horizon,
+                                    **_accuracy(np.where(mon_mask, eh, np.nan)[-chk.recent_window:], ref_scale)}
+        # monitoring: every date is the period at which a check run then would have signalled (the
+        # monitors are sequential: each row's statistic and boundary use rows up to it only)
+        alarm_idx = None
+        lapsed = False
+        drivers_i = list(d.driver_columns)
+        for (name, _det, j), r, rw, (lv, wl) in zip(specs, mons, warns, levels):
+            if (j is not None and j >= len(drivers_i)) or r is None or rw is None:
+                continue
+            extra = {} if j is None else {"driver": drivers_i[j]}
+            ai = int(np.atleast_1d(r.alarm_index)[i])
+            h_end = int(np.atleast_1d(r.horizon_end)[i])
+            stat = float(np.atleast_1d(r.statistic)[i])
+            pv = _num(np.atleast_1d(r.pvalue)[i])
+            date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
+            c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
+                            "level": _num(round(lv, 6)), "date": date_})
+            beyond = {"beyond_horizon": True} if ai >= h_end else {}
+            if ai >= 0:
+                c.alarms.append({"test": name, **extra, "date": date_, "statistic": _num(round(stat, 4)),
+                                 "threshold": 1.0, "level": _num(round(lv, 6)), **beyond})
+                if alarm_idx is None or ai - o < alarm_idx:
+                    alarm_idx, lapsed = ai - o, bool(beyond)
+            wi = int(np.atleast_1d(rw.alarm_index)[i])
+            if ai < 0 and wi >= 0:
+                c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
+                                 "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
+                                 "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
+                                 **({"beyond_horizon": True} if wi >= h_end else {})})
+        _monitor_chart(c, i, o, specs, mons, levels)
+        if trigg is not None:
+            sig = np.atleast_2d(trigg.signal)[i, sl]
+            last_i = np.flatnonzero(np.isfinite(sig))
+            fs = int(np.atleast_1d(trigg.first_signal)[i]) - o
+            if last_i.size:
+                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
+                                "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,
+                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
+        # retrospective CUSUM family: reported in ``tests`` and charted, not alarms: re-run on every check
+        # at 5%, their crossings pile up on stable models (their sequential versions are the family's CUSUM
+        # and variance monitors). Their date is the first check of the standing crossing (first_signal).
+        if cus is not None and cusq is not None and enough[i]:
+            for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
+                fc_idx = int(retro_dates[name][i])
+                rstat = _num(np.atleast_1d(rc.statistic)[i])
+                cv = rc.critical_values.get(0.05)
+                crit = None if cv is None else _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
+                date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
+                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
+                                "threshold": crit, "level": 0.05, "date": date_})
+            # the retrospective CUSUM (kept for the chart when no monitor ran): its own crossing date only
+            c.charts["cusum"] = {
+                "path": _list(np.atleast_2d(cus.path)[i, sl]),
+                "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
+                "alarm_date": next((t["date"] for t in c.tests if t["test"] == "cusum"), None)}
+        # rolling coefficients
+        if roll is not None:
+            coef_roll = np.atleast_3d(roll.coef)[i, sl]
+            se_roll = np.atleast_3d(roll.se)[i, sl]
+            c.charts["_roll_coef"] = coef_roll  # the full model's rolling fit, reused for its forecasts
+            c.charts["coefficients"] = {}
+            ref_coef = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+            for s, j in d.driver_columns.items():
+                c.charts["coefficients"][s] = {
+                    "coef": _list(coef_roll[:, j]), "lower": _list(coef_roll[:, j] - 1.96 * se_roll[:, j]),
+                    "upper": _list(coef_roll[:, j] + 1.96 * se_roll[:, j]),
+                    "reference": _num(ref_coef[j]), "window": int(window)}
+        c.charts["_ref_coef"] = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+        c.charts["_fe"] = fe
+        _relationship_actions(c, alarm_idx, lapsed)
+
+
+def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
+    """engine.monitor, or None when no model of the batch can be monitored yet (e.g. no data after the
+    reference period): the batch then simply has no monitoring evidence."""
+    try:
+        return engine.monitor(Y, X, m, **kw)
+    except InsufficientDataError as exc:
+        log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
+        return None
+
+
+def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
+                   levels: list[tuple[float, float]]) -> None:
+    """The chart of the monitor that raised the alarm (the first to cross), else of the one nearest its
+    boundary: its path and its own boundary as the monitor computed them (read from its result, never
+    recomputed), and the period where that path crossed that boundary."""
+    drivers_i = list(c.design.driver_columns)
+    best: tuple[tuple[int, float], str, int | None, Any, float] | None = None
+    for (name, _det, j), r, (lv, _wl) in zip(specs, mons, levels):
+        if r is None or (j is not None and j >= len(drivers_i)) or getattr(r, "path", None) is None:
+            continue
+        ai = int(np.atleast_1d(r.alarm_index)[i])
+        stat = float(np.atleast_1d(r.statistic)[i])
+        key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
+        if best is None or key < best[0]:
+            best = (key, name, j, r, lv)
+    if best is None:
+        return
+    (_key, name, j, r, lv) = best
+    path = np.atleast_2d(np.asarray(r.path, float))[i]
+    bound = np.atleast_2d(np.asarray(r.boundary, float))[i]
+    n = c.design.n
+    if path.size != o + n or bound.size != o + n:
+        c.charts["monitor_note"] = f"the {name} path does not line up with the periods; not drawn"
+        return
+    ai = int(np.atleast_1d(r.alarm_index)[i])
+    c.charts["monitor"] = {
+        "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
+        "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
+        "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
+        "alarm_date": c.design.periods[ai - o].date().isoformat() if ai >= o else None}
