@@ -39,6 +39,15 @@ from drift.checking.designs import (  # noqa: F401
     _validate,
     prepare_model,
 )
+from drift.checking.freshness import _forward_feed, _freshness, _periods_between  # noqa: F401
+from drift.checking.production import (  # noqa: F401
+    MIN_LEVEL,
+    _deployed_replay,
+    _horizon_ratio,
+    _logged_batch,
+    _logged_evidence,
+    _logged_forecasts,
+)
 from drift.checking.screening import MIN_DOF, _monitor, _monitor_chart, _screen  # noqa: F401
 from drift.config import (
     MAX_LAG_BY_FREQ,
@@ -48,18 +57,13 @@ from drift.config import (
     period_length,
     period_start,
 )
-from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.executor import run_chunks
-from drift.panel import as_ns, build_design, latest_values, next_due, shift_periods, week_anchor
+from drift.panel import build_design, latest_values, shift_periods, week_anchor
 from drift.progress import Progress
-from drift.replay import h_step_errors
 from drift.verdicts import ERROR, Action, fmt_num, fmt_p, overall, sort_actions, window_words
 
 log = logging.getLogger(__name__)
-
-#: smallest per-monitor level the simulated monitoring tables cover (drift.engine.tables.monitoring)
-MIN_LEVEL = min(_mon_table.TAIL_PROBS)
 
 
 def as_of_moment(day: date) -> datetime:
@@ -190,300 +194,6 @@ def _screen_isolated(group: list[_Ctx], errors: dict[str, str]) -> None:
         for c in part:
             _reset(c)
         _screen_isolated(part, errors)
-
-
-# ------------------------------------------------------------------------------------------------ deployed
-def _deployed_replay(c: _Ctx) -> None:
-    """With production coefficients in the config (``deployed:``, :mod:`drift.deployed`): the as-deployed
-    errors become those of the production model replayed with its coefficients (accuracy, forecast chart,
-    Trigg's tracking signal), its coefficients become the reference of the driver figures and charts, and
-    the payload's ``deployed`` block gives the gap to drift's reference-period re-estimate. The monitors
-    are left as they are (they test the relationship on drift's own recursive fit)."""
-    m, d, chk = c.model, c.design, c.cfg.check
-    if m.deployed is None:
-        return
-    from drift.deployed import as_deployed_errors, coefficient_vector
-
-    b = coefficient_vector(m, m.deployed.epoch, d)
-    logged = c.charts.pop("_logged", None)
-    if b is None and logged is None:
-        return
-    mon = np.arange(d.n) >= d.n_ref
-    if logged is not None:  # the production system's own forecasts: their errors are the as-deployed ones
-        e = logged["errors"]
-        _logged_evidence(c, logged)
-        if logged["baseline"] is not None:
-            mon = np.arange(d.n) >= logged["baseline"][1]
-    else:
-        e = as_deployed_errors(m, d.y, d.X, b)
-    if "forecast" in c.charts:
-        c.charts["forecast"]["forecast"] = _list(np.where(mon, d.y - e, np.nan))
-    h_step = c.accuracy.get("h_step")
-    c.accuracy = _accuracy_block(d, e, mon, chk.recent_window)
-    if h_step is not None:
-        c.accuracy["h_step"] = h_step
-    ref_scale = (c.accuracy["scale"] or {}).get("mae")
-    if m.horizon > 1 and b is not None and logged is None:
-        eh = h_step_errors(c.cfg, m, c.obs, c.as_of, d, np.tile(b, (d.n, 1)), m.horizon)
-        c.accuracy["h_step"] = {"horizon": m.horizon,
-                                **_accuracy(np.where(mon, eh, np.nan)[-chk.recent_window:], ref_scale)}
-    if b is None:
-        return
-    # Trigg's tracking signal of the production model's errors (replacing that of the re-estimate)
-    ref_abs = np.abs(e[: d.n_ref])
-    ref_abs = ref_abs[np.isfinite(ref_abs)]
-    fe_mon = np.where(mon, e, np.nan)
-    if logged is None:
-        c.tests = [t for t in c.tests if t.get("test") != "tracking-trigg"]
-    if logged is None and ref_abs.size and ref_abs.mean() > 0 and np.isfinite(fe_mon).sum() >= 2:
-        try:
-            tr = engine.trigg_signal(fe_mon[None], 0.1, level=0.01, mad0=np.array([ref_abs.mean()]))
-            sig = np.atleast_2d(tr.signal)[0]
-            last_i = np.flatnonzero(np.isfinite(sig))
-            fs = int(np.atleast_1d(tr.first_signal)[0])
-            if last_i.size:
-                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
-                                "pvalue": None, "threshold": _num(tr.limit), "level": 0.01,
-                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
-        except (DriftError, ValueError) as exc:
-            log.info("model %s: tracking signal of the deployed errors skipped: %s", m.name, exc)
-    # the gap between the production coefficients and drift's reference-period re-estimate
-    ref_coef = np.asarray(c.charts.get("_ref_coef"), float)
-    ok = np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)
-    Xr = c.X[: d.n_ref][ok]
-    resid = c.y[: d.n_ref][ok] - Xr @ ref_coef
-    dof = max(int(ok.sum()) - d.k, 1)
-    se = np.sqrt(np.maximum(np.diag(float(resid @ resid) / dof * np.linalg.pinv(Xr.T @ Xr)), 0.0))
-    by_col = {j: s for s, j in d.driver_columns.items()}
-    rows = []
-    for j, col in enumerate(d.columns):
-        gap = float(b[j] - ref_coef[j])
-        rows.append({"term": by_col.get(j, col), "column": col, "deployed": _num(round(float(b[j]), 6)),
-                     "reestimated": _num(round(float(ref_coef[j]), 6)), "se": _num(round(float(se[j]), 6)),
-                     "gap": _num(round(gap, 6)), "z": _num(round(gap / se[j], 3)) if se[j] > 0 else None})
-    errs = m.deployed.errors
-    c.deployed.update({"epoch": m.deployed.epoch, "coefficients": rows,
-                       "errors": {"ar": list(errs.ar), "ma": list(errs.ma)} if errs is not None else None,
-                       "reestimated_on": {"start": d.periods[0].date().isoformat(),
-                                          "end": d.periods[d.n_ref - 1].date().isoformat()}})
-    c.charts["_ref_coef"] = b
-    for s, j in d.driver_columns.items():
-        if s in c.charts.get("coefficients", {}):
-            c.charts["coefficients"][s]["reference"] = _num(b[j])
-
-
-def _logged_forecasts(ctxs: list[_Ctx], errors: dict[str, str]) -> None:
-    """The production system's logged forecasts (``deployed.forecasts``): their errors and the batched
-    monitors of :mod:`drift.deployed` (one batch per forecast horizon); results in ``charts['_logged']``.
-    A batch that fails is run model by model, so a failure stays the failing model's."""
-    from drift.deployed import baseline_rows, forecast_horizon, logged_forecast_errors
-
-    groups: dict[int, list[tuple[_Ctx, np.ndarray, tuple[int, int] | None]]] = {}
-    for c in ctxs:
-        try:
-            f, e = logged_forecast_errors(c.model, c.design.periods, c.obs)  # type: ignore[misc]
-            h = forecast_horizon(c.model)
-            base = baseline_rows(e, c.design.n_ref, c.cfg.check.recent_window, h)
-            c.charts["_logged"] = {"forecast": f, "errors": e, "baseline": base, "horizon": h, "stats": None}
-            if base is not None:
-                groups.setdefault(h, []).append((c, e, base))
-        except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry
-            errors[c.model.name] = _failure(c.model.name, "reading its logged forecasts", exc)
-    for h, items in groups.items():
-        _logged_batch(h, items, errors)
-
-
-def _horizon_ratio(items: list[tuple[_Ctx, np.ndarray, tuple[int, int]]]) -> float:
-    """check.horizon as a multiple of the reference length for a batch (the largest of its models, within
-    the simulated tables' 6)."""
-    return min(max(c.horizon_n / c.design.n_ref for c, _e, _b in items), float(_mon_table.HORIZONS[-1]))
-
-
-def _logged_batch(h: int, items: list[tuple[_Ctx, np.ndarray, tuple[int, int]]], errors: dict[str, str]) -> None:
-    from drift.deployed import monitor_forecast_errors
-
-    chk = items[0][0].cfg.check
-    T = max(len(e) for _, e, _ in items)
-    E = np.full((len(items), T), np.nan)
-    first = np.zeros(len(items), int)
-    m = np.zeros(len(items), int)
-    off = np.zeros(len(items), int)
-    for i, (_c, e, (f0, m0)) in enumerate(items):
-        off[i] = T - len(e)
-        E[i, off[i]:] = e
-        first[i], m[i] = f0 + off[i], m0 + off[i]
-    try:
-        stats_ = monitor_forecast_errors(E, first, m, h, level=max(chk.level / 2, MIN_LEVEL), horizon=_horizon_ratio(items),
-                                         detector=chk.monitor_detector, recent_window=chk.recent_window, grid=off)
-    except Exception as exc:  # noqa: BLE001 - isolated below
-        if len(items) == 1:
-            errors[items[0][0].model.name] = _failure(items[0][0].model.name, "monitoring its logged forecasts", exc)
-            return
-        for it in items:
-            _logged_batch(h, [it], errors)
-        return
-    for i, (c, _e, _b) in enumerate(items):
-        st = stats_[i]
-        st["offset"] = int(off[i])
-        c.charts["_logged"]["stats"] = st
-
-
-def _logged_evidence(c: _Ctx, logged: dict[str, Any]) -> None:
-    """The logged forecasts' statistics into the payload: the ``deployed.forecasts`` block, their tests,
-    and ``watch`` when a monitor of their mean or scale crossed its boundary."""
-    from drift.deployed import MIN_BASELINE
-
-    d, m, chk = c.design, c.model, c.cfg.check
-    st = logged.get("stats")
-    c.deployed["epoch"] = m.deployed.epoch  # type: ignore[union-attr]
-    fcfg = m.deployed.forecasts  # type: ignore[union-attr]
-    e = logged["errors"]
-    block: dict[str, Any] = {"series": fcfg.series, "horizon": logged["horizon"],  # type: ignore[union-attr]
-                             "logged": int(np.isfinite(e).sum())}
-    base = logged["baseline"]
-    if base is None or st is None:
-        block["note"] = (f"too few logged forecasts of '{fcfg.series}' for a baseline (at least "  # type: ignore[union-attr]
-                         f"{MIN_BASELINE} non-overlapping ones, every {logged['horizon']} periods, in the "
-                         "reference period or in the first periods logged, and a period after them); no "
-                         "monitoring yet")
-        c.deployed["forecasts"] = block
-        return
-    o = st["offset"]
-
-    def day(row: int) -> str | None:
-        return d.periods[row - o].date().isoformat() if row >= 0 else None
-
-    block["baseline"] = {"start": d.periods[base[0]].date().isoformat(),
-                         "end": d.periods[base[1] - 1].date().isoformat()}
-    block["monitor_start"] = d.periods[base[1]].date().isoformat() if base[1] < d.n else None
-    block["monitored"] = st["used"]
-    block["baseline_mean"] = _num(round(st["baseline_mean"], 6))
-    bias = st["bias"]
-    block["bias"] = {"mean": _num(None if bias["mean"] is None else round(bias["mean"], 6)),
-                     "t": _num(None if bias["t"] is None else round(bias["t"], 4)),
-                     "pvalue": _num(bias["pvalue"]), "n": bias["n"], "lags": bias["lags"]}
-    tests = []
-    for r in st.get("monitors", []):
-        entry = {"test": r["test"], "statistic": _num(round(r["statistic"], 4)), "pvalue": _num(r["pvalue"]),
-                 "threshold": 1.0, "level": r["level"], "date": day(r["alarm_row"])}
-        tests.append(entry)
-        c.tests.append(dict(entry))
-        if r["alarm_row"] >= 0:
-            c.alarms.append({"test": r["test"], "date": entry["date"], "statistic": _num(round(r["statistic"], 4)),
-                             "threshold": 1.0, "level": r["level"]})
-    block["monitors"] = tests
-    tr = st.get("tracking")
-    c.tests = [t for t in c.tests if t.get("test") != "tracking-trigg"]
-    if tr is not None and tr["statistic"] is not None:
-        c.tests.append({"test": "tracking-trigg", "statistic": _num(round(tr["statistic"], 4)), "pvalue": None,
-                        "threshold": _num(tr["limit"]), "level": tr["level"], "date": day(tr["first_row"])})
-    c.deployed["forecasts"] = block
-    crossed = [t for t in tests if t["date"]]
-    if crossed:
-        first = min(crossed, key=lambda t: t["date"])
-        what = "mean" if first["test"] == "forecast-mean" else "spread"
-        b = block["bias"]
-        bias_txt = (f"; over the last {b['n']} periods their mean error is {fmt_num(b['mean'])} {m.unit} "
-                    f"(t = {fmt_num(b['t'])}, allowing for the {logged['horizon'] - 1}-period overlap of "
-                    f"{logged['horizon']}-step errors)") if b["mean"] is not None and b["t"] is not None else ""
-        c.actions.append(Action("watch", severity="watch", extra={"source": "deployed-forecasts"}, reason=(
-            f"The production forecasts ('{fcfg.series}') went off: the monitor of their error {what} crossed its "  # type: ignore[union-attr]
-            f"boundary on {first['date']} (false-alarm rate {first['level']:.1%} over the monitoring horizon)"
-            f"{bias_txt}. The relationship monitors say whether and why to refit.")))
-
-
-# ------------------------------------------------------------------------------------------------ freshness
-def _freshness(c: _Ctx) -> None:
-    m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
-    # numpy views per series: period and available_at as int64 ns (first vintage of each period shown)
-    ser = known["series"].to_numpy()
-    per_ns = as_ns(known["period"])
-    at_ns = as_ns(known["available_at"])
-    start_ns = int(as_ns(d.periods[max(0, d.n - 26):][:1])[0])
-    feeds: dict[str, Any] = {}
-    limit = c.cfg.check.feed_limit
-    for s in m.series:
-        dr = next((x for x in m.drivers if x.series == s), None)
-        if dr is not None and dr.form != "lagged":
-            _forward_feed(c, dr, ser, per_ns, feeds)
-            continue
-        delay = c.cfg.driver_delay(m, dr) if dr else timedelta(0)
-        rows = np.flatnonzero(ser == s)
-        if rows.size == 0:
-            continue
-        lp = pd.Timestamp(int(per_ns[rows].max()))
-        due = next_due(lp, m.frequency, delay)
-        late = pd.Timestamp(c.as_of) > due
-        recent = rows[per_ns[rows] >= start_ns]
-        recent = recent[np.lexsort((at_ns[recent], per_ns[recent]))]
-        first = recent[np.r_[True, per_ns[recent][1:] != per_ns[recent][:-1]]] if recent.size else recent
-        feeds[s] = {"periods": np.datetime_as_string(per_ns[first].astype("datetime64[ns]"), unit="D").tolist(),
-                    "available_at": [t + "+00:00" for t in np.datetime_as_string(
-                        at_ns[first].astype("datetime64[ns]"), unit="s").tolist()],
-                    "next_due": due.isoformat(), "late": bool(late), "last_period": lp.date().isoformat()}
-        if late:
-            c.late.add(s)
-            missing = _periods_between(pd.Timestamp(lp), pd.Timestamp(c.as_of), m.frequency, delay)
-            role = "target" if s == m.target else "driver"
-            reason = (f"The {role} feed '{s}' is late: its last value is for the period starting "
-                      f"{lp.date().isoformat()}, and the next was due by {due.strftime('%Y-%m-%d %H:%M')} UTC "
-                      f"({missing} period{'s' if missing != 1 else ''} missing).")
-            if missing > limit and role == "driver":
-                reason += f" It has been missing for more than {limit} periods."
-            c.actions.append(Action("data-late", reason=reason,
-                                    extra={"driver": s, "last_period": lp.date().isoformat(),
-                                           "missing_periods": int(missing),
-                                           **({"feed_limit": limit} if missing > limit else {})}))
-    c.charts["feeds"] = feeds
-
-
-def _forward_feed(c: _Ctx, dr: Any, ser: np.ndarray, per_ns: np.ndarray, feeds: dict[str, Any]) -> None:
-    """A forecast or planned driver is late when the forecast of the current period had to be made
-    without it: no forecast (or plan) of the period it needs was stored by the check's moment."""
-    m = c.model
-    moment = pd.Timestamp(c.as_of) - pd.Timedelta(microseconds=1)
-    cur = period_start(moment.tz_convert("UTC").tz_localize(None), m.frequency, week_anchor=week_anchor(m))
-    need = shift_periods(pd.DatetimeIndex([cur]), m.frequency, dr.lag)[0]
-    rows = np.flatnonzero(ser == dr.series)
-    have = per_ns[rows]
-    last = pd.Timestamp(int(have.max())) if have.size else None
-    late = not bool(np.any(have == int(as_ns(pd.DatetimeIndex([need]))[0])))
-    kind = "forecast" if dr.form == "forecast" else "plan"
-    # the timeline of the chart: the periods of the last half year and when their first plan (forecast)
-    # was stored, as for a lagged feed
-    at_ns = as_ns(c.obs["available_at"])
-    start_ns = int(as_ns(shift_periods(pd.DatetimeIndex([cur]), m.frequency, 26))[0])
-    recent = rows[per_ns[rows] >= start_ns]
-    recent = recent[np.lexsort((at_ns[recent], per_ns[recent]))]
-    first = recent[np.r_[True, per_ns[recent][1:] != per_ns[recent][:-1]]] if recent.size else recent
-    feeds[dr.series] = {"periods": np.datetime_as_string(per_ns[first].astype("datetime64[ns]"), unit="D").tolist(),
-                        "available_at": [t + "+00:00" for t in np.datetime_as_string(
-                            at_ns[first].astype("datetime64[ns]"), unit="s").tolist()],
-                        "next_due": cur.tz_localize("UTC").isoformat(),
-                        "late": late, "last_period": last.date().isoformat() if last is not None else None,
-                        "form": dr.form}
-    if late:
-        c.late.add(dr.series)
-        covers = f"its latest {kind} covers the period starting {last.date().isoformat()}" if last is not None \
-            else f"no {kind} of it is stored at all"
-        c.actions.append(Action("data-late", extra={
-            "driver": dr.series, "last_period": last.date().isoformat() if last is not None else None,
-            "missing_periods": 1}, reason=(
-                f"The {kind} feed '{dr.series}' is late: the forecast for the period starting "
-                f"{cur.date().isoformat()} needed its {kind} for the period starting {need.date().isoformat()}, "
-                f"and none had arrived; {covers}.")))
-
-
-def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:
-    """How many periods after ``last`` should have arrived by ``as_of``."""
-    n = 0
-    p = last
-    while True:
-        p = next_period(p, freq)
-        due = (next_period(p, freq) + pd.Timedelta(delay)).tz_localize("UTC")
-        if due >= as_of or n > 10000:
-            return n
-        n += 1
 
 
 # ------------------------------------------------------------------------------------------------ drivers
