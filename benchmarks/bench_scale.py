@@ -23,7 +23,8 @@ process and its finished children):
 ``check``    ``run_check`` on the wide SQLite store as of the day after the appended week, with each
              executor (``local``, ``process`` with 2 workers, ``dask`` on a LocalCluster of 2 workers,
              ``dask-cluster``: an existing cluster by address, a ``dask scheduler`` and two ``dask worker``
-             processes of one thread started on 127.0.0.1 before the stage, their CPU reported beside it);
+             processes of one thread started on 127.0.0.1 before the stage, their CPU and peak memory
+             reported beside it);
 ``engine``   ``drift.engine.recursive_fit`` and ``recursive_residuals`` on the models' designs
              (M x 260 x 4: intercept, trend, two lagged drivers);
 ``yardstick`` a per-model loop of statsmodels ``RecursiveLS`` (fit) over ``--sample`` models, scaled to M.
@@ -140,10 +141,12 @@ def check_day() -> date:
 
 # ------------------------------------------------------------------------------------------------ measuring
 class TreePeak:
-    """Peak RSS of this process and all its descendants, sampled by psutil in a thread."""
+    """Peak RSS of this process (or of the processes ``pids``) and all their descendants, sampled by psutil in
+    a thread."""
 
-    def __init__(self, every: float = 0.1) -> None:
+    def __init__(self, every: float = 0.1, pids: list[int] | None = None) -> None:
         self.peak = 0
+        self._pids = pids
         self._every = every
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, daemon=True)
@@ -151,13 +154,15 @@ class TreePeak:
     def _run(self) -> None:
         import psutil
 
-        me = psutil.Process()
+        roots = [psutil.Process(p) for p in self._pids] if self._pids else [psutil.Process()]
         while not self._stop.is_set():
             total = 0
-            try:
-                procs = [me, *me.children(recursive=True)]
-            except psutil.Error:
-                procs = [me]
+            procs = []
+            for me in roots:
+                try:
+                    procs += [me, *me.children(recursive=True)]
+                except psutil.Error:
+                    procs.append(me)
             for p in procs:
                 try:
                     total += p.memory_info().rss
@@ -447,10 +452,11 @@ def drive(args: argparse.Namespace, models: int) -> list[tuple[str, dict]]:
                     _child(args, "append", backend="sqlite", layout="wide")
                 for ex in args.executors:
                     if ex == "dask-cluster":
-                        with DaskCluster(folder / "dask") as cluster:
+                        with DaskCluster(folder / "dask") as cluster, \
+                                TreePeak(pids=[p.pid for p in cluster.procs]) as peak:
                             row = _child(args, "check", executor=ex, address=cluster.address)
                             row["result"] = (f"{row.get('result', '')}; scheduler and workers (outside the "
-                                             f"tree) {cluster.cpu_s():.1f} s CPU")
+                                             f"tree): {cluster.cpu_s():.1f} s CPU, peak {peak.peak / 2**20:,.0f} MB")
                         show("check, dask by address (2 workers)", row)
                         continue
                     show(f"check, {ex}" + (" (2 workers)" if ex != "local" else ""),
