@@ -212,7 +212,7 @@ def test_a_scheduler_without_workers_is_an_error_not_a_hang(monkeypatch: pytest.
     from distributed import LocalCluster
 
     monkeypatch.setattr(executor, "WORKER_WAIT_SECONDS", 1)
-    with LocalCluster(n_workers=0, processes=False, dashboard_address=None) as lc:
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=":0") as lc:
         cfg = with_address(lc.scheduler_address)
         with pytest.raises(ClusterError, match=r"no worker.*dask worker"):
             run_chunks(cfg, cfg.models, make_obs(1), as_of(), func=analyse)
