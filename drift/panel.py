@@ -221,7 +221,7 @@ def deterministic_columns(model: ModelConfig, periods: pd.DatetimeIndex,
         h = min(pp.harmonics, int(np.floor(s / 2)))
         for j in range(1, h + 1):
             ang = 2.0 * np.pi * j * t / s
-            if not (2 * j == s):  # sin vanishes at the Nyquist harmonic of an even integer season
+            if 2 * j != s:  # sin vanishes at the Nyquist harmonic of an even integer season
                 cols.append(np.sin(ang))
                 names.append(f"sin{j}")
             cols.append(np.cos(ang))

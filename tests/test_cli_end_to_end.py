@@ -39,7 +39,7 @@ def kiosk_data(folder: Path, *, seed: int = 7, break_on: str | None = "2024-11-0
 
 
 def run(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "drift.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "drift.cli", *args], capture_output=True, text=True, check=False,
                           cwd=cwd, timeout=300)
 
 

@@ -152,7 +152,7 @@ def test_parse_duration_and_trigger() -> None:
 
 def test_cli_config_error_exits_2_without_traceback(tmp_path: Path) -> None:
     p = write(tmp_path, MINIMUM.replace("frequency: W ", "frequncy: W "))
-    r = subprocess.run([sys.executable, "-m", "drift.cli", "check", "--config", str(p)],
+    r = subprocess.run([sys.executable, "-m", "drift.cli", "check", "--config", str(p)], check=False,
                        capture_output=True, text=True, timeout=120)
     assert r.returncode == 2
     assert "Traceback" not in r.stderr
@@ -160,7 +160,7 @@ def test_cli_config_error_exits_2_without_traceback(tmp_path: Path) -> None:
 
 
 def test_cli_missing_config_exits_2(tmp_path: Path) -> None:
-    r = subprocess.run([sys.executable, "-m", "drift.cli", "check", "--config", str(tmp_path / "nope.yaml")],
+    r = subprocess.run([sys.executable, "-m", "drift.cli", "check", "--config", str(tmp_path / "nope.yaml")], check=False,
                        capture_output=True, text=True, timeout=120)
     assert r.returncode == 2 and "not found" in r.stderr and "Traceback" not in r.stderr
 

@@ -130,7 +130,7 @@ def test_the_bias_test_is_the_hac_t_statistic_statsmodels_computes() -> None:
     rng = np.random.default_rng(11)
     e = rng.normal(0.3, 1.0, (3, 60)).cumsum(axis=1) * 0.1 + rng.normal(0, 1, (3, 60))
     e[1, :7] = np.nan  # a later start
-    mean, t, p, n = _nw_mean_test(e, 3)
+    mean, t, _p, n = _nw_mean_test(e, 3)
     for i in range(3):
         v = e[i][np.isfinite(e[i])]
         fit = sm.OLS(v, np.ones(v.size)).fit(cov_type="HAC", cov_kwds={"maxlags": 3, "use_correction": False})

@@ -292,7 +292,7 @@ def test_loader_reads_each_chunk_once_and_matches_a_frame(scenario: tuple[Config
 
 
 def test_a_failing_loader_fails_only_its_chunk(scenario: tuple[Config, pd.DataFrame, str]) -> None:
-    cfg, obs, oracle = scenario
+    cfg, obs, _oracle = scenario
 
     def load(series: list[str]) -> pd.DataFrame:
         if "y2" in series:

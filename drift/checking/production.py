@@ -168,7 +168,7 @@ def _logged_evidence(c: _Ctx, logged: dict[str, Any]) -> None:
     and ``watch`` when a monitor of their mean or scale crossed its boundary."""
     from drift.deployed import MIN_BASELINE
 
-    d, m, chk = c.design, c.model, c.cfg.check
+    d, m = c.design, c.model
     st = logged.get("stats")
     c.deployed["epoch"] = m.deployed.epoch  # type: ignore[union-attr]
     fcfg = m.deployed.forecasts  # type: ignore[union-attr]

@@ -93,7 +93,7 @@ def read_sql(source: SourceConfig, since: datetime) -> RawTable:
     try:
         with engine.connect() as conn:
             result = conn.execute(stmt, params)
-            names = [str(k) for k in result.keys()]
+            names = [str(k) for k in result.keys()]  # noqa: SIM118 - a SQLAlchemy Result, not a dict
             rows = result.fetchall()
     except sa.exc.SQLAlchemyError as exc:
         first = str(getattr(exc, "orig", None) or exc).splitlines()[0]

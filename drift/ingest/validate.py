@@ -35,7 +35,7 @@ import hashlib
 import logging
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import date, datetime, timedelta
+from datetime import timedelta
 from pathlib import Path
 
 import numpy as np
@@ -585,8 +585,8 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
                                  "remove it)")
                 series[is_str] = text.str.replace(decimal, ".", regex=False)
         out = np.array(pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan))
-        out[reason != None] = np.nan  # noqa: E711 - elementwise
-        failed = np.nonzero(np.isnan(out) & (reason == None))[0]  # noqa: E711 - elementwise
+        out[reason != None] = np.nan
+        failed = np.nonzero(np.isnan(out) & (reason == None))[0]
         for i in failed:
             text = _text(values[i]).strip()
             if text == "":
@@ -596,8 +596,8 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
             else:
                 reason[i] = f"value '{text}' is not a number"
     with np.errstate(invalid="ignore"):
-        nonfinite = ~np.isfinite(out) & (reason == None)  # noqa: E711 - elementwise
-        huge = np.isfinite(out) & (np.abs(out) > MAX_ABS_VALUE) & (reason == None)  # noqa: E711
+        nonfinite = ~np.isfinite(out) & (reason == None)
+        huge = np.isfinite(out) & (np.abs(out) > MAX_ABS_VALUE) & (reason == None)
     for i in np.nonzero(nonfinite)[0]:
         reason[i] = f"value '{_text(values[i]).strip()}' is not a finite number"
     for i in np.nonzero(huge)[0]:

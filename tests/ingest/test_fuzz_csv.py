@@ -22,10 +22,9 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from drift.cli import cli
-from drift.config import Config
+from drift.config import MAX_ABS_VALUE, Config
 from drift.ingest import ingest_all
 from drift.ingest.dates import EARLIEST, LATEST
-from drift.config import MAX_ABS_VALUE
 from drift.store import observations, open_store, quarantine
 
 NOW = datetime(2024, 6, 3, 12, tzinfo=timezone.utc)
