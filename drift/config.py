@@ -315,7 +315,10 @@ class ModelConfig(_Strict):
     @field_validator("frequency", mode="before")
     @classmethod
     def _freq_case(cls, v: Any) -> Any:
-        return v.strip().upper() if isinstance(v, str) else v
+        # letters in any case; anything else is left as written, so the error quotes what the user wrote
+        if isinstance(v, str) and v.strip().upper() in ("D", "W", "M", "Q"):
+            return v.strip().upper()
+        return v
 
     @field_validator("errors")
     @classmethod

@@ -64,6 +64,8 @@ def test_example_config_loads() -> None:
     [
         ("lag: 1, form: lagged}   #", "lgg: 1, form: lagged}   #", "models[0].drivers[0].lgg", 12, "did you mean 'lag'"),
         ("frequency: W ", "frequency: X ", "models[0].frequency", 10, "'X' is not allowed"),
+        # the value as written (not upper-cased) is quoted back
+        ("frequency: W ", "frequency: fortnightly ", "models[0].frequency", 10, "'fortnightly' is not allowed"),
         ("kind: csv ", "kind: excel ", "sources[0].kind", 4, "expected 'csv', 'parquet' or 'sql'"),
         ("    period_column: week", "    perod_column: week", "sources[0].perod_column", 6, "did you mean 'period_column'"),
         ("reference: {start: 2021-01-04, end: 2023-12-25}", "reference: {start: 2021-01-04, end: 2020-12-25}",
