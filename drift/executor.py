@@ -295,17 +295,18 @@ def _bounded(submit: Callable[[int], Any], result: Callable[[Any], tuple[Payload
             except Exception as exc:  # noqa: BLE001 - e.g. the loader failed: reported per model
                 failed[nxt] = exc
             nxt += 1
+        err: BaseException
         if i in failed:
-            exc = failed.pop(i)
+            err = failed.pop(i)
         else:
             try:
                 out.append(result(pending.pop(i)))
                 done(len(chunks[i]))
                 continue
             except Exception as e:  # noqa: BLE001 - includes BrokenProcessPool / a lost worker
-                exc = e
-        _log_failure(i, n, chunks[i], exc)
-        out.append(exc)
+                err = e
+        _log_failure(i, n, chunks[i], err)
+        out.append(err)
         done(len(chunks[i]))
     return out
 
