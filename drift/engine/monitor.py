@@ -418,15 +418,7 @@ def _shift(S: FloatArray, m: IntArray, horizon: float | None, level: float, para
     I = np.where(mon, info if info is not None else count, 0.0)
     S0 = np.where(mon, S, 0.0)
     up, dn = _page_k(S0 - kappa * I, -S0 - kappa * I)
-    path = np.where(mon, np.where(up >= dn, up, -dn), np.nan)
-    c = fam_table.critical_value("shift", steps, level, dof)
-    cvs = {lvl: fam_table.critical_value("shift", steps, lvl, dof) for lvl in REPORTED_LEVELS}
-    boundary = np.where(mon & (within | extend), c[:, None], np.nan)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = _nanmax(np.where(within, np.abs(path) / boundary, np.nan))
-    pval = fam_table.pvalue("shift", steps, ratio * c, dof)
-    params.update(kappa=kappa, horizon_steps=steps if steps.size > 1 else float(steps[0]))
-    return path, boundary, c, pval, cvs, params
+    return _two_sided_page("shift", up, dn, mon, steps, within, level, dof, extend, kappa, params)
 
 
 def _variance(S: FloatArray, m: IntArray, horizon: float | None, level: float, params: dict,
@@ -445,13 +437,21 @@ def _variance(S: FloatArray, m: IntArray, horizon: float | None, level: float, p
     I = np.cumsum(valid, axis=1).astype(float)
     Q = np.cumsum(q, axis=1)
     up, dn = _page_k(Q - kappa * I, -Q - kappa * I)
+    return _two_sided_page("variance", up, dn, mon, steps, within, level, dof, extend, kappa, params)
+
+
+def _two_sided_page(kind: str, up: FloatArray, dn: FloatArray, mon: Any, steps: FloatArray, within: Any,
+                    level: float, dof: FloatArray | None, extend: bool, kappa: float, params: dict) -> tuple:
+    """The signed path of a two-sided Page CUSUM (the larger side), its family-table boundary over the
+    horizon (``extend``: beyond it too), critical values, and the p-value of its largest excursion within
+    the horizon."""
     path = np.where(mon, np.where(up >= dn, up, -dn), np.nan)
-    c = fam_table.critical_value("variance", steps, level, dof)
-    cvs = {lvl: fam_table.critical_value("variance", steps, lvl, dof) for lvl in REPORTED_LEVELS}
+    c = fam_table.critical_value(kind, steps, level, dof)
+    cvs = {lvl: fam_table.critical_value(kind, steps, lvl, dof) for lvl in REPORTED_LEVELS}
     boundary = np.where(mon & (within | extend), c[:, None], np.nan)
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = _nanmax(np.where(within, np.abs(path) / boundary, np.nan))
-    pval = fam_table.pvalue("variance", steps, ratio * c, dof)
+    pval = fam_table.pvalue(kind, steps, ratio * c, dof)
     params.update(kappa=kappa, horizon_steps=steps if steps.size > 1 else float(steps[0]))
     return path, boundary, c, pval, cvs, params
 
