@@ -45,6 +45,7 @@ from drift.checking.designs import (  # noqa: F401
 from drift.checking.drivers import (  # noqa: F401
     _drivers_and_worth,
     _lag_drift,
+    _lag_profiles_batched,
     _min_lag,
     _one_step_errors,
     _rolling_forecast_errors,
@@ -146,7 +147,6 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     for group in groups.values():
         _screen_isolated(group, errors)
     _logged_forecasts([c for c in ctxs if c.model.name not in errors and c.model.forecast_series], errors)
-    out = []
     for c in ctxs:
         if c.model.name in errors:
             continue
@@ -154,6 +154,16 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
             _deployed_replay(c)
             _freshness(c)
             _drivers_and_worth(c)
+        except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry
+            errors[c.model.name] = _failure(c.model.name, "analysing it", exc)
+    # the lag profiles of the whole chunk in a few batched engine calls (each model's own stage below uses
+    # them, and computes for itself whatever the batch could not)
+    _lag_profiles_batched([c for c in ctxs if c.model.name not in errors])
+    out = []
+    for c in ctxs:
+        if c.model.name in errors:
+            continue
+        try:
             _lag_drift(c)
             out.append(_payload(c))
         except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry

@@ -183,3 +183,35 @@ def test_json_lists_every_model_in_order_with_error_entries(tmp_path: Path) -> N
     assert set(out["models"][0]) - {"charts"} <= set(bad)
     assert bad["actions"] == [] and bad["drivers"] == [] and bad["target"] == "by"
     json.dumps(out, allow_nan=False)
+
+
+def test_batched_lag_profiles_equal_the_per_model_ones(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The chunk's lag profiles in a few batched engine calls give the payloads the per-model calls give,
+    byte for byte, also when the engine refuses a batch (here the first one, as it would for one series too
+    short or constant): the batch is split until each part is computed or alone. Oracle: the same check
+    with the batched stage switched off (common practice, no source)."""
+    from drift.exceptions import InsufficientDataError
+
+    cfg = chunk_config(tmp_path, {})
+    obs = obs_with(dict(VALUES))
+    calls: list[int] = []
+    real = drift.engine.lag_profile
+
+    def counted(y: Any, x: Any, max_lag: int, **kw: Any) -> Any:
+        rows = np.shape(y)[0] if np.ndim(y) == 2 else 1
+        calls.append(rows)
+        if rows == 6 and calls.count(6) == 1:
+            raise InsufficientDataError("lag profile (target or driver is constant)", 2, 0)
+        return real(y, x, max_lag, **kw)
+
+    monkeypatch.setattr(drift.engine, "lag_profile", counted)
+    batched, errors = run_chunk(cfg, obs)
+    # 3 models x 2 drivers: refused, then split in halves, each half one call per window
+    assert calls == [6, 3, 3, 3, 3]
+    n_batched = len(calls)
+    calls.clear()
+    monkeypatch.setattr(drift.check, "_lag_profiles_batched", lambda ctxs: None)
+    single, errors_single = run_chunk(cfg, obs)
+    assert errors == errors_single == {}
+    assert json.dumps(batched, sort_keys=True, default=str) == json.dumps(single, sort_keys=True, default=str)
+    assert set(calls) == {1} and n_batched < len(calls)

@@ -138,9 +138,14 @@ def _one_step_errors(Y: np.ndarray, X: np.ndarray, coef: np.ndarray) -> np.ndarr
     return out
 
 
-def _lag_drift(c: _Ctx) -> None:
-    """Cross-correlation profile, reference vs recent window, of target and driver after removing the
-    deterministic terms; ``relag`` when the peak moved, is significant and the new lag forecasts better."""
+def _lag_series(c: _Ctx) -> tuple[int, int, list[tuple[Any, np.ndarray, np.ndarray]]]:
+    """The series whose cross-correlations :func:`_lag_drift` profiles: ``(max_lag, recent_n, items)``, one
+    item ``(driver, ry, rx)`` per lagged driver, the target's partial residual ``ry`` (deterministic terms
+    and the other drivers' reference effects removed) and the driver ``rx`` less its deterministic part,
+    both estimated on the reference period only (no look-ahead). Why a driver has none is recorded in
+    ``charts['lag_profile_skipped']``. Kept in ``charts['_lag_series']`` so it is built once per check."""
+    if "_lag_series" in c.charts:
+        return c.charts["_lag_series"]
     d, chk, m = c.design, c.cfg.check, c.model
     max_lag = chk.max_lag or MAX_LAG_BY_FREQ[m.frequency]
     ref = slice(0, d.n_ref)
@@ -148,10 +153,12 @@ def _lag_drift(c: _Ctx) -> None:
     ok = np.isfinite(d.y[ref])
     skipped: dict[str, str] = {}
     c.charts["lag_profile_skipped"] = skipped  # why a driver has no profile (said beside the chart)
+    items: list[tuple[Any, np.ndarray, np.ndarray]] = []
+    c.charts["_lag_series"] = out = (max_lag, 0, items)
     lagged = [dr.series for dr in m.drivers if dr.form == "lagged" and dr.series in d.driver_columns]
     if ok.sum() <= det.shape[1] + max_lag + 5:
         skipped.update({s: f"too few reference periods for {max_lag} lags" for s in lagged})
-        return
+        return out
     # deterministic part estimated on the reference period only (no look-ahead into the monitoring span)
     def _resid(v: np.ndarray) -> np.ndarray:
         good = np.isfinite(v[ref])
@@ -163,10 +170,10 @@ def _lag_drift(c: _Ctx) -> None:
     b_ref, *_ = np.linalg.lstsq(d.X[ref][okx], d.y[ref][okx], rcond=None)
     fitted = d.X @ b_ref
     recent_n = min(chk.recent_window, d.n - d.n_ref)
+    c.charts["_lag_series"] = out = (max_lag, recent_n, items)
     if recent_n < max(20, max_lag + 10):
         skipped.update({s: f"{recent_n} periods monitored, {max(20, max_lag + 10)} needed" for s in lagged})
-        return
-    profiles: dict[str, Any] = {}
+        return out
     obs = c.obs
     for dr in m.drivers:
         s = dr.series
@@ -183,11 +190,77 @@ def _lag_drift(c: _Ctx) -> None:
             continue
         rx = _resid(xv)
         j = d.driver_columns[s]
-        ry = d.y - fitted + d.X[:, j] * b_ref[j]
+        items.append((dr, d.y - fitted + d.X[:, j] * b_ref[j], rx))
+    return out
+
+
+def _lag_profiles_batched(ctxs: list[_Ctx]) -> None:
+    """The lag profiles of every model's lagged drivers, one engine call per window shape for the whole
+    chunk instead of two per driver and model (the same numbers: each row of the batched call is computed
+    on its own). Kept in ``charts['_lag_profiles']``; a model whose inputs fail here, or a batch the engine
+    refuses (one series too short or constant), is left to :func:`_lag_drift`, which computes and reports
+    it model by model."""
+    jobs: dict[tuple[int, int, int], list[tuple[_Ctx, str, np.ndarray, np.ndarray]]] = {}
+    for c in ctxs:
         try:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
-                lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
+            max_lag, recent_n, items = _lag_series(c)
+        except Exception:  # noqa: BLE001 - raised again in the model's own stage, and reported there
+            c.charts.pop("_lag_series", None)
+            continue
+        c.charts["_lag_profiles"] = {}
+        d = c.design
+        for dr, ry, rx in items:
+            jobs.setdefault((d.n_ref, recent_n, max_lag), []).append((c, dr.series, ry, rx))
+    for (n_ref, recent_n, max_lag), group in jobs.items():
+        _profile_group(group, n_ref, recent_n, max_lag)
+
+
+def _profile_group(group: list[tuple[_Ctx, str, np.ndarray, np.ndarray]], n_ref: int, recent_n: int,
+                   max_lag: int) -> None:
+    """One batched call per window; a batch the engine refuses (a series too short or constant) is split in
+    halves until the series it refuses is alone, which its model's own stage then computes and reports."""
+    if len(group) < 2:
+        return
+    try:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            lp_ref = engine.lag_profile(np.stack([ry[:n_ref] for _, _, ry, _ in group]),
+                                        np.stack([rx[:n_ref] for _, _, _, rx in group]), max_lag)
+            lp_rec = engine.lag_profile(np.stack([ry[len(ry) - recent_n:] for _, _, ry, _ in group]),
+                                        np.stack([rx[len(rx) - recent_n:] for _, _, _, rx in group]), max_lag)
+    except (DriftError, np.linalg.LinAlgError):
+        half = len(group) // 2
+        _profile_group(group[:half], n_ref, recent_n, max_lag)
+        _profile_group(group[half:], n_ref, recent_n, max_lag)
+        return
+    for i, (c, s, _, _) in enumerate(group):
+        c.charts["_lag_profiles"][s] = (_row(lp_ref, i), _row(lp_rec, i))
+
+
+def _row(lp: Any, i: int) -> Any:
+    """Row ``i`` of a batched :class:`drift.engine.lags.LagProfile`, as a single-model one."""
+    return type(lp)(ccf=lp.ccf[i], band=float(lp.band[i]), nobs=int(lp.nobs[i]), peak_lag=int(lp.peak_lag[i]),
+                    peak_significant=bool(lp.peak_significant[i]), ar_order=int(lp.ar_order[i]),
+                    level=lp.level, squeeze=True)
+
+
+def _lag_drift(c: _Ctx) -> None:
+    """Cross-correlation profile, reference vs recent window, of target and driver after removing the
+    deterministic terms; ``relag`` when the peak moved, is significant and the new lag forecasts better."""
+    d, chk, m = c.design, c.cfg.check, c.model
+    max_lag, recent_n, items = _lag_series(c)
+    skipped = c.charts["lag_profile_skipped"]
+    done = c.charts.get("_lag_profiles", {})
+    profiles: dict[str, Any] = {}
+    obs = c.obs
+    for dr, ry, rx in items:
+        s = dr.series
+        try:
+            if s in done:
+                lp_ref, lp_rec = done[s]
+            else:
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
+                    lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
         except (DriftError, np.linalg.LinAlgError) as exc:
             log.info("model %s: no lag profile for %s: %s", m.name, s, exc)
             skipped[s] = f"cannot be computed ({exc})"
