@@ -812,6 +812,9 @@ def _yaml_step(step: Any, file: str) -> Any:
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         problem = getattr(exc, "problem", None) or str(exc)
+        if "nesting depth" in str(problem):  # libyaml's own depth limit (PyYAML 6.0.4 and later)
+            raise ConfigError("not valid YAML for drift: nested too deeply (the YAML parser's own limit)",
+                              file=file, line=mark.line + 1 if mark is not None else None) from None
         raise ConfigError(f"not valid YAML: {problem}", file=file,
                           line=mark.line + 1 if mark is not None else None) from None
     except RecursionError:
