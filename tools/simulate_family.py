@@ -1,7 +1,8 @@
 """Simulate the constants of drift's monitor family: the abrupt-shift and variance monitors, and the level
 each member of a stream's family runs at so that the family as a whole holds its false-alarm probability.
 
-Writes ``drift/engine/tables/family.py`` (committed). Run from the repository root::
+Writes ``drift/engine/tables/family_data.py`` (committed; data only, the lookups are hand-written in
+``drift/engine/tables/family.py``). Run from the repository root::
 
     python tools/simulate_family.py                       # full run (a few minutes on 2 cores)
     python tools/simulate_family.py --reps 2000 --family-reps 2000 --out /tmp/f.py   # quick smoke run
@@ -142,124 +143,11 @@ def _fmt(arr: np.ndarray, indent: str = "    ") -> str:
     return "[\n" + "".join(inner + _fmt(row, inner) + ",\n" for row in arr) + indent + "]"
 
 
-LOOKUP_CODE = '''
-
-def _dof_stack(known: Any, by_dof: dict, dof: Any, shape: tuple[int, ...]) -> np.ndarray:
-    """Quantile rows (N, tail) interpolated linearly in 1/dof (known scale at 1/dof = 0)."""
-    known = np.asarray(known, dtype=float)
-    if dof is None:
-        return np.broadcast_to(known, (*shape, *known.shape))
-    nu = np.broadcast_to(np.asarray(dof, dtype=float), shape)
-    if np.any(np.isnan(nu)) or np.any(nu < DOF[0] - 1e-12):
-        raise ValueError(f"dof must be >= {DOF[0]} (the smallest tabulated) or inf, got {dof!r}")
-    inv_grid = np.concatenate([[0.0], 1.0 / np.asarray(DOF[::-1], dtype=float)])
-    stack = np.stack([known] + [np.asarray(by_dof[d], dtype=float) for d in DOF[::-1]])
-    with np.errstate(divide="ignore"):
-        inv = np.where(np.isinf(nu), 0.0, 1.0 / nu)
-    i = np.clip(np.searchsorted(inv_grid, inv, side="right") - 1, 0, len(inv_grid) - 2)
-    w = ((inv - inv_grid[i]) / (inv_grid[i + 1] - inv_grid[i]))[..., None, None]
-    return (1.0 - w) * stack[i] + w * stack[i + 1]
-
-
-def _interp_steps(rows: np.ndarray, steps: np.ndarray) -> np.ndarray:
-    """Rows (..., N, tail) at ``steps`` (same leading shape), linear in log N. Below the first N the first
-    row (conservative: quantiles grow with N); beyond the last a ValueError."""
-    if np.any(steps > N_GRID[-1] + 1e-9):
-        raise ValueError(f"horizon of {float(np.max(steps)):.0f} steps is beyond the simulated table "
-                         f"(max {N_GRID[-1]}); extend tools/simulate_family.py")
-    x = np.log(np.clip(steps, N_GRID[0], N_GRID[-1]))
-    g = np.log(np.asarray(N_GRID, dtype=float))
-    i = np.clip(np.searchsorted(g, x, side="right") - 1, 0, len(g) - 2)
-    w = ((x - g[i]) / (g[i + 1] - g[i]))[..., None]
-    lo = np.take_along_axis(rows, i[..., None, None], axis=-2)[..., 0, :]
-    hi = np.take_along_axis(rows, (i + 1)[..., None, None], axis=-2)[..., 0, :]
-    return (1.0 - w) * lo + w * hi
-
-
-def quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:
-    """Quantiles (shape ``steps.shape + (len(TAIL_PROBS),)``) of the maximum of ``detector`` ("shift" or
-    "variance") over ``steps`` monitored steps, for a known scale (``dof`` None) or one estimated with
-    ``dof`` degrees of freedom (interpolated linearly in 1/dof)."""
-    if detector == "shift":
-        known, by_dof = SHIFT, SHIFT_DOF
-    elif detector == "variance":
-        known, by_dof = VARIANCE, VARIANCE_DOF
-    else:
-        raise ValueError(f"detector must be 'shift' or 'variance', got {detector!r}")
-    steps = np.atleast_1d(np.asarray(steps, dtype=float))
-    if np.any(~np.isfinite(steps)) or np.any(steps <= 0):
-        raise ValueError("steps must be positive and finite")
-    return _interp_steps(_dof_stack(known, by_dof, dof, steps.shape), steps)
-
-
-def critical_value(detector: str, steps: Any, level: float, dof: Any = None) -> np.ndarray:
-    """Critical value at false-alarm probability ``level`` over ``steps`` monitored steps; between the
-    tabulated tail probabilities interpolated linearly in log(level)."""
-    probs = np.asarray(TAIL_PROBS)
-    if not (probs.min() - 1e-12 <= level <= probs.max() + 1e-12):
-        raise ValueError(f"level must be in [{probs.min()}, {probs.max()}], got {level!r}")
-    q = quantiles(detector, steps, dof)
-    i = int(np.clip(np.searchsorted(-probs, -level), 1, len(probs) - 1))
-    p_hi, p_lo = probs[i - 1], probs[i]
-    w = (np.log(p_hi) - np.log(level)) / (np.log(p_hi) - np.log(p_lo))
-    return (1.0 - w) * q[..., i - 1] + w * q[..., i]
-
-
-def pvalue(detector: str, steps: Any, statistic: Any, dof: Any = None) -> np.ndarray:
-    """p-value by interpolating log tail probability against the quantiles, clipped to
-    [min(TAIL_PROBS), 0.5]; NaN statistics give NaN."""
-    stat = np.atleast_1d(np.asarray(statistic, dtype=float))
-    q = quantiles(detector, np.broadcast_to(steps, stat.shape), dof)
-    logp = np.log(np.asarray(TAIL_PROBS))
-    finite = np.isfinite(stat)
-    s = np.where(finite, stat, 0.0)
-    j = np.clip((q <= s[..., None]).sum(axis=-1), 1, len(TAIL_PROBS) - 1)
-    q0 = np.take_along_axis(q, (j - 1)[..., None], axis=-1)[..., 0]
-    q1 = np.take_along_axis(q, j[..., None], axis=-1)[..., 0]
-    w = np.clip((s - q0) / (q1 - q0), 0.0, 1.0)
-    return np.where(finite, np.exp((1.0 - w) * logp[j - 1] + w * logp[j]), np.nan)
-
-
-def member_level(kind: str, steps: Any, ratio: Any, level: float) -> np.ndarray:
-    """Marginal level of each member of a ``kind`` family (see the module docstring) so that the family
-    signals with probability ``level`` over ``steps`` monitored steps, ``ratio`` = steps / reference size.
-
-    Interpolated linearly in log N, log H and log level; outside the simulated N and H the nearest
-    edge is used (the ratio p / level moves little there), and below the smallest level the smallest
-    level's ratio. Never below ``level / members`` (Bonferroni, which holds whatever the dependence).
-    """
-    if kind not in FAMILY:
-        raise ValueError(f"kind must be one of {sorted(FAMILY)}, got {kind!r}")
-    if not 0.0 < level < 1.0:
-        raise ValueError(f"level must be in (0, 1), got {level!r}")
-    steps = np.atleast_1d(np.asarray(steps, dtype=float))
-    ratio = np.broadcast_to(np.asarray(ratio, dtype=float), steps.shape)
-    table = np.asarray(FAMILY[kind], dtype=float)
-    lv = np.log(np.asarray(FAMILY_LEVELS))
-    x = np.clip(np.log(level), lv[0], lv[-1])
-    j = int(np.clip(np.searchsorted(lv, x, side="right") - 1, 0, len(lv) - 2))
-    wl = (x - lv[j]) / (lv[j + 1] - lv[j])
-    by_level = (1.0 - wl) * table[..., j] + wl * table[..., j + 1]  # (N, H)
-
-    def axis_w(grid: tuple[float, ...], v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        g = np.log(np.asarray(grid, dtype=float))
-        xv = np.clip(np.log(np.maximum(v, 1e-12)), g[0], g[-1])
-        i = np.clip(np.searchsorted(g, xv, side="right") - 1, 0, len(g) - 2)
-        return i, (xv - g[i]) / (g[i + 1] - g[i])
-
-    i, wn = axis_w(FAMILY_N, steps)
-    k, wh = axis_w(FAMILY_H, ratio)
-    r = ((1 - wn) * (1 - wh) * by_level[i, k] + wn * (1 - wh) * by_level[i + 1, k]
-         + (1 - wn) * wh * by_level[i, k + 1] + wn * wh * by_level[i + 1, k + 1])
-    return np.maximum(r, 1.0 / len(KINDS[kind])) * level
-'''
-
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=30000, help="replications of the marginal tables")
     ap.add_argument("--family-reps", type=int, default=40000, help="replications of the family tables")
-    ap.add_argument("--out", default="drift/engine/tables/family.py")
+    ap.add_argument("--out", default="drift/engine/tables/family_data.py")
     args = ap.parse_args()
     t0 = time.time()
     marg = simulate_marginal(args.reps, np.random.default_rng(SEED), np.random.default_rng(SEED + 1))
@@ -267,7 +155,8 @@ def main() -> None:
     elapsed = time.time() - t0
     parts = [f'''"""Simulated constants of the monitor family: abrupt-shift and variance monitors, per-member levels.
 
-GENERATED by ``tools/simulate_family.py`` -- do not edit by hand; re-run the script instead.
+GENERATED by ``tools/simulate_family.py`` -- do not edit by hand; re-run the script instead. Data only: the
+lookups are :mod:`drift.engine.tables.family`.
 
 Simulation record: seeds {SEED} (marginal maxima, {args.reps} replications; estimated scales stratified,
 seed {SEED + 1}) and {SEED + 2} (family, {args.family_reps} replications), iid N(0, 1) increments, horizons
@@ -285,10 +174,6 @@ counted in monitored steps; {elapsed:.0f} s.
 """
 
 from __future__ import annotations
-
-from typing import Any
-
-import numpy as np
 
 SEED = {SEED}
 REPLICATIONS = {args.reps}
@@ -317,7 +202,6 @@ VARIANCE = {_fmt(marg["variance|inf"])}
     for kind, arr in fam.items():
         parts.append(f"    {kind!r}: {_fmt(arr, '    ')},\n")
     parts.append("}\n")
-    parts.append(LOOKUP_CODE)
     pathlib.Path(args.out).write_text("".join(parts))
     print(f"wrote {args.out} in {elapsed:.1f} s")
 

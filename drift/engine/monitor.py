@@ -45,9 +45,9 @@ detector, chosen by a short name from :data:`DETECTORS`:
 The mosum and page critical values ``c`` and the finite-horizon csw a^2 hold the false-alarm probability
 over the monitoring horizon; they were simulated by ``tools/simulate_monitoring.py`` into
 :mod:`drift.engine.tables.monitoring`. The shift and variance constants (horizons in monitored steps) were
-simulated by ``tools/simulate_family.py`` into :mod:`drift.engine.tables.family`, which also holds the
-level at which each member of a family of monitors on one stream runs so that the family as a whole holds
-its level (:func:`family_level`).
+simulated by ``tools/simulate_family.py`` into :mod:`drift.engine.tables.family_data`, looked up through
+:mod:`drift.engine.tables.family`; the data also hold the level at which each member of a family of
+monitors on one stream runs so that the family as a whole holds its level (:func:`family_level`).
 
 Why recursive residuals for every detector: their null distribution is exact for any design, including a
 detrended design without an intercept, whereas the frozen-fit (OLS-based) residual process of Zeileis et
