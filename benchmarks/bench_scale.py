@@ -505,6 +505,60 @@ def profile(models: int, top: int) -> None:
             print(f"| `{where}:{line} {fn}` | {nc} | {t:.2f} | {t / total:.0%} |")
 
 
+def breakdown(models: int, keep: str | None = None) -> None:
+    """Wall time of each stage of one local check (no profiler): where the time goes, in seconds.
+
+    ``keep``: a folder to build the store in once and reuse on later runs (quicker iterations)."""
+    import drift.check as chk
+    from drift.config import load_config
+    from drift.pipeline import run_check, run_ingest
+    from drift.store import Store, open_store
+
+    spent: dict[str, float] = {}
+    calls: dict[str, int] = {}
+
+    def timed(name: str, fn):
+        def wrapper(*a, **kw):
+            t0 = time.perf_counter()
+            try:
+                return fn(*a, **kw)
+            finally:
+                spent[name] = spent.get(name, 0.0) + time.perf_counter() - t0
+                calls[name] = calls.get(name, 0) + 1
+        return wrapper
+
+    stages = ["_prepare", "_screen", "_logged_forecasts", "_deployed_replay", "_freshness", "_drivers_and_worth",
+              "_lag_profiles_batched", "_lag_drift", "_payload", "_alerts_and_delivery"]
+    with tempfile.TemporaryDirectory(prefix="bench-scale-") as d:
+        folder = Path(keep) if keep else Path(d)
+        folder.mkdir(parents=True, exist_ok=True)
+        db = folder / "store-wide.db"
+        fresh = not db.exists()
+        if fresh:
+            write_files(folder, models)
+            shutil.copy(folder / "daily" / "wide-0001.csv", folder / "wide" / "wide-0001.csv")
+        cfg = load_config(write_config(folder, models, "wide", f"sqlite:///{db}"))
+        store = open_store(cfg.store_url())
+        if fresh:
+            run_ingest(cfg, store, progress=False)
+        for name in stages:
+            setattr(chk, name, timed(name, getattr(chk, name)))
+        for name in ("load_observations", "save_verdicts"):
+            setattr(Store, name, timed(name, getattr(Store, name)))
+        t0 = time.perf_counter()
+        c0 = _cpu()
+        run_check(cfg, store, as_of=check_day())
+        wall, cpu = time.perf_counter() - t0, _cpu() - c0
+    print(f"\nstages of one local check, {models} models: {wall:.1f} s wall, {cpu:.1f} s CPU "
+          f"({wall / models * 1000:.1f} ms per model); load {_load()}")
+    print("\n| stage | calls | wall s | share |\n|---|---:|---:|---:|")
+    for name in ("load_observations", *stages, "save_verdicts"):
+        if name in spent:
+            print(f"| {name} | {calls[name]} | {spent[name]:.2f} | {spent[name] / wall:.0%} |")
+    rest = wall - sum(v for k, v in spent.items())
+    print(f"| rest (run_check around the stages) | | {rest:.2f} | {rest / wall:.0%} |")
+
+
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--models", type=int, nargs="+", default=[1000])
@@ -517,6 +571,8 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--timeout", type=float, default=1200, help="seconds before a stage is stopped")
     ap.add_argument("--profile", action="store_true", help="cProfile one local check instead")
     ap.add_argument("--top", type=int, default=25)
+    ap.add_argument("--breakdown", action="store_true", help="wall time per stage of one local check instead")
+    ap.add_argument("--keep", help="with --breakdown: build the store in this folder once and reuse it")
     # internal: one stage in a child interpreter
     ap.add_argument("--stage", help=argparse.SUPPRESS)
     ap.add_argument("--dir", help=argparse.SUPPRESS)
@@ -534,6 +590,9 @@ def main(argv: list[str] | None = None) -> None:
         return
     if args.profile:
         profile(args.models[0], args.top)
+        return
+    if args.breakdown:
+        breakdown(args.models[0], args.keep)
         return
     print(f"machine: {platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}, "
           f"{time.strftime('%Y-%m-%d %H:%M')}; load {_load()}")
