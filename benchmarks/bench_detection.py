@@ -37,6 +37,11 @@ In the same run, the same figures for a plain reference monitor (:func:`page_ref
 CUSUM (reference value 0.5 sigma) of the recursive residuals of the monitored span, standardised by the
 reference-period scale, its threshold simulated for a 5% false-alarm rate over the 2 monitored years. With
 ``errors: ar(1)`` it monitors the data prewhitened by the AR(1) coefficient of the reference residuals.
+For a scenario that moves the target's mean one way (promo-4s, promo-1s, vanish) also that Page CUSUM
+told the direction (one-sided, 5 %), and for every scenario that moves the mean (those and lag) the
+oracle bound (:func:`oracle_bound`): the share of models that any monitor of the recursive residuals at
+5 % can have signalled by each delay, computed from the power of the test told the change's date,
+direction and size. A target above the bound is out of reach of every such monitor, drift's included.
 
 A script, not a test: ``tests/test_bench_detection.py`` keeps a small seeded version of the size and power
 claims by calling the same scenario code.
@@ -159,28 +164,27 @@ def simulate(sc: Scenario, n_models: int, freq: Frequency, seed: int = SEED) -> 
 PAGE_K = 0.5  # reference value in sigma units: tuned to a one-sigma shift (common practice, no source)
 
 
-def page_threshold(n_mon: int, dof: int, level: float = 0.05, reps: int = 20000, seed: int = SEED) -> float:
-    """Threshold h of the two-sided Page CUSUM with reference value PAGE_K such that under no change
-    P(max over n_mon steps of max(S+, S-) > h) = level; the scale estimate's chi-square(dof) error is
-    simulated with it."""
+def page_threshold(n_mon: int, dof: int, level: float = 0.05, reps: int = 20000, seed: int = SEED,
+                   one_sided: bool = False) -> float:
+    """Threshold h of the two-sided (or upper one-sided) Page CUSUM with reference value PAGE_K such that
+    under no change P(max over n_mon steps of max(S+, S-) > h) = level; the scale estimate's
+    chi-square(dof) error is simulated with it."""
     rng = np.random.default_rng(seed)
     z = rng.normal(size=(reps, n_mon)) / np.sqrt(rng.chisquare(dof, size=(reps, 1)) / dof)
-    return float(np.quantile(_page_max(z), 1 - level))
+    return float(np.quantile(_page_first(z, np.inf, one_sided)[1], 1 - level))
 
 
-def _page_max(z: np.ndarray) -> np.ndarray:
-    return _page_first(z, np.inf)[1]
-
-
-def _page_first(z: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
-    """(first index with max(S+, S-) > h or -1, running maximum of max(S+, S-)) per row of z."""
+def _page_first(z: np.ndarray, h: float, one_sided: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """(first index with max(S+, S-) > h or -1, running maximum of max(S+, S-)) per row of z; one-sided:
+    S+ only."""
     sp = np.zeros(z.shape[0])
     sm = np.zeros(z.shape[0])
     first = np.full(z.shape[0], -1)
     top = np.zeros(z.shape[0])
     for s in range(z.shape[1]):
         sp = np.maximum(0.0, sp + np.nan_to_num(z[:, s]) - PAGE_K)
-        sm = np.maximum(0.0, sm - np.nan_to_num(z[:, s]) - PAGE_K)
+        if not one_sided:
+            sm = np.maximum(0.0, sm - np.nan_to_num(z[:, s]) - PAGE_K)
         cur = np.maximum(sp, sm)
         first = np.where((first < 0) & (cur > h), s, first)
         top = np.maximum(top, cur)
@@ -207,12 +211,10 @@ def _ar1_reference(Y: np.ndarray, X: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.array([np.interp(rho[i], g[i], grid) for i in range(len(rho))])
 
 
-def page_reference(Y: np.ndarray, X: np.ndarray, m: int, ar: bool = False, level: float = 0.05
-                   ) -> np.ndarray:
-    """First alarm row (index into Y's columns, -1 for none) of the plain reference monitor: a two-sided
-    Page CUSUM of the standardised recursive residuals of rows m.., scale from the reference fit (rows
-    < m), batched over models. With ``ar``: data prewhitened by the reference residuals' lag-1
-    autocorrelation first."""
+def _reference_z(Y: np.ndarray, X: np.ndarray, m: int, ar: bool = False) -> tuple[np.ndarray, int]:
+    """Standardised recursive residuals of rows m.. (scale from the reference fit of rows < m), batched over
+    models, and the scale's degrees of freedom. With ``ar``: data prewhitened by the reference residuals'
+    AR(1) coefficient first (the residuals then start one row later)."""
     XtX = np.einsum("mti,mtj->mij", X[:, :m], X[:, :m])
     b = np.linalg.solve(XtX, np.einsum("mti,mt->mi", X[:, :m], Y[:, :m])[..., None])[..., 0]
     if ar:
@@ -235,9 +237,54 @@ def page_reference(Y: np.ndarray, X: np.ndarray, m: int, ar: bool = False, level
         z[:, j] = err / np.sqrt(f) / s
         b = b + Px * (err / f)[:, None]
         P = P - np.einsum("mi,mj->mij", Px, Px) / f[:, None, None]
-    h = page_threshold(z.shape[1], m - k, level)
-    first = _page_first(z, h)[0]
+    return z, m - k
+
+
+def page_reference(Y: np.ndarray, X: np.ndarray, m: int, ar: bool = False, level: float = 0.05,
+                   direction: int = 0) -> np.ndarray:
+    """First alarm row (index into Y's columns, -1 for none) of the plain reference monitor: a two-sided
+    Page CUSUM of the standardised recursive residuals of rows m.., scale from the reference fit (rows
+    < m), batched over models. With ``ar``: data prewhitened by the reference residuals' lag-1
+    autocorrelation first. ``direction`` +1 / -1: the one-sided Page CUSUM told the direction of the
+    change (upward / downward), its threshold simulated for ``level`` one-sided."""
+    z, dof = _reference_z(Y, X, m, ar)
+    if direction:
+        h = page_threshold(z.shape[1], dof, level, one_sided=True)
+        first = _page_first(direction * z, h, one_sided=True)[0]
+    else:
+        h = page_threshold(z.shape[1], dof, level)
+        first = _page_first(z, h)[0]
     return np.where(first >= 0, first + m + (1 if ar else 0), -1)
+
+
+def oracle_bound(Y_change: np.ndarray, Y_base: np.ndarray, X: np.ndarray, change: int,
+                 level: float = 0.05, sigma: float = SIGMA) -> np.ndarray:
+    """Upper bound, per delay d = 0, 1, ... after the change row, on the share of models that *any* monitor
+    of the recursive residuals (drift's and the reference's) can have signalled by then at false-alarm
+    probability ``level``: the power of the one-sided test of the change told its date, its direction and
+    its size, with the error scale known.
+
+    ``Y_change - Y_base`` is the scenario's change of the target's mean given the drivers (common random
+    numbers: the same drivers and errors), ``s``. Told all that, the most powerful test among those
+    unaffected by the level of the coefficients (y -> y + X g; recursive residuals are) of "no change"
+    against "the mean moved by s" on the rows up to ``change + d`` is the one-sided test of s's
+    coefficient in the regression on X (Neyman-Pearson on the residuals of X; Lehmann & Romano 2005,
+    ch. 6, most powerful invariant tests); its power is ``Phi(|M s| / sigma - z_level)``, M the residual
+    maker of X over those rows. A monitor must also hold its level at every earlier row, which only
+    lowers its chance, so no monitor's P(alarm by d) exceeds this.
+    Returns the (D,) mean over the models."""
+    from scipy import stats
+
+    s = Y_change - Y_base
+    za = stats.norm.isf(level)
+    out = []
+    for end in range(change + 1, Y_change.shape[1] + 1):
+        Xa, sa = X[:, :end], s[:, :end]
+        b = np.linalg.solve(np.einsum("mti,mtj->mij", Xa, Xa), np.einsum("mti,mt->mi", Xa, sa)[..., None])[..., 0]
+        r = sa - np.einsum("mti,mi->mt", Xa, b)
+        lam = np.sqrt(np.sum(r * r, axis=1)) / sigma
+        out.append(float(np.mean(stats.norm.cdf(lam - za))))
+    return np.array(out)
 
 
 # ------------------------------------------------------------------------------------------------ drift
@@ -382,6 +429,13 @@ def targets(res: dict[str, Any]) -> list[tuple[str, str, bool]]:
             if not ok and (lo <= bound if kind == "max" else hi >= bound):
                 shown += ", a miss within sampling error"
         label = {"hard": "hard action", "refit": "refit", "median": "median delay (any alarm)"}[fig]
+        orc = sc[name].get("oracle") if not ok else None
+        if orc and fig == "median":
+            within = orc["by_delay"][bound] if bound < len(orc["by_delay"]) else orc["detect"]
+            shown += (f" (oracle bound: any monitor of these residuals at 5 % signals within {bound} {unit} in at "
+                      f"most {_pct(within)} of the models, a median of at least {_num(orc['median'])} {unit})")
+        elif orc and fig == "refit":
+            shown += f" (oracle bound on detection by the end: {_pct(orc['detect'])})"
         out.append((f"{name}: {label} {want}", shown, ok))
     bad = {name: r["drift"]["errors"] for name, r in sc.items() if r["drift"]["errors"]}
     out.append(("every model checked (no error entries)",
@@ -417,6 +471,99 @@ def run(scenarios: list[str], n_models: int, frequency: str, seed: int = SEED) -
         timing[f"reference_{s}_s"] = time.perf_counter() - t0
         out["scenarios"][s] = {"what": sc.what, "change": change, "drift": summary, "monitors": rows,
                                "reference": _row(ref_rows, change)}
+        if change is not None and sc.sigma_after == SIGMA and not sc.ar:
+            out["scenarios"][s].update(bounds(data[s], simulate(SCENARIOS["iid"], n_models, freq, seed), freq))
+    return out
+
+
+def bounds(d: dict[str, np.ndarray], base: dict[str, np.ndarray], freq: Frequency) -> dict[str, Any]:
+    """For a scenario that moves the target's mean: the oracle bound (:func:`oracle_bound`, at 5 %) and,
+    where the mean moves one way, the reference Page CUSUM told that direction (one-sided, 5 %)."""
+    change = freq.change - 1  # rows of Y start at period 1
+    by_delay = oracle_bound(d["Y"], base["Y"], d["X"], change)
+
+    def first(q: float) -> int | None:
+        hit = np.flatnonzero(by_delay >= q)
+        return int(hit[0]) if hit.size else None
+
+    out: dict[str, Any] = {"oracle": {"by_delay": by_delay.tolist(), "detect": float(by_delay[-1]),
+                                      "median": first(0.5), "p90": first(0.9)}}
+    shift = float(np.mean((d["Y"] - base["Y"])[:, change:])) / SIGMA
+    if abs(shift) >= 0.25:
+        one = page_reference(d["Y"], d["X"], freq.n_ref - 1, direction=int(np.sign(shift)))
+        out["reference_one_sided"] = _row([[int(f) + 1] if f >= 0 else [] for f in one], freq.change)
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ what is reachable
+def _page_path(z: np.ndarray, kappa: float, one_sided: bool = False) -> np.ndarray:
+    """max(C+, C-) (or C+ alone) of the Page CUSUM with reference value kappa at every step, rows of z."""
+    up, dn, out = np.zeros(len(z)), np.zeros(len(z)), np.empty_like(z)
+    for s in range(z.shape[1]):
+        up = np.maximum(0.0, up + z[:, s] - kappa)
+        dn = dn if one_sided else np.maximum(0.0, dn - z[:, s] - kappa)
+        out[:, s] = np.maximum(up, dn)
+    return out
+
+
+def _csw_path(z: np.ndarray, m: int) -> np.ndarray:
+    """S_n^2 / n - ln(n / m): the recursive-CUSUM monitor's a^2 at which its boundary is touched."""
+    n = m + np.arange(1, z.shape[1] + 1)
+    return np.cumsum(z, axis=1) ** 2 / n - np.log(n / m)
+
+
+#: residual monitors compared by :func:`reachable` (name, members, one-sided); the members are drift's
+#: residual stream (csw, abrupt shift kappa 0.5, variance kappa 0.25) or single Page CUSUMs
+COMPOSITIONS = (
+    ("drift's residual members (csw + shift + variance, joint)", ("csw", "shift", "variance"), False),
+    ("csw + shift (no variance member), joint", ("csw", "shift"), False),
+    ("Page CUSUM kappa 0.5 alone", ("shift",), False),
+    ("Page CUSUM kappa 0.25 alone", ("shift25",), False),
+    ("Page CUSUM kappa 0.5 told the direction", ("shift",), True),
+)
+
+
+def reachable(scenario: str, n_models: int, frequency: str, seed: int = SEED, reps: int = 100_000,
+              budgets: tuple[float, ...] = (1 - 0.95 ** 0.7, 0.05)) -> list[dict[str, Any]]:
+    """Detection of monitors of the recursive residuals (:data:`COMPOSITIONS`) on a scenario's own draws,
+    at each false-alarm budget over the monitored span (drift's residual stream gets 1 - 0.95^0.7 = 3.5 %
+    of its 5 %). Thresholds from ``reps`` null paths (iid N(0, 1) over an estimated scale, the residuals'
+    exact null); members of a composition run at one common marginal level whose family holds the budget
+    (simulated jointly, as ``tools/simulate_family.py`` does). Standalone: no drift check is run."""
+    freq = FREQUENCIES[frequency]
+    m = freq.n_ref - 1
+    d = simulate(SCENARIOS[scenario], n_models, freq, seed)
+    z1, dof = _reference_z(d["Y"], d["X"], m)
+    tau = freq.change - 1 - m
+    shift = float(np.mean((d["Y"] - simulate(SCENARIOS["iid"], n_models, freq, seed)["Y"])[:, freq.change - 1:]))
+    rng = np.random.default_rng([seed, 99])
+    z0 = rng.normal(size=(reps, z1.shape[1])) / np.sqrt(rng.chisquare(dof, size=(reps, 1)) / dof)
+    target = 12 if frequency == "weekly" else 3
+
+    def paths(z: np.ndarray, member: str, one: bool) -> np.ndarray:
+        zz = z * (np.sign(shift) or 1.0) if one else z
+        return {"csw": lambda: _csw_path(zz, m), "shift": lambda: _page_path(zz, 0.5, one),
+                "shift25": lambda: _page_path(zz, 0.25, one),
+                "variance": lambda: _page_path((zz * zz - 1) / np.sqrt(2.0), 0.25)}[member]()
+
+    out = []
+    for name, members, one in COMPOSITIONS:
+        null = {k: paths(z0, k, one).max(axis=1) for k in members}
+        alt = {k: paths(z1, k, one) for k in members}
+        # each null path's smallest marginal p-value over the members (ranks), for the joint level
+        pmin = np.min([1.0 - (np.argsort(np.argsort(v)) + 0.5) / reps for v in null.values()], axis=0)
+        for budget in budgets:
+            p = float(np.quantile(pmin, budget))
+            first = np.full(n_models, z1.shape[1])
+            for k in members:
+                hit = alt[k] > np.quantile(null[k], 1.0 - p)
+                first = np.minimum(first, np.where(hit.any(axis=1), hit.argmax(axis=1), z1.shape[1]))
+            found = (first >= tau) & (first < z1.shape[1])
+            delay = first[found] - tau
+            out.append({"monitor": name, "budget": budget, "member_level": p, "detect": float(found.mean()),
+                        "median": float(np.median(delay)) if delay.size else None,
+                        "within": float(np.mean(found & (first - tau <= target))),
+                        "early": float(np.mean(first < tau)), "target": target})
     return out
 
 
@@ -440,9 +587,15 @@ def markdown(res: dict[str, Any]) -> str:
         hard = (_pct(r["drift"]["hard"]) + f" (refit {_pct(r['drift']['refit'])})"
                 + (f" ({r['drift']['errors']} errors)" if r["drift"]["errors"] else ""))
         mons = [(k, v) for k, v in r["monitors"].items()] + [("reference Page CUSUM", r["reference"])]
+        if r.get("reference_one_sided"):
+            mons.append(("reference Page CUSUM told the direction", r["reference_one_sided"]))
         for j, (k, v) in enumerate(mons):
             lines.append(f"| {head if j == 0 else ''} | {hard if j == 0 else ''} | {k} | {_pct(v['alarm'])} | "
                          f"{_pct(v['detect'])} | {_num(v['median'])} | {_num(v['p90'])} | {_pct(v['early'])} |")
+        if r.get("oracle"):
+            o = r["oracle"]
+            lines.append(f"|  |  | oracle bound (told date, direction, size) | - | <= {_pct(o['detect'])} | "
+                         f">= {_num(o['median'])} | >= {_num(o['p90'])} | - |")
     return "\n".join(lines)
 
 
@@ -454,7 +607,20 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--seed", type=int, default=SEED)
     ap.add_argument("--json", type=Path, default=None, help="also write the figures to this file")
     ap.add_argument("--show", type=Path, default=None, help="print the tables of a --json file, run nothing")
+    ap.add_argument("--reachable", metavar="SCENARIO", default=None,
+                    help="only compare monitors of the recursive residuals on this scenario's draws at drift's "
+                         "residual-stream budget and at 5 %% (standalone, no drift check; see reachable())")
     args = ap.parse_args(argv)
+    if args.reachable:
+        unit = "weeks" if args.frequency == "weekly" else "months"
+        print(f"| monitor ({args.models} models, {args.frequency}, {args.reachable}) | false-alarm budget | "
+              f"member level | detected | median delay ({unit}) | detected within target | dated before change |")
+        print("|---|---:|---:|---:|---:|---:|---:|")
+        for r in reachable(args.reachable, args.models, args.frequency, args.seed):
+            print(f"| {r['monitor']} | {100 * r['budget']:.1f} % | {100 * r['member_level']:.2f} % | "
+                  f"{_pct(r['detect'])} | {_num(r['median'])} | {_pct(r['within'])} (<= {r['target']}) | "
+                  f"{_pct(r['early'])} |")
+        return
     if args.show:
         res = json.loads(args.show.read_text(encoding="utf-8"))
     else:

@@ -117,3 +117,55 @@ def test_drift_size_on_the_monthly_scenarios() -> None:
     assert all(sc[s]["drift"]["errors"] == 0 for s in sc), {s: sc[s]["drift"]["errors"] for s in sc}
     assert _not_above(round(sc["iid"]["drift"]["hard"] * n), n, 0.05)
     assert _not_above(round(sc["ar1"]["drift"]["hard"] * n), n, 0.10)
+
+
+def test_oracle_bound_is_the_power_of_the_two_sample_test() -> None:
+    # Known answer (the one-sided two-sample z-test, common practice, no source): with a constant as the
+    # only regressor and the mean moving by delta at row c of n, |M s| = delta sqrt(c (n - c) / n), so the
+    # bound after d periods is Phi(delta sqrt(c (d + 1) / (c + d + 1)) / sigma - z_0.05).
+    b = _bench()
+    n_models, c, n, delta = 3, 40, 52, 2.0
+    X = np.ones((n_models, n, 1))
+    base = np.zeros((n_models, n))
+    moved = np.where(np.arange(n) >= c, -delta, 0.0) * np.ones((n_models, 1))
+    got = b.oracle_bound(moved, base, X, c, level=0.05, sigma=3.0)
+    k = np.arange(1, n - c + 1)
+    want = stats.norm.cdf(delta * np.sqrt(c * k / (c + k)) / 3.0 - stats.norm.isf(0.05))
+    assert got == pytest.approx(want, rel=1e-10)
+
+
+def test_oracle_bound_is_the_power_of_the_test_told_the_date() -> None:
+    # Monte Carlo (seeded): the one-sided test of the change's coefficient in the regression on the
+    # scenario's own design, told the date, rejects at the rate the bound gives (monthly 1.3-sigma shift,
+    # three months after the change; errors N(0, 3^2) with the scale known, as in the bound)
+    b = _bench()
+    freq = b.FREQUENCIES["monthly"]
+    d = b.simulate(b.SCENARIOS["promo-1s"], 20, freq, seed=5)
+    base = b.simulate(b.SCENARIOS["iid"], 20, freq, seed=5)
+    c = freq.change - 1
+    bound = b.oracle_bound(d["Y"], base["Y"], d["X"], c)[3]
+    rng = np.random.default_rng(6)
+    end = c + 4
+    X, s = d["X"][:, :end], (d["Y"] - base["Y"])[:, :end]
+    hits = 0
+    reps = 400
+    for i in range(X.shape[0]):
+        Z = np.column_stack([X[i], s[i]])
+        y = s[i] + rng.normal(scale=3.0, size=(reps, end))  # X b drops out of the test: b = 0 here
+        coef = np.linalg.lstsq(Z, y.T, rcond=None)[0][-1]  # the change's coefficient (1 under the change)
+        se = 3.0 * np.sqrt(np.linalg.inv(Z.T @ Z)[-1, -1])
+        hits += int(np.sum(coef / se > stats.norm.isf(0.05)))
+    k, n = hits, reps * X.shape[0]
+    assert _not_above(k, n, bound) and _not_below(k, n, bound), (k / n, bound)
+
+
+@pytest.mark.parametrize("direction", [1, -1])
+def test_reference_page_cusum_told_the_direction_holds_its_level(direction: int) -> None:
+    # one-sided version of the reference monitor: 5 % under no change on the full pipeline of invented
+    # monthly models (Brown, Durbin & Evans 1975: the standardised recursive residuals are iid)
+    b = _bench()
+    freq = b.FREQUENCIES["monthly"]
+    d = b.simulate(b.SCENARIOS["iid"], 2000, freq, seed=13)
+    first = b.page_reference(d["Y"], d["X"], freq.n_ref - 1, direction=direction)
+    k = int((first >= 0).sum())
+    assert _not_above(k, 2000, 0.05) and _not_below(k, 2000, 0.05), k
