@@ -14,6 +14,7 @@ import math
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from drift import engine
 from drift.checking.accuracy import _accuracy, _accuracy_block, _seasonal_naive
@@ -125,23 +126,75 @@ def _screen(group: list[_Ctx]) -> None:
     roll = None
     if window >= ds[0].k + 2 and window <= Y.shape[1]:
         roll = engine.rolling_coefficients(Y, Xs, window)
+    _per_model(group, Y, off, m, rf, specs, mons, warns, levels, trigg, cus, cusq, enough, retro_dates,
+               roll, window)
+
+
+def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray, rf: Any,
+               specs: list[tuple[str, str, int | None]], mons: list[Any], warns: list[Any],
+               levels: list[tuple[float, float]], trigg: Any, cus: Any, cusq: Any, enough: np.ndarray,
+               retro_dates: dict[str, np.ndarray], roll: Any, window: int) -> None:
+    """Each model's share of the batched results: its tests, alarms, accuracy and charts, then its
+    relationship actions. Every array the charts draw is rounded and turned into JSON values once for the
+    batch (:func:`_rows`); the per-model loop only slices them."""
+    chk = group[0].cfg.check
+    M, T = Y.shape
+    cols = np.arange(T)[None, :]
+    mon = cols >= m[:, None]  # the monitored rows (padded coordinates)
+    dates = _Dates()
+    # the forecast chart: actual, as-deployed forecast, seasonal-naive baseline on the monitored rows
+    actual = np.full((M, T), np.nan)
+    base = np.full((M, T), np.nan)
     for i, c in enumerate(group):
-        o, d = off[i], c.design
+        actual[i, off[i]:] = c.design.y
+        base[i, off[i]:] = _seasonal_naive(c.design.y, c.design.season_length)
+    # as-deployed one-step forecasts of the target. With AR errors the one-step error of y equals that of
+    # the prewhitened y~ (y_t - x_t'b - phi (y_{t-1} - x_{t-1}'b) = y~_t - x~_t'b), so one formula
+    fc_rows = _rows(np.where(mon, actual - rf.forecast_error, np.nan))
+    base_rows = _rows(np.where(mon, base, np.nan))
+    actual_rows = _rows(actual)
+    coef_all = np.atleast_3d(rf.coef)
+    # the monitors' figures as Python numbers, once
+    mon_vals = [None if r is None or rw is None else (
+        _ints(r.alarm_index), _ints(r.horizon_end), _floats(r.statistic), _floats(r.pvalue),
+        _ints(rw.alarm_index), _floats(rw.statistic)) for r, rw in zip(mons, warns)]
+    trigg_last = trigg_sig = trigg_first = None
+    if trigg is not None:
+        sig = np.atleast_2d(trigg.signal)
+        fin = np.isfinite(sig)
+        trigg_last = np.where(fin.any(axis=1), T - 1 - np.argmax(fin[:, ::-1], axis=1), -1).tolist()
+        trigg_sig = sig
+        trigg_first = _ints(trigg.first_signal)
+    retro = None
+    if cus is not None and cusq is not None:
+        retro = []
+        for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
+            cv = rc.critical_values.get(0.05)
+            crit = (None if cv is None else _floats(cv) if np.ndim(cv) else [_num(cv)] * M)
+            retro.append((name, retro_dates[name].tolist(), _floats(rc.statistic), _floats(rc.pvalue), crit))
+        cus_path = _rows(np.atleast_2d(cus.path))
+        cus_bounds = {f"{lvl:.2f}": _rows(np.atleast_2d(cus.bounds[lvl])) for lvl in (0.05, 0.01)}
+    if roll is not None:
+        # regressor-major views (k, M, T) of the rolling fit; only the driver columns are drawn
+        used = sorted({j for c in group for j in c.design.driver_columns.values()})
+        ck = np.atleast_3d(roll.coef).transpose(2, 0, 1)[used]
+        sk = np.atleast_3d(roll.se).transpose(2, 0, 1)[used]
+        pos = {j: p for p, j in enumerate(used)}
+        roll_rows = (_rows(ck), _rows(ck - 1.96 * sk), _rows(ck + 1.96 * sk))
+    for i, c in enumerate(group):
+        o, d = int(off[i]), c.design
         sl = slice(o, None)
-        c.charts["periods"] = [p.date().isoformat() for p in d.periods]
+        per = dates.of(d.periods)
+        c.charts["periods"] = list(per)
         c.charts["monitor_start_index"] = int(d.n_ref)
         fe = rf.forecast_error[i, sl]
-        # as-deployed one-step forecasts of the target. With AR errors the one-step error of y equals that
-        # of the prewhitened y~ (y_t - x_t'b - phi (y_{t-1} - x_{t-1}'b) = y~_t - x~_t'b), so one formula
-        fc = d.y - fe
-        base = _seasonal_naive(d.y, d.season_length)
-        mon_mask = np.arange(d.n) >= d.n_ref
-        c.charts["forecast"] = {"actual": _list(d.y), "forecast": _list(np.where(mon_mask, fc, np.nan)),
-                                "baseline": _list(np.where(mon_mask, base, np.nan))}
-        c.accuracy = _accuracy_block(d, fe, mon_mask, chk.recent_window)
+        mon_mask = mon[i, sl]
+        c.charts["forecast"] = {"actual": actual_rows[i, sl].tolist(), "forecast": fc_rows[i, sl].tolist(),
+                                "baseline": base_rows[i, sl].tolist()}
+        c.accuracy = _accuracy_block(d, fe, mon_mask, chk.recent_window, dates=per)
         ref_scale = (c.accuracy["scale"] or {}).get("mae")
         if c.model.horizon > 1:
-            eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, np.atleast_3d(rf.coef)[i, sl], c.model.horizon)
+            eh = h_step_errors(c.cfg, c.model, c.obs, c.as_of, d, coef_all[i, sl], c.model.horizon)
             c.accuracy["h_step"] = {"horizon": c.model.horizon,
                                     **_accuracy(np.where(mon_mask, eh, np.nan)[-chk.recent_window:], ref_scale)}
         # monitoring: every date is the period at which a check run then would have signalled (the
@@ -149,15 +202,14 @@ def _screen(group: list[_Ctx]) -> None:
         alarm_idx = None
         lapsed = False
         drivers_i = list(d.driver_columns)
-        for (name, _det, j), r, rw, (lv, wl) in zip(specs, mons, warns, levels):
-            if (j is not None and j >= len(drivers_i)) or r is None or rw is None:
+        for (name, _det, j), vals, (lv, wl) in zip(specs, mon_vals, levels):
+            if (j is not None and j >= len(drivers_i)) or vals is None:
                 continue
+            ai_l, hend_l, stat_l, pv_l, wi_l, wstat_l = vals
             extra = {} if j is None else {"driver": drivers_i[j]}
-            ai = int(np.atleast_1d(r.alarm_index)[i])
-            h_end = int(np.atleast_1d(r.horizon_end)[i])
-            stat = float(np.atleast_1d(r.statistic)[i])
-            pv = _num(np.atleast_1d(r.pvalue)[i])
-            date_ = d.periods[ai - o].date().isoformat() if ai >= 0 else None
+            ai, h_end, stat = ai_l[i], hend_l[i], stat_l[i]
+            pv = _num(pv_l[i])
+            date_ = per[ai - o] if ai >= 0 else None
             c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
                             "level": _num(round(lv, 6)), "date": date_})
             beyond = {"beyond_horizon": True} if ai >= h_end else {}
@@ -166,53 +218,83 @@ def _screen(group: list[_Ctx]) -> None:
                                  "threshold": 1.0, "level": _num(round(lv, 6)), **beyond})
                 if alarm_idx is None or ai - o < alarm_idx:
                     alarm_idx, lapsed = ai - o, bool(beyond)
-            wi = int(np.atleast_1d(rw.alarm_index)[i])
+            wi = wi_l[i]
             if ai < 0 and wi >= 0:
-                c.alarms.append({"test": name, **extra, "date": d.periods[wi - o].date().isoformat(),
-                                 "statistic": _num(round(float(np.atleast_1d(rw.statistic)[i]), 4)),
+                c.alarms.append({"test": name, **extra, "date": per[wi - o],
+                                 "statistic": _num(round(wstat_l[i], 4)),
                                  "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
                                  **({"beyond_horizon": True} if wi >= h_end else {})})
-        _monitor_chart(c, i, o, specs, mons, levels)
+        _monitor_chart(c, i, o, specs, mons, levels, vals=mon_vals, dates=per)
         if trigg is not None:
-            sig = np.atleast_2d(trigg.signal)[i, sl]
-            last_i = np.flatnonzero(np.isfinite(sig))
-            fs = int(np.atleast_1d(trigg.first_signal)[i]) - o
-            if last_i.size:
-                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
+            last = trigg_last[i]  # type: ignore[index]
+            fs = trigg_first[i] - o  # type: ignore[index]
+            if last >= o:
+                c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(trigg_sig[i, last]), 4)),
                                 "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,
-                                "date": d.periods[fs].date().isoformat() if fs >= 0 else None})
+                                "date": per[fs] if fs >= 0 else None})
         # retrospective CUSUM family: reported in ``tests`` and charted, not alarms: re-run on every check
         # at 5%, their crossings pile up on stable models (their sequential versions are the family's CUSUM
         # and variance monitors). Their date is the first check of the standing crossing (first_signal).
-        if cus is not None and cusq is not None and enough[i]:
-            for name, rc in (("cusum", cus), ("cusum-squares", cusq)):
-                fc_idx = int(retro_dates[name][i])
-                rstat = _num(np.atleast_1d(rc.statistic)[i])
-                cv = rc.critical_values.get(0.05)
-                crit = None if cv is None else _num(np.atleast_1d(cv)[i] if np.ndim(cv) else cv)
-                date_ = d.periods[fc_idx - o].date().isoformat() if fc_idx >= 0 else None
-                c.tests.append({"test": name, "statistic": rstat, "pvalue": _num(np.atleast_1d(rc.pvalue)[i]),
-                                "threshold": crit, "level": 0.05, "date": date_})
+        if retro is not None and enough[i]:
+            for name, rdates, rstat, rpv, rcrit in retro:
+                fc_idx = rdates[i]
+                c.tests.append({"test": name, "statistic": _num(rstat[i]), "pvalue": _num(rpv[i]),
+                                "threshold": None if rcrit is None else _num(rcrit[i]), "level": 0.05,
+                                "date": per[fc_idx - o] if fc_idx >= 0 else None})
             # the retrospective CUSUM (kept for the chart when no monitor ran): its own crossing date only
             c.charts["cusum"] = {
-                "path": _list(np.atleast_2d(cus.path)[i, sl]),
-                "bounds": {f"{lvl:.2f}": _list(np.atleast_2d(cus.bounds[lvl])[i, sl]) for lvl in (0.05, 0.01)},
+                "path": cus_path[i, sl].tolist(),
+                "bounds": {lvl: b[i, sl].tolist() for lvl, b in cus_bounds.items()},
                 "alarm_date": next((t["date"] for t in c.tests if t["test"] == "cusum"), None)}
         # rolling coefficients
         if roll is not None:
-            coef_roll = np.atleast_3d(roll.coef)[i, sl]
-            se_roll = np.atleast_3d(roll.se)[i, sl]
-            c.charts["_roll_coef"] = coef_roll  # the full model's rolling fit, reused for its forecasts
+            c.charts["_roll_coef"] = np.atleast_3d(roll.coef)[i, sl]  # the full model's rolling fit, reused
             c.charts["coefficients"] = {}
-            ref_coef = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+            ref_coef = coef_all[i, o + d.n_ref - 1]
             for s, j in d.driver_columns.items():
+                p = pos[j]
                 c.charts["coefficients"][s] = {
-                    "coef": _list(coef_roll[:, j]), "lower": _list(coef_roll[:, j] - 1.96 * se_roll[:, j]),
-                    "upper": _list(coef_roll[:, j] + 1.96 * se_roll[:, j]),
-                    "reference": _num(ref_coef[j]), "window": int(window)}
-        c.charts["_ref_coef"] = np.atleast_3d(rf.coef)[i, o + d.n_ref - 1]
+                    "coef": roll_rows[0][p, i, sl].tolist(), "lower": roll_rows[1][p, i, sl].tolist(),
+                    "upper": roll_rows[2][p, i, sl].tolist(), "reference": _num(ref_coef[j]),
+                    "window": int(window)}
+        c.charts["_ref_coef"] = coef_all[i, o + d.n_ref - 1]
         c.charts["_fe"] = fe
         _relationship_actions(c, alarm_idx, lapsed)
+
+
+class _Dates:
+    """ISO dates of a design's periods, computed once per distinct set of periods in the batch (the
+    models of a batch mostly share their periods)."""
+
+    def __init__(self) -> None:
+        self._seen: dict[tuple[bytes, str], list[str]] = {}
+
+    def of(self, periods: Any) -> list[str]:
+        idx = periods if isinstance(periods, pd.DatetimeIndex) else pd.DatetimeIndex(periods)
+        key = (idx.asi8.tobytes(), str(idx.tz))
+        got = self._seen.get(key)
+        if got is None:
+            wall = idx if idx.tz is None else idx.tz_localize(None)  # the periods' own calendar dates
+            got = np.datetime_as_string(wall.to_numpy().astype("datetime64[D]"), unit="D").tolist()
+            self._seen[key] = got
+        return got
+
+
+def _rows(a: np.ndarray) -> np.ndarray:
+    """``_list`` for a whole array at once: values rounded to 6 decimals as Python floats, NaN/inf as None
+    (an object array; a row's ``.tolist()`` is what ``_list`` gives for it)."""
+    x = np.asarray(a, float)
+    out = np.round(x, 6).astype(object)
+    out[~np.isfinite(x)] = None
+    return out
+
+
+def _ints(a: Any) -> list[int]:
+    return np.atleast_1d(np.asarray(a)).astype(np.int64).tolist()  # type: ignore[no-any-return]
+
+
+def _floats(a: Any) -> list[float]:
+    return np.atleast_1d(np.asarray(a, float)).tolist()  # type: ignore[no-any-return]
 
 
 def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
@@ -226,17 +308,24 @@ def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
 
 
 def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
-                   levels: list[tuple[float, float]]) -> None:
+                   levels: list[tuple[float, float]], *, vals: list[Any] | None = None,
+                   dates: list[str] | None = None) -> None:
     """The chart of the monitor that raised the alarm (the first to cross), else of the one nearest its
     boundary: its path and its own boundary as the monitor computed them (read from its result, never
-    recomputed), and the period where that path crossed that boundary."""
+    recomputed), and the period where that path crossed that boundary.
+
+    ``vals``: each monitor's (alarm indices, horizon ends, statistics, ...) as Python lists, and ``dates``
+    the model's periods as ISO dates, when the caller has them already (read from ``mons`` otherwise)."""
     drivers_i = list(c.design.driver_columns)
     best: tuple[tuple[int, float], str, int | None, Any, float] | None = None
-    for (name, _det, j), r, (lv, _wl) in zip(specs, mons, levels):
+    for s, ((name, _det, j), r, (lv, _wl)) in enumerate(zip(specs, mons, levels)):
         if r is None or (j is not None and j >= len(drivers_i)) or getattr(r, "path", None) is None:
             continue
-        ai = int(np.atleast_1d(r.alarm_index)[i])
-        stat = float(np.atleast_1d(r.statistic)[i])
+        if vals is not None and vals[s] is not None:
+            ai, stat = vals[s][0][i], vals[s][2][i]
+        else:
+            ai = int(np.atleast_1d(r.alarm_index)[i])
+            stat = float(np.atleast_1d(r.statistic)[i])
         key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
         if best is None or key < best[0]:
             best = (key, name, j, r, lv)
@@ -250,8 +339,9 @@ def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | No
         c.charts["monitor_note"] = f"the {name} path does not line up with the periods; not drawn"
         return
     ai = int(np.atleast_1d(r.alarm_index)[i])
+    per = dates if dates is not None else [p.date().isoformat() for p in c.design.periods]
     c.charts["monitor"] = {
         "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
         "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
         "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
-        "alarm_date": c.design.periods[ai - o].date().isoformat() if ai >= o else None}
+        "alarm_date": per[ai - o] if ai >= o else None}

@@ -62,8 +62,32 @@ def _triu_inv(R: FloatArray) -> FloatArray:
     return Ri
 
 
-def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: FloatArray) -> IntArray:
-    """Fit one chunk of models; writes into ``coef`` and ``se`` laid out (k, M_chunk, n), already NaN."""
+class _Work:
+    """Work buffers of :func:`_chunk`, allocated once per call and reused by every chunk: fresh large
+    arrays cost a page fault per 4 KiB on first touch, which made the allocations, not the arithmetic,
+    most of the time of a vectorised solve over (model x window)."""
+
+    def __init__(self, k: int, chunk: int, n: int, window: int) -> None:
+        ends = n - window + 1
+        npair = k * (k + 1) // 2
+        self.prod = np.empty((npair + k + 1, chunk, n + 1))
+        self.flat = np.empty((npair + k + 1, chunk, ends))
+        self.L = np.empty((k, k, chunk, ends))
+        self.Li = np.empty((k, k, chunk, ends))
+        self.g = np.empty((k, chunk, ends))
+        self.beta = np.empty((k, chunk, ends))
+        self.t = np.empty((3, chunk, ends))
+        self.rows = np.empty((k, chunk, ends))
+        self.good = np.empty((chunk, ends), dtype=bool)
+        self.okb = np.empty((chunk, ends), dtype=bool)
+
+
+def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: FloatArray, work: _Work) -> IntArray:
+    """Fit one chunk of models; writes into ``coef`` and ``se`` laid out (k, M_chunk, n), already NaN.
+
+    Every vector below is a (model, window end) plane; the operations and their order are those of the
+    scalar formulas (Cholesky, triangular inverse, solves), each applied to all planes at once in the
+    work buffers."""
     M, n, k = X.shape
     valid = np.isfinite(y) & np.isfinite(X).all(axis=2)
     Xz = np.where(valid[:, :, None], X, 0.0)
@@ -88,10 +112,9 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
     iu, ju = np.triu_indices(k)
     npair = iu.size
     ends = n - window + 1
-    B = M * ends
-    # (cross-product, model, time) layout: every operation below runs on contiguous vectors
+    # (cross-product, model, time) layout: every operation below runs on contiguous planes
     Qt = np.ascontiguousarray(Q.transpose(2, 0, 1))  # (k, M, n)
-    prod = np.empty((npair + k + 1, M, n + 1))
+    prod = work.prod[:, :M]
     prod[:, :, 0] = 0.0
     for p, (ia, ja) in enumerate(zip(iu.tolist(), ju.tolist())):
         np.multiply(Qt[ia], Qt[ja], out=prod[p, :, 1:])
@@ -99,52 +122,92 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
         np.multiply(Qt[i], e, out=prod[npair + i, :, 1:])
     np.multiply(e, e, out=prod[-1, :, 1:])
     np.cumsum(prod, axis=2, out=prod)
-    flat = (prod[:, :, window:] - prod[:, :, :ends]).reshape(-1, B)  # window sums, (P, M * ends)
-    del prod
-    pair = {(ia, ja): flat[p] for p, (ia, ja) in enumerate(zip(iu.tolist(), ju.tolist()))}
-    A = [[pair[(min(i, j), max(i, j))] for j in range(k)] for i in range(k)]
-    c = [flat[npair + i] for i in range(k)]
+    flat = work.flat[:, :M]
+    np.subtract(prod[:, :, window:], prod[:, :, :ends], out=flat)  # window sums, (P, M, ends)
+    pidx = {(ia, ja): p for p, (ia, ja) in enumerate(zip(iu.tolist(), ju.tolist()))}
+
+    def A(i: int, j: int) -> FloatArray:
+        return flat[pidx[(min(i, j), max(i, j))]]  # type: ignore[no-any-return]
+
+    c = flat[npair: npair + k]
     q = flat[-1]
-    good = ((nobs[:, window - 1:] == window) & ok_model[:, None]).reshape(B)
+    good = work.good[:M]
+    np.equal(nobs[:, window - 1:], window, out=good)
+    good &= ok_model[:, None]
+    L, Li, g, beta = work.L[:, :, :M], work.Li[:, :, :M], work.g[:, :M], work.beta[:, :M]
+    t0, t1, t2 = work.t[0, :M], work.t[1, :M], work.t[2, :M]
+    okb = work.okb[:M]
+
+    def dot_into(out: FloatArray, pairs: list[tuple[FloatArray, FloatArray]]) -> FloatArray:
+        """out = a0*b0 + a1*b1 + ..., summed left to right (what ``sum(generator, zeros)`` gave)."""
+        np.multiply(pairs[0][0], pairs[0][1], out=out)
+        for a, b in pairs[1:]:
+            np.multiply(a, b, out=t2)
+            out += t2
+        return out
 
     # Cholesky A = L L', vectorised over (model, window); a pivot below tolerance marks rank deficiency
-    L: list[list[FloatArray]] = [[np.zeros(0)] * k for _ in range(k)]
     for j in range(k):
-        dj = A[j][j] - sum((L[j][m] ** 2 for m in range(j)), np.zeros(B))
-        bad = ~(dj > _WINDOW_PIVOT_TOL * A[j][j])
-        good &= ~bad
-        L[j][j] = np.sqrt(np.where(bad, 1.0, dj))
+        dj = t0
+        if j:
+            dot_into(dj, [(L[j, m], L[j, m]) for m in range(j)])
+            np.subtract(A(j, j), dj, out=dj)
+        else:
+            np.copyto(dj, A(0, 0))
+        np.multiply(A(j, j), _WINDOW_PIVOT_TOL, out=t1)
+        np.greater(dj, t1, out=okb)  # NaN-safe: a NaN pivot is bad
+        good &= okb
+        np.copyto(dj, 1.0, where=~okb)
+        np.sqrt(dj, out=L[j, j])
         for i in range(j + 1, k):
-            acc = A[i][j] - sum((L[i][m] * L[j][m] for m in range(j)), np.zeros(B))
-            L[i][j] = acc / L[j][j]
+            acc = L[i, j]
+            if j:
+                dot_into(acc, [(L[i, m], L[j, m]) for m in range(j)])
+                np.subtract(A(i, j), acc, out=acc)
+            else:
+                np.copyto(acc, A(i, j))
+            acc /= L[j, j]
     # Li = L^{-1} (lower triangular)
-    Li: list[list[FloatArray]] = [[np.zeros(0)] * k for _ in range(k)]
     for i in range(k):
-        Li[i][i] = 1.0 / L[i][i]
+        np.divide(1.0, L[i, i], out=Li[i, i])
         for j in range(i):
-            acc = sum((L[i][m] * Li[m][j] for m in range(j, i)), np.zeros(B))
-            Li[i][j] = -acc * Li[i][i]
-    g = [sum((Li[i][j] * c[j] for j in range(i + 1)), np.zeros(B)) for i in range(k)]  # L^{-1} c
-    beta = [sum((Li[i][j] * g[i] for i in range(j, k)), np.zeros(B)) for j in range(k)]  # A^{-1} c
-    rss = np.maximum(q - sum((gi * gi for gi in g), np.zeros(B)), 0.0)
-    Rr = [[np.repeat(Rinv[:, i, j], ends) if j >= i else np.zeros(0) for j in range(k)] for i in range(k)]
-    b0r = [np.repeat(b0[:, i], ends) for i in range(k)]
+            acc = dot_into(Li[i, j], [(L[i, m], Li[m, j]) for m in range(j, i)])
+            np.negative(acc, out=acc)
+            acc *= Li[i, i]
+    for i in range(k):  # g = L^{-1} c
+        dot_into(g[i], [(Li[i, j], c[j]) for j in range(i + 1)])
+    for j in range(k):  # beta = A^{-1} c
+        dot_into(beta[j], [(Li[i, j], g[i]) for i in range(j, k)])
+    rss = dot_into(t0, [(g[i], g[i]) for i in range(k)])
+    np.subtract(q, rss, out=rss)
+    np.maximum(rss, 0.0, out=rss)
     dof = window - k
-    s_w = np.sqrt(rss / dof) if dof > 0 else np.full(B, np.nan)
-    bout = np.empty((k, B))
-    seout = np.empty((k, B))
+    s_w = t1
+    if dof > 0:
+        np.divide(rss, dof, out=s_w)
+        np.sqrt(s_w, out=s_w)
+    else:
+        s_w.fill(np.nan)
+    bad = ~good
+    out_b = coef[:, :, window - 1:]
+    out_s = se[:, :, window - 1:]
+    Rb = [[Rinv[:, i, j, None] for j in range(k)] for i in range(k)]  # (M, 1): broadcast over windows
+    v, gil = work.rows[0, :M], work.rows[1, :M]
     for i in range(k):
-        bout[i] = b0r[i] + sum((Rr[i][j] * beta[j] for j in range(i, k)), np.zeros(B))
+        bi = dot_into(out_b[i], [(Rb[i][j], beta[j]) for j in range(i, k)])
+        np.add(b0[:, i, None], bi, out=bi)
         # cov / s^2 = G G' with G = R^{-1} L^{-T}: G[i, l] = sum_{j >= i} Rinv[i, j] Li[l, j]
-        v = np.zeros(B)
         for lcol in range(i, k):
-            gil = sum((Rr[i][j] * Li[lcol][j] for j in range(i, lcol + 1)), np.zeros(B))
-            v += gil * gil
-        seout[i] = s_w * np.sqrt(v)
-    np.copyto(bout, np.nan, where=~good)
-    np.copyto(seout, np.nan, where=~good)
-    coef[:, :, window - 1:] = bout.reshape(k, M, ends)
-    se[:, :, window - 1:] = seout.reshape(k, M, ends)
+            dot_into(gil, [(Rb[i][j], Li[lcol, j]) for j in range(i, lcol + 1)])
+            if lcol == i:
+                np.multiply(gil, gil, out=v)
+            else:
+                np.multiply(gil, gil, out=gil)
+                v += gil
+        np.sqrt(v, out=v)
+        np.multiply(s_w, v, out=out_s[i])
+        np.copyto(bi, np.nan, where=bad)
+        np.copyto(out_s[i], np.nan, where=bad)
     return nobs
 
 
@@ -209,9 +272,10 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
     coef_k = np.full((k, M, n), np.nan)
     se_k = np.full((k, M, n), np.nan)
     nobs = np.empty((M, n), dtype=np.int64)
+    work = _Work(k, min(M, _CHUNK), n, w)
     for lo in range(0, M, _CHUNK):
         hi = min(M, lo + _CHUNK)
-        nobs[lo:hi] = _chunk(ya[lo:hi], Xa[lo:hi], w, coef_k[:, lo:hi], se_k[:, lo:hi])
+        nobs[lo:hi] = _chunk(ya[lo:hi], Xa[lo:hi], w, coef_k[:, lo:hi], se_k[:, lo:hi], work)
     coef = coef_k.transpose(1, 2, 0)
     se = se_k.transpose(1, 2, 0)
     if not batched:

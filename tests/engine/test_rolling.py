@@ -48,6 +48,34 @@ def test_batched_matches_statsmodels() -> None:
         np.testing.assert_allclose(fit.se[m], ref.bse, rtol=1e-8)
 
 
+# source: statsmodels 0.15.0 RollingOLS for complete full-rank models, OLS refitted on each window where a
+# window has a gap or is rank deficient; a batch of several chunks (the work buffers are reused from one
+# chunk to the next, the last chunk is shorter) with the gap and the rank-deficient stretch in later chunks
+def test_several_chunks_match_statsmodels() -> None:
+    from drift.engine import rolling as rolling_mod
+
+    rng = np.random.default_rng(303)
+    M, n, k, w = 2 * rolling_mod._CHUNK + 5, 60, 3, 15
+    ys, Xs = zip(*[_design(rng, n, k) for _ in range(M)])
+    y, X = np.stack(ys), np.stack(Xs)
+    y[M - 2, 30] = np.nan  # a gap in the last chunk
+    X[rolling_mod._CHUNK + 1, 10:40, 2] = 0.0  # a silent driver: the windows inside are rank deficient
+    fit = rolling_coefficients(y, X, w)
+    for m in (0, rolling_mod._CHUNK - 1, rolling_mod._CHUNK, M - 1):
+        ref = RollingOLS(y[m], X[m], window=w).fit()
+        np.testing.assert_allclose(fit.coef[m], ref.params, rtol=1e-8, atol=1e-10)
+        np.testing.assert_allclose(fit.se[m], ref.bse, rtol=1e-8)
+    for m in (rolling_mod._CHUNK + 1, M - 2):
+        for t in range(w - 1, n):
+            rows = slice(t - w + 1, t + 1)
+            if np.isnan(y[m, rows]).any() or np.linalg.matrix_rank(X[m, rows]) < k:
+                assert np.isnan(fit.coef[m, t]).all() and np.isnan(fit.se[m, t]).all()
+            else:
+                ols = sm.OLS(y[m, rows], X[m, rows]).fit()
+                np.testing.assert_allclose(fit.coef[m, t], ols.params, rtol=1e-8, atol=1e-10)
+                np.testing.assert_allclose(fit.se[m, t], ols.bse, rtol=1e-8)
+
+
 # oracle: statsmodels OLS refitted on each window (plain loop)
 def test_nan_windows_and_rank_deficient_windows() -> None:
     rng = np.random.default_rng(303)
