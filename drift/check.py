@@ -231,7 +231,7 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
         ahead = _plans_loaded_after_the_fact(cfg, chosen, store, moment)
 
         def load(series: list[str]) -> pd.DataFrame:
-            got = store.load_observations(series, moment)
+            got = store.load_observations(series, moment, ingested=False)  # the check never reads ingested_at
             extra = ahead[ahead["series"].isin(series)] if not ahead.empty else ahead
             return pd.concat([got, extra], ignore_index=True) if len(extra) else got
 
@@ -324,7 +324,7 @@ def _plans_loaded_after_the_fact(cfg: Config, models: Sequence[ModelConfig], sto
                 want[(dr.series, need)] = default_at
     if not want:
         return pd.DataFrame()
-    rows = store.load_observations(sorted({s for s, _ in want}), max(want.values()).to_pydatetime())
+    rows = store.load_observations(sorted({s for s, _ in want}), max(want.values()).to_pydatetime(), ingested=False)
     if rows.empty:
         return rows
     w = pd.DataFrame([(s, p, a) for (s, p), a in want.items()], columns=["series", "period", "_default_at"])

@@ -395,3 +395,85 @@ def test_as_of_read_is_one_indexed_query(store) -> None:
     assert "ux_obs_vintage" in plan
     got = store.load_observations(series, t + timedelta(days=1))
     assert len(got) == 150 * 20 and set(got["series"]) == set(series)
+
+
+# common practice, no source: the packed read (one row per series, columns aggregated by the database) is
+# served by the same index; on SQLite it needs no temporary sort for its GROUP BY (rows in index order)
+def test_packed_as_of_read_is_one_indexed_query(store) -> None:
+    from drift.store import _moment_param, observations_as_of_packed
+
+    t = datetime(2025, 1, 1, tzinfo=timezone.utc)
+    _obs(store, [(f"s{i}", date(2024, 12, 2) + timedelta(weeks=w), float(w), t) for i in range(300) for w in range(20)])
+    series = [f"s{i}" for i in range(0, 300, 2)]
+    with store.connect() as conn:
+        at = _moment_param(conn, t + timedelta(days=1))
+        sql = observations_as_of_packed(store.dialect, len(series), t + timedelta(days=1))
+        if store.dialect == "postgresql":
+            conn.exec_driver_sql("ANALYZE observations")
+            conn.exec_driver_sql("SET enable_seqscan = off")
+            rows = conn.exec_driver_sql("EXPLAIN " + sql, {"series": series, "at": at}).fetchall()
+        else:
+            rows = conn.exec_driver_sql("EXPLAIN QUERY PLAN " + sql, (*series, at, at)).fetchall()
+        plan = "\n".join(str(r[-1]) for r in rows)
+        print(f"\n{store.dialect} plan of the packed as-of read:\n{plan}")
+    assert "ux_obs_vintage" in plan
+    if store.dialect == "sqlite":
+        assert "TEMP B-TREE" not in plan
+
+
+# common practice, no source: values come back bit for bit whatever their binary exponent (normal,
+# subnormal, the largest, powers of two and their neighbours, zero), seeded; the packed read equals the row
+# read column for column, types included
+def test_packed_read_is_exact_and_equals_the_row_read(store) -> None:
+    import numpy as np
+
+    from drift.store import _read_rows
+
+    rng = np.random.default_rng(20261203)
+    bits = rng.integers(0, 2 ** 63 - 1, size=3000, dtype=np.int64) & ~np.int64(0x7FF0000000000000)
+    bits |= rng.integers(0, 0x7FF, size=3000, dtype=np.int64) << 52  # every exponent but inf/nan
+    values = bits.view(np.float64) * np.where(rng.random(3000) < 0.5, -1.0, 1.0)
+    special = np.array([0.0, 5e-324, -5e-324, 2.2250738585072014e-308, 2.225073858507201e-308, 1e-290,
+                        1.0000000000000001e-290, 9.999999999999999e-291, 1.7976931348623157e308, -1e308, 1.0,
+                        np.nextafter(1.0, 2.0), np.nextafter(1.0, 0.0), 2.0 ** 53, 2.0 ** 53 + 2, 0.1 + 0.2, 1 / 3])
+    values = np.concatenate([special, values])
+    bid = _obs(store, [])
+    t = datetime(2025, 1, 1, tzinfo=timezone.utc)
+    issued = datetime(2024, 12, 1, 6, 30, 15, 123456, tzinfo=timezone.utc)
+    rows = [(f"v{i % 7}", date(1990, 1, 1) + timedelta(weeks=i), issued if i % 3 == 0 else None, float(v))
+            for i, v in enumerate(values)]
+    cols = _columns(rows, bid, 1)
+    cols["available_at"] = np.array([t + timedelta(seconds=i, microseconds=i % 1000) for i in range(len(rows))],
+                                    dtype=object)
+    with store.begin() as conn:
+        assert store.insert_observations(conn, cols) == len(rows)
+    names = [f"v{i}" for i in range(7)] + ["absent"]
+    got = store.load_observations(names, t + timedelta(days=1))
+    with store.connect() as conn:
+        ref = _read_rows(conn, names, t + timedelta(days=1))
+    key = ["series", "period"]
+    got = got.sort_values(key).reset_index(drop=True)
+    ref = ref.sort_values(key).reset_index(drop=True)
+    pd.testing.assert_frame_equal(got, ref)
+    want = pd.DataFrame({"series": [r[0] for r in rows], "period": pd.to_datetime([r[1] for r in rows]),
+                         "value": values}).sort_values(key).reset_index(drop=True)
+    assert np.array_equal(got["value"].to_numpy().view(np.int64), want["value"].to_numpy().view(np.int64))
+    with store.connect() as conn:
+        assert store.load_observations(["absent"]).dtypes.equals(_read_rows(conn, ["absent"], None).dtypes)
+    without = store.load_observations(names, t + timedelta(days=1), ingested=False)
+    assert list(without.columns) == [c for c in ref.columns if c != "ingested_at"] and len(without) == len(ref)
+
+
+# common practice, no source: a SQLite without its math functions (or a value the packed form cannot carry,
+# an infinity) is read row by row, with the same result
+def test_row_read_when_the_packed_one_cannot_serve(sqlite_store, monkeypatch) -> None:
+    import drift.store as st
+
+    t = datetime(2025, 1, 1, tzinfo=timezone.utc)
+    _obs(sqlite_store, [("x", date(2024, 12, 2) + timedelta(weeks=w), 0.1 * w, t) for w in range(5)])
+    packed = sqlite_store.load_observations(["x"])
+    monkeypatch.setitem(st._PACKED_READ, sqlite_store.url, False)
+    pd.testing.assert_frame_equal(sqlite_store.load_observations(["x"]), packed)
+    monkeypatch.delitem(st._PACKED_READ, sqlite_store.url)
+    _obs(sqlite_store, [("y", date(2024, 12, 2), float("inf"), t)])
+    assert sqlite_store.load_observations(["x", "y"])["value"].tolist()[-1] == float("inf")
