@@ -26,6 +26,7 @@ from drift.checking.actions import (  # noqa: F401
     _date_break,
     _horizon_words,
     _refit_action,
+    _relag_explains_break,
     _relationship_actions,
     _sentence_start,
     _test_words,
@@ -165,6 +166,7 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
             continue
         try:
             _lag_drift(c)
+            _relag_explains_break(c)  # a refit whose break the moved lag explains becomes that relag
             out.append(_payload(c))
         except Exception as exc:  # noqa: BLE001 - a failure is the model's own entry
             errors[c.model.name] = _failure(c.model.name, "analysing it", exc)

@@ -41,7 +41,10 @@ stale difference as a gain), and every other lag would look better than the curr
 - ``relag``: the recent lag-profile peak is at another lag and clears a Bonferroni band over the scanned
   lags, the model at the new lag beats the current one (Diebold–Mariano/HLN, one-sided at ``level``) *and*
   beats the model without the driver (Clark–West at ``level``). A relag replaces a ``drop-driver`` of the
-  same driver: a driver that forecasts better at another lag still earns its place.
+  same driver: a driver that forecasts better at another lag still earns its place. A relag also replaces
+  the ``refit`` when the moved lag explains the monitors' break (the reference coefficients at the new lag
+  fit the data since the break: :func:`drift.checking.actions._relag_explains_break`); the count of hard
+  actions, and so the false-alarm rule, is unchanged.
 """
 
 from __future__ import annotations

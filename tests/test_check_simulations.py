@@ -96,6 +96,50 @@ def test_lag_moving_from_1_to_3_gives_relag_3(tmp_path):
         assert int(np.argmax(rec)) == 3
 
 
+def test_a_break_the_moved_lag_explains_is_a_relag_not_a_refit(tmp_path):
+    # invented scenario (simulation): x1 acts three weeks back from the first monitored week, its effect
+    # unchanged. The monitors find the break; with x1 at lag 3 the reference coefficients fit the data
+    # since the break (errors as on the reference period, each test at 5 %: about 0.9 of the models), so
+    # the verdict is the relag, which carries the monitors' evidence. Bound: the binomial 1 % quantile at
+    # 0.8 (measured: 5 of 6)
+    cfg = config(tmp_path)
+    n, relag = 6, 0
+    for seed in range(n):
+        p = _check(cfg, Scenario(seed=200 + seed, b1=2.0, lag1_after=3, change_at=N_REF))
+        if p["verdict"] != "relag":
+            continue
+        relag += 1
+        assert not _acts(p, "refit"), p["actions"]
+        (a,) = _acts(p, "relag")
+        assert a["since"] and a["monitor"]["test"].startswith("monitor-")
+        ex = a["explains_break"]
+        assert ex["pvalue_mean"] >= 0.05 and ex["pvalue_spread"] >= 0.05
+        assert ex["spread_ratio"] < ex["spread_ratio_old_lag"]
+        assert "the lag moved, not the effect" in a["reason"] and a["since"] in a["reason"]
+    assert relag >= stats.binom.ppf(0.01, n, 0.8), relag
+
+
+def test_a_changed_effect_stays_a_refit(tmp_path):
+    # invented scenario (simulation): x1's effect 2.0 -> 0.8 at its own lag: whatever the lag profile says,
+    # the reference coefficients at another lag cannot fit the data since the break, so refit
+    cfg = config(tmp_path)
+    for seed in range(4):
+        p = _check(cfg, Scenario(seed=300 + seed, b1=2.0, b1_after=0.8, change_at=N_REF))
+        assert p["verdict"] == "refit", p["actions"]
+
+
+def test_spread_pvalue_without_extrapolation_is_the_f_distribution():
+    # known answer: with A = 0, Q = chi2_n / (chi2_dof / dof) = n F(n, dof) (scipy.stats.f); the seeded
+    # simulation (20,000 draws) is within its Monte Carlo error
+    from drift.checking.actions import _spread_pvalue
+
+    for n, dof, q in ((40, 100, 52.0), (12, 30, 20.0), (60, 146, 60.0)):
+        want = stats.f.sf(q / n, n, dof)
+        got = _spread_pvalue(q, n, np.zeros((n, n)), dof)
+        assert abs(got - want) < 4 * np.sqrt(want * (1 - want) / 20_000) + 1e-4, (n, dof, got, want)
+    assert _spread_pvalue(50.0, 40, np.zeros((40, 40)), 100) == _spread_pvalue(50.0, 40, np.zeros((40, 40)), 100)
+
+
 # --------------------------------------------------------------------------------------- (c) data-late
 def test_stopped_feed_is_late_on_the_first_check_after_its_due_date(tmp_path):
     # invented scenario (simulation): x1 stops after the week of row 200; values of a week become

@@ -3,8 +3,9 @@
 Takes a model's context after screening (its alarms, its recursive one-step errors in
 ``charts['_fe']``, its prewhitened design); gives its relationship actions (:class:`drift.verdicts.Action`
 with the reason a reader gets) and, for a refit, the before/after effects (``charts['_effects']``, the
-coefficient chart's ``split`` lines, ``charts['break_index']``). Also the words that name a monitor and
-the horizon, shared with the charts. The other actions come from their own stages: ``data-late``
+coefficient chart's ``split`` lines, ``charts['break_index']``). After the lag-drift stage,
+:func:`_relag_explains_break` turns a refit whose break a moved lag explains into that relag. Also the
+words that name a monitor and the horizon, shared with the charts. The other actions come from their own stages: ``data-late``
 (:mod:`drift.checking.freshness`), ``drop-driver`` and ``relag`` (:mod:`drift.checking.drivers`), the
 production forecasts' ``watch`` (:mod:`drift.checking.production`).
 """
@@ -14,11 +15,15 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+import pandas as pd
+from scipy import stats
 
 from drift import engine
 from drift.checking.context import _Ctx, _num, log
+from drift.checking.designs import _prewhiten
 from drift.engine.split import split_coefficients
 from drift.exceptions import DriftError, InsufficientDataError
+from drift.panel import build_design
 from drift.verdicts import Action, change_words, fmt_num, fmt_p
 
 
@@ -115,6 +120,111 @@ def _refit_action(c: _Ctx, alarm_idx: int, lapsed: bool = False) -> None:
     c.actions.append(Action("refit", reason=text, extra={
         "since": since_s, "monitor": monitor, "moved": moved["driver"] if moved is not None else None,
         "effects": effects}))
+
+
+def _relag_explains_break(c: _Ctx) -> None:
+    """A refit whose break a moved lag explains becomes that ``relag``: run after the lag-drift stage.
+
+    When the monitors found a break (``refit``) and a driver's lag moved (``relag``: its lag-profile peak
+    moved, clears its band, and the model at the new lag forecasts better), the refit is replaced by the
+    relag if, from the dated break on, the *reference* fit with that driver at its new lag forecasts as it
+    did on the reference period: its errors ``e = y - x' b_ref`` (covariance ``s^2 (I + X P X')`` over those
+    rows if only the lag moved, P the inverse of the reference X'X) have a mean not significantly different
+    from zero (two-sided z-test at ``check.level``) and a sum of squares not significantly above what that
+    covariance gives (:func:`_spread_pvalue`, one-sided at ``check.level``), on at least 8 rows,
+    and are smaller in mean square than at the old lag. Then the lag moved and the effect did not: the relag
+    carries the monitors' evidence (``since``, ``monitor``) and says to refit at the new lag. Hard actions
+    are unchanged in number (a refit becomes a relag), so the false-alarm rule is untouched.
+    """
+    refit = next((a for a in c.actions if a.action == "refit"), None)
+    relags = [a for a in c.actions if a.action == "relag"]
+    since = c.charts.get("break_index")
+    if refit is None or not relags or since is None or refit.extra.get("monitor", {}).get("beyond_horizon"):
+        return
+    d, chk = c.design, c.cfg.check
+    ref = np.arange(d.n) < d.n_ref
+    ok = ref & np.isfinite(c.y) & np.isfinite(c.X).all(axis=1)
+    k = c.X.shape[1]
+    if ok.sum() <= k + 2:
+        return
+    b = np.linalg.lstsq(c.X[ok], c.y[ok], rcond=None)[0]  # the reference fit (the monitors' b_ref)
+    sigma = float(np.sqrt(np.sum((c.y[ok] - c.X[ok] @ b) ** 2) / (ok.sum() - k)))
+    P = np.linalg.pinv(c.X[ok].T @ c.X[ok])
+    after = np.arange(d.n) >= since
+
+    def errors(y: np.ndarray, X: np.ndarray) -> np.ndarray:
+        good = after & np.isfinite(y) & np.isfinite(X).all(axis=1)
+        return np.where(good, y - np.where(good[:, None], X, 0.0) @ b, np.nan)
+
+    e_old = errors(c.y, c.X)
+    best = None
+    for a in relags:
+        s, new = a.extra.get("driver"), a.extra.get("lag")
+        try:
+            alt = build_design(c.cfg, c.model, c.obs, pd.Timestamp(c.as_of), lags={s: new})
+            if not alt.periods.equals(d.periods) or alt.X.shape[1] != k:
+                continue
+            y_alt, X_alt, _, _ = _prewhiten(c.model, alt)
+        except DriftError as exc:
+            log.debug("model %s: no relagged design for %s: %s", d.model, s, exc)
+            continue
+        X_alt = np.asarray(X_alt, float)
+        e_new = errors(np.asarray(y_alt, float), X_alt)
+        both = np.isfinite(e_new) & np.isfinite(e_old)
+        n = int(both.sum())
+        if n < 8:
+            continue
+        # under "the lag moved, not the effect" e = u - x'(b_ref - beta): covariance sigma^2 (I + X P X')
+        # over these rows (the reference fit's error is shared by all of them)
+        XR = X_alt[both]
+        A = XR @ P @ XR.T
+        xbar = XR.mean(axis=0)
+        en = e_new[both]
+        mean_z = float(en.mean() / (sigma * np.sqrt(1.0 / n + xbar @ P @ xbar)))
+        p_mean = float(2 * stats.norm.sf(abs(mean_z)))
+        # spread: sum e^2 / s^2 is sum_j (1 + mu_j) chi2_1 + chi2_(n - r) (mu_j the r non-zero eigenvalues
+        # of X P X' over these rows) over s^2 / sigma^2 ~ chi2_dof / dof; its tail simulated (seeded)
+        p_spread = _spread_pvalue(float(np.sum(en * en) / sigma**2), n, A, int(ok.sum()) - k)
+        ms_new, ms_old = float(np.mean(en * en)), float(np.mean(e_old[both] ** 2))
+        if p_mean >= chk.level and p_spread >= chk.level and ms_new < ms_old and (best is None or ms_new < best[1]):
+            best = (a, ms_new, {"n": n, "mean_error": _num(round(float(en.mean()), 6)),
+                                "pvalue_mean": _num(p_mean), "spread_ratio": _num(round(np.sqrt(ms_new) / sigma, 4)),
+                                "pvalue_spread": _num(p_spread),
+                                "spread_ratio_old_lag": _num(round(np.sqrt(ms_old) / sigma, 4))})
+    if best is None:
+        return
+    a, _, figs = best
+    since_s = refit.extra.get("since")
+    mon = refit.extra.get("monitor", {})
+    s, new, cur = a.extra["driver"], a.extra["lag"], d.lags.get(a.extra["driver"])
+    a.extra.update({"since": since_s, "monitor": mon, "explains_break": figs})
+    a.reason += (
+        f" It explains the change the monitors found: {_test_words(mon.get('test', ''), mon.get('driver'))} "
+        f"crossed its boundary on {mon.get('date')}, and since {since_s} the reference coefficients with "
+        f"'{s}' at lag {new} forecast as on the reference period (mean error {fmt_num(figs['mean_error'])} "
+        f"{c.model.unit or ''}, p = {fmt_p(figs['pvalue_mean'])}; spread {fmt_num(figs['spread_ratio'])} "
+        f"times the reference's, p = {fmt_p(figs['pvalue_spread'])}; at lag {cur}: "
+        f"{fmt_num(figs['spread_ratio_old_lag'])} times): the lag moved, not the effect. Re-lag it and refit "
+        f"on data since {since_s}.")
+    c.actions = [x for x in c.actions if x is not refit]
+
+
+#: draws of the seeded simulation behind :func:`_spread_pvalue`
+SPREAD_DRAWS = 20_000
+
+
+def _spread_pvalue(q: float, n: int, A: np.ndarray, dof: int) -> float:
+    """P(Q >= q) for ``Q = e'e / s^2`` when ``e ~ N(0, sigma^2 (I + A))`` over n rows and ``s^2`` is an
+    independent ``sigma^2 chi2_dof / dof``: ``Q = (sum_j (1 + mu_j) Z_j^2 + chi2_(n - r)) / (chi2_dof / dof)``
+    with ``mu_j`` the r non-zero eigenvalues of A, by a seeded simulation (the same figures give the same
+    p-value)."""
+    mu = np.linalg.eigvalsh((A + A.T) / 2.0)
+    mu = mu[mu > 1e-10 * max(1.0, float(mu.max(initial=0.0)))]
+    rng = np.random.default_rng(20261203)
+    Z = rng.standard_normal((SPREAD_DRAWS, mu.size))
+    num = (Z * Z) @ (1.0 + mu) + rng.chisquare(max(n - mu.size, 1), SPREAD_DRAWS)
+    draws = num / (rng.chisquare(max(dof, 1), SPREAD_DRAWS) / max(dof, 1))
+    return float((np.sum(draws >= q) + 1) / (SPREAD_DRAWS + 1))
 
 
 def _date_break(c: _Ctx, alarm_idx: int) -> int:
