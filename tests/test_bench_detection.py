@@ -169,3 +169,16 @@ def test_reference_page_cusum_told_the_direction_holds_its_level(direction: int)
     first = b.page_reference(d["Y"], d["X"], freq.n_ref - 1, direction=direction)
     k = int((first >= 0).sum())
     assert _not_above(k, 2000, 0.05) and _not_below(k, 2000, 0.05), k
+
+
+def test_reachable_members_share_the_budget_between_bonferroni_and_none() -> None:
+    # a composition's common member level lies between the Bonferroni share (budget / members, which
+    # holds whatever the dependence: Bonferroni's inequality) and the budget itself; a single monitor
+    # gets the budget (invented monthly scenario, seeded, few null paths)
+    b = _bench()
+    rows = b.reachable("promo-1s", 20, "monthly", seed=3, reps=4000, budgets=(0.05,))
+    for r, (_name, members, _one) in zip(rows, b.COMPOSITIONS):
+        assert 0.05 / len(members) - 1e-3 <= r["member_level"] <= 0.05 + 1e-3, r  # ranks of 4,000 paths
+        if len(members) == 1:
+            assert r["member_level"] == pytest.approx(0.05, abs=1e-3)
+        assert 0.0 <= r["within"] <= r["detect"] <= 1.0
