@@ -35,6 +35,7 @@ from drift.checking.context import _Ctx, _failure, _list, _num  # noqa: F401
 from drift.checking.designs import (  # noqa: F401
     COLLINEAR_RTOL,
     MIN_SCALE,
+    SeriesFrames,
     _check_scale,
     _horizon_limit,
     _horizon_periods,
@@ -132,8 +133,9 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     """
     ctxs: list[_Ctx] = []
     errors: dict[str, str] = {}
-    # split the observations by series once: every later per-model filter then works on a small frame
-    by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+    # split the observations by series once (and convert them once for the as-of selection): every later
+    # per-model filter then works on a small frame
+    by_series = SeriesFrames(obs, models)
     day = (as_of - timedelta(microseconds=1)).date()
     for m in models:
         try:

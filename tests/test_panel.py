@@ -177,3 +177,95 @@ def test_calendar_season_positions_do_not_drift(tmp_path) -> None:
     mm = m.model_copy(update={"frequency": "M"})
     pos_m, n_m = season_position(mm, months)
     assert n_m == 12 and list(pos_m[:13]) == [*range(12), 0]
+
+
+BATCH_YAML = """\
+# invented scenario (simulation), tests/test_panel.py
+models:
+  - name: a
+    target: a_y
+    frequency: W
+    drivers:
+      - {series: a_xl, lag: 2, delay: 3 days}
+      - {series: a_xf, lag: 1, form: forecast}
+      - {series: a_xk, lag: 0, form: known}
+    target_lags: [1, 3]
+    reference: {start: 2021-01-04, end: 2021-12-27}
+  - name: b
+    target: b_y
+    frequency: W
+    drivers:
+      - {series: b_xl, lag: 1}
+      - {series: a_xl, lag: 2}
+    reference: {start: 2021-02-01, end: 2021-10-25}
+    preprocess: {method: dummies, trend: none}
+  - name: c
+    target: c_y
+    frequency: W
+    drivers:
+      - {series: c_xl, lag: 3, delay: 3 days}
+    reference: {start: 2021-01-04, end: 2021-12-27}
+    preprocess: {season: none}
+  - name: lost
+    target: nowhere
+    frequency: W
+    drivers:
+      - {series: a_xl, lag: 1}
+    reference: {start: 2021-01-04, end: 2021-12-27}
+"""
+
+
+def _batch_obs(rng: np.random.Generator) -> pd.DataFrame:
+    """Three models' vintages (from :func:`_random_obs`), shuffled, with ties: a few vintages repeated with
+    another value at the same available time (the later stored row wins)."""
+    parts = []
+    for name in ("a", "b", "c"):
+        df = _random_obs(rng, 3)
+        df["series"] = name + "_" + df["series"]
+        parts.append(df)
+    obs = pd.concat(parts, ignore_index=True)
+    ties = obs[obs["series"].isin(["a_xl", "b_y", "a_y"])].sample(n=40, random_state=int(rng.integers(1 << 30)))
+    ties = ties.assign(value=ties["value"] + 1000.0)
+    obs = pd.concat([obs, ties], ignore_index=True)
+    return obs.sample(frac=1.0, random_state=int(rng.integers(1 << 30))).reset_index(drop=True)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_designs_built_together_are_those_built_one_at_a_time(tmp_path, seed):
+    # oracle: build_designs (the chunk's as-of selections in a few sorted searches) against build_design
+    # per model, field for field; invented scenario (simulation), seeded
+    from drift.panel import SeriesVintages, build_designs
+
+    rng = np.random.default_rng(9200 + seed)
+    (tmp_path / "drift.yaml").write_text(BATCH_YAML, encoding="utf-8")
+    cfg = load_config(tmp_path / "drift.yaml")
+    obs = _batch_obs(rng)
+    as_of = _utc(START + pd.Timedelta(weeks=N - 3 - int(rng.integers(0, 10)), hours=5))
+    # what the store returns, and plans of the coming periods loaded after the fact (available later)
+    obs = obs[(obs["available_at"] <= as_of) | (obs["series"] == "a_xk")].reset_index(drop=True)
+    got = build_designs(cfg, cfg.models, SeriesVintages(obs), as_of)
+    assert sorted(got) == ["a", "b", "c"]  # 'lost' has no target: left to build_design, which says why
+    for m in cfg.models[:3]:
+        want = build_design(cfg, m, obs[obs["series"].isin(m.series)], as_of)
+        d = got[m.name]
+        assert d.periods.equals(want.periods) and d.periods.dtype == want.periods.dtype
+        np.testing.assert_array_equal(d.y, want.y)
+        np.testing.assert_array_equal(d.X, want.X)
+        for f in ("model", "columns", "driver_columns", "n_ref", "deterministic", "lags", "season_length"):
+            assert getattr(d, f) == getattr(want, f), f
+        assert np.isfinite(d.X).sum() > d.X.size // 2
+
+
+def test_designs_built_together_leave_sub_second_times_to_build_design(tmp_path):
+    # the sorted searches compare whole seconds: a time with a fraction of a second makes build_designs
+    # build nothing (build_design rounds each selection on its own time base); invented scenario
+    from drift.panel import SeriesVintages, build_designs
+
+    (tmp_path / "drift.yaml").write_text(BATCH_YAML, encoding="utf-8")
+    cfg = load_config(tmp_path / "drift.yaml")
+    obs = _batch_obs(np.random.default_rng(9300))
+    as_of = _utc(START + pd.Timedelta(weeks=N - 3))
+    obs = obs[obs["available_at"] <= as_of].reset_index(drop=True)
+    assert sorted(build_designs(cfg, cfg.models, SeriesVintages(obs), as_of)) == ["a", "b", "c"]
+    obs.loc[0, "available_at"] += pd.Timedelta(milliseconds=250)
+    assert build_designs(cfg, cfg.models, SeriesVintages(obs), as_of) == {}

@@ -9,18 +9,19 @@ few reference rows, a constant target, collinear regressors), before it is batch
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Mapping, Sequence
 from datetime import date, datetime, timedelta
 
 import numpy as np
 import pandas as pd
 
 from drift import engine
-from drift.checking.context import _Ctx
+from drift.checking.context import _Ctx, log
 from drift.config import MAX_ABS_VALUE, Config, ModelConfig
 from drift.engine.tables import family as _fam_table
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import Design, build_design, shift_periods
+from drift.panel import Design, SeriesVintages, Vintages, build_design, build_designs, shift_periods
 from drift.verdicts import fmt_num
 
 
@@ -32,13 +33,94 @@ def prepare_model(cfg: Config, model: ModelConfig, obs: pd.DataFrame, as_of: dat
     ------
     DriftError : the model cannot be checked with these data (the reason says why).
     """
-    by_series = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
-    return _prepare(cfg, model, by_series, as_of, (as_of - timedelta(microseconds=1)).date())
+    return _prepare(cfg, model, SeriesFrames(obs, [model]), as_of, (as_of - timedelta(microseconds=1)).date())
 
 
-def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as_of: datetime,
+class SeriesFrames(Mapping[str, pd.DataFrame]):
+    """A chunk's observations by series, converted once for the as-of selection of every model's design
+    (:class:`drift.panel.SeriesVintages`): series name -> that series' rows (a frame, made when asked for),
+    and :meth:`model_frame`, one model's rows in one take."""
+
+    def __init__(self, obs: pd.DataFrame, models: Sequence[ModelConfig] = ()) -> None:
+        self.obs = obs
+        self.vintages = SeriesVintages(obs)
+        # the frames of the models to come, made in one take and handed out as slices of it
+        spans: dict[tuple[str, ...], tuple[int, int]] = {}
+        parts: list[np.ndarray] = []
+        at = 0
+        for m in models:
+            names = tuple(self.model_series(m))
+            if names in spans or not all(s in self.vintages for s in names):
+                continue
+            rows = [self.vintages.rows(s) for s in names]
+            n = sum(len(r) for r in rows)
+            spans[names] = (at, at + n)
+            parts += rows
+            at += n
+        self._spans = spans
+        self._frames = obs.take(np.concatenate(parts)) if parts else obs.iloc[0:0]
+        self._models = list(models)
+        self._designs: dict[str, tuple[ModelConfig, Design]] = {}
+        self._designs_at: datetime | None = None
+
+    def design(self, cfg: Config, m: ModelConfig, as_of: datetime) -> Design | None:
+        """The model's one-step design at ``as_of`` from the designs of the chunk's models, built together
+        on the first call (:func:`drift.panel.build_designs`); None when that left it out."""
+        if self._designs_at != as_of:
+            try:
+                built = build_designs(cfg, self._models, self.vintages, pd.Timestamp(as_of))
+            except Exception as exc:  # noqa: BLE001 - each model's own build_design then says what fails
+                log.debug("building the chunk's designs together failed (%s: %s); building them one by one",
+                          type(exc).__name__, exc)
+                built = {}
+            self._designs = {m.name: (m, built[m.name]) for m in self._models if m.name in built}
+            self._designs_at = as_of
+        got = self._designs.get(m.name)
+        return got[1] if got is not None and got[0] is m else None
+
+    def model_series(self, m: ModelConfig) -> list[str]:
+        """The series of a model's frame: its own, then its logged forecasts when the chunk has them."""
+        names = list(dict.fromkeys(m.series))
+        if m.forecast_series is not None and m.forecast_series in self.vintages:
+            names.append(m.forecast_series)
+        return names
+
+    def __getitem__(self, name: str) -> pd.DataFrame:
+        return self.obs.iloc[self.vintages.rows(name)]
+
+    def __contains__(self, name: object) -> bool:
+        return name in self.vintages
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.vintages)
+
+    def __len__(self) -> int:
+        return len(self.vintages)
+
+    def model_frame(self, names: list[str]) -> pd.DataFrame:
+        """The rows of these series, series after series (stored order within each), index 0..n-1: the
+        frame ``pd.concat([self[s] for s in names], ignore_index=True)`` would give."""
+        span = self._spans.get(tuple(names))
+        if span is None:
+            return self.obs.take(np.concatenate([self.vintages.rows(s) for s in names])).reset_index(drop=True)
+        out = self._frames.iloc[span[0]:span[1]]
+        out.index = pd.RangeIndex(span[1] - span[0])
+        return out
+
+    def model_vintages(self, names: list[str]) -> dict[str, Vintages]:
+        """Series -> :class:`Vintages` of :meth:`model_frame` (a series named twice has its rows twice)."""
+        out: dict[str, Vintages] = {}
+        for s in dict.fromkeys(names):
+            v = self.vintages[s]
+            times = names.count(s)
+            out[s] = v if times == 1 else v.take(np.tile(np.arange(len(v)), times))
+        return out
+
+
+def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame], as_of: datetime,
              day: date) -> _Ctx:
-    """The model's design, prewhitened and validated (:func:`_validate`).
+    """The model's design, prewhitened and validated (:func:`_validate`). ``by_series``: the observations
+    by series, best a :class:`SeriesFrames` (the arrays of the as-of selection are then made once per chunk).
 
     Raises
     ------
@@ -60,9 +142,15 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: dict[str, pd.DataFrame], as
         raise DriftError(
             f"model '{m.name}': no observations of {which} are in the store as of {day.isoformat()}; "
             "check the source and the series names (drift ingest reports what it stored)")
-    extra = [by_series[m.forecast_series]] if m.forecast_series in by_series else []  # logged forecasts
-    mobs = pd.concat([by_series[s] for s in dict.fromkeys(m.series)] + extra, ignore_index=True)
-    d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
+    if isinstance(by_series, SeriesFrames):
+        names = by_series.model_series(m)
+        mobs = by_series.model_frame(names)
+        built = by_series.design(cfg, m, as_of)
+        d = built if built is not None else build_design(cfg, m, by_series.model_vintages(names), pd.Timestamp(as_of))
+    else:
+        extra = [m.forecast_series] if m.forecast_series in by_series else []  # logged forecasts
+        mobs = pd.concat([by_series[s] for s in [*dict.fromkeys(m.series), *extra]], ignore_index=True)
+        d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
     c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
     c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
     c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
