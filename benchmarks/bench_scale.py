@@ -527,8 +527,8 @@ def breakdown(models: int, keep: str | None = None) -> None:
                 calls[name] = calls.get(name, 0) + 1
         return wrapper
 
-    stages = ["_prepare", "_screen", "_logged_forecasts", "_deployed_replay", "_freshness", "_drivers_and_worth",
-              "_lag_profiles_batched", "_lag_drift", "_payload", "_alerts_and_delivery"]
+    stages = ["_prepare", "_screen", "_logged_forecasts", "_worth_batched", "_deployed_replay", "_freshness",
+              "_drivers_and_worth", "_lag_profiles_batched", "_lag_drift", "_payload", "_alerts_and_delivery"]
     with tempfile.TemporaryDirectory(prefix="bench-scale-") as d:
         folder = Path(keep) if keep else Path(d)
         folder.mkdir(parents=True, exist_ok=True)

@@ -51,6 +51,8 @@ from drift.checking.drivers import (  # noqa: F401
     _min_lag,
     _one_step_errors,
     _rolling_forecast_errors,
+    _worth_batched,
+    _worth_fits,
 )
 from drift.checking.freshness import _forward_feed, _freshness, _periods_between  # noqa: F401
 from drift.checking.payload import _payload, error_entry
@@ -150,6 +152,9 @@ def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of
     for group in groups.values():
         _screen_isolated(group, errors)
     _logged_forecasts([c for c in ctxs if c.model.name not in errors and c.model.forecast_series], errors)
+    # the nested fits and worth tests of the whole chunk in a few batched engine calls (each model's own
+    # stage below reads them, and computes for itself whatever the batch could not)
+    _worth_batched([c for c in ctxs if c.model.name not in errors])
     for c in ctxs:
         if c.model.name in errors:
             continue

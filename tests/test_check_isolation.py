@@ -215,3 +215,35 @@ def test_batched_lag_profiles_equal_the_per_model_ones(tmp_path: Path, monkeypat
     assert errors == errors_single == {}
     assert json.dumps(batched, sort_keys=True, default=str) == json.dumps(single, sort_keys=True, default=str)
     assert set(calls) == {1} and n_batched < len(calls)
+
+
+def test_batched_worth_equals_the_per_model_one(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The chunk's nested rolling fits and Clark–West tests in a few batched engine calls give the payloads
+    the per-model calls give, byte for byte, also when the engine refuses a batch (here the first one): the
+    batch is split until each part is computed or alone. Oracle: the same check with the batched stage
+    switched off (common practice, no source)."""
+    cfg = chunk_config(tmp_path, {})
+    obs = obs_with(dict(VALUES))
+    calls: list[int] = []  # models per rolling fit of the nested models (the full model's k is larger)
+    real = drift.engine.rolling_coefficients
+    k_nested = 9  # the model's 10 columns (const, trend, 3 Fourier pairs, 2 drivers) less the driver left out
+
+    def counted(y: Any, X: Any, window: int) -> Any:
+        rows = np.shape(y)[0] if np.ndim(y) == 2 else 1
+        if np.shape(X)[-1] == k_nested:
+            calls.append(rows)
+            if rows == 6 and calls.count(6) == 1:
+                raise np.linalg.LinAlgError("refused")
+        return real(y, X, window)
+
+    monkeypatch.setattr(drift.engine, "rolling_coefficients", counted)
+    batched, errors = run_chunk(cfg, obs)
+    # 3 models x 2 drivers: refused, then split in halves (1 model, then 2 models) until each part is fitted
+    assert calls == [6, 2, 4]
+    calls.clear()
+    monkeypatch.setattr(drift.check, "_worth_batched", lambda ctxs: None)
+    single, errors_single = run_chunk(cfg, obs)
+    assert errors == errors_single == {}
+    assert json.dumps(batched, sort_keys=True, default=str) == json.dumps(single, sort_keys=True, default=str)
+    assert calls == [2, 2, 2]
+    assert all("worth" in dr for p in batched for dr in p["drivers"])

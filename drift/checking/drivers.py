@@ -11,6 +11,7 @@ a late feed's ``data-late`` reason gains what running without it would cost.
 
 from __future__ import annotations
 
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -22,36 +23,99 @@ from drift.checking.context import _Ctx, _list, _num, log
 from drift.checking.designs import _prewhiten
 from drift.config import MAX_LAG_BY_FREQ, period_length
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import build_design, latest_values
+from drift.panel import as_ns, build_design, latest_values
 from drift.verdicts import Action, fmt_num, fmt_p, window_words
 
 
+def _worth_batched(ctxs: list[_Ctx]) -> None:
+    """The chunk's worth evidence (:func:`_worth_fits`) in a few batched engine calls: one rolling fit per
+    shape of the nested models (each without one driver) and one Clark–West test per recent-window length,
+    instead of two per model (the same numbers: each row of a batched call is computed on its own). A batch
+    that fails is split in halves; a model it still fails alone is left to :func:`_drivers_and_worth`, which
+    computes and reports it model by model."""
+    if not ctxs:
+        return
+    try:
+        _worth_fits(ctxs)
+    except Exception:  # noqa: BLE001 - raised again in the model's own stage, and reported there
+        for c in ctxs:
+            for key in ("_worth", "_fe_roll", "_fe_roll_without"):
+                c.charts.pop(key, None)
+        if len(ctxs) > 1:
+            half = len(ctxs) // 2
+            _worth_batched(ctxs[:half])
+            _worth_batched(ctxs[half:])
+
+
+def _worth_fits(ctxs: list[_Ctx]) -> None:
+    """Per model and driver, the one-step forecast errors with and without it, both from rolling fits (the
+    recent-coefficient window), over the recent window, and the Clark–West test of the two. Kept in
+    ``charts['_fe_roll']`` (the model's errors), ``'_fe_roll_without'`` (driver -> errors without it) and
+    ``'_worth'`` (driver -> (statistic, p-value, MAE with, MAE without, n) when 10 or more periods compare).
+
+    Worth keeping: one-step forecasts of the model with and without each driver, both re-estimated on a
+    rolling window. An expanding (recursive) fit would carry the reference period's effect into the recent
+    forecasts: after a driver's effect vanishes the full model keeps forecasting with a stale coefficient
+    and the Clark-West adjustment term (y1 - y2)^2 then reads that stale, harmful difference as a gain.
+    Clark & West (2007) cover the rolling scheme. Only the recent window's errors are computed (all a
+    payload reads); the models of ``ctxs`` with the same shapes share one engine call."""
+    fits: dict[tuple[int, int, int, int], list[tuple[dict[str, np.ndarray], str, np.ndarray, np.ndarray]]] = {}
+    spans: list[int] = []
+    for c in ctxs:
+        d, chk = c.design, c.cfg.check
+        n = d.n
+        window = chk.rolling_window or chk.recent_window
+        start = max(d.n_ref, n - chk.recent_window)  # first period of the recent window
+        spans.append(start)
+        roll_coef = c.charts.get("_roll_coef")
+        if roll_coef is not None and window < n:  # the screening pass already fitted this rolling window
+            fe_full = _one_step_errors(c.y[None], c.X[None], roll_coef[None])[0]
+        else:
+            fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window, start=start)[0]
+        nested: dict[str, np.ndarray] = {}
+        c.charts["_fe_roll"], c.charts["_fe_roll_without"] = fe_full, nested  # reused by _lag_drift
+        kn = d.k - 1
+        for s, j in d.driver_columns.items():
+            nested[s] = np.full(n, np.nan)
+            if n - start < 10 or window < kn + 2 or window >= n:
+                continue  # no worth test reads them (nor a relag, which needs 20 recent periods)
+            fits.setdefault((n, start, kn, window), []).append((nested, s, c.y, np.delete(c.X, j, axis=1)))
+    for (_, start, _, window), group in fits.items():
+        fe = _rolling_forecast_errors(np.stack([y for _, _, y, _ in group]), np.stack([x for _, _, _, x in group]),
+                                      window, start=start)
+        for i, (nested, s, _, _) in enumerate(group):
+            nested[s] = fe[i]
+    # the Clark–West tests, one engine call per recent-window length
+    tests: dict[int, list[tuple[_Ctx, str, np.ndarray, np.ndarray, np.ndarray]]] = {}
+    for c, start in zip(ctxs, spans):
+        c.charts["_worth"] = {}
+        fe_full = c.charts["_fe_roll"][start:]
+        for s, fe_without in c.charts["_fe_roll_without"].items():
+            e1, e2 = fe_without[start:], fe_full  # without the driver (restricted), with it
+            both = np.isfinite(e1) & np.isfinite(e2)
+            if both.sum() >= 10:
+                tests.setdefault(e2.size, []).append((c, s, both, e1, e2))
+    for group in tests.values():
+        y = np.stack([np.where(both, c.y[c.design.n - both.size:], np.nan) for c, _, both, _, _ in group])
+        e1 = np.stack([e1 for _, _, _, e1, _ in group])
+        e2 = np.stack([e2 for _, _, _, _, e2 in group])
+        cw = engine.clark_west(y, y - e1, y - e2)
+        stat, pval = np.atleast_1d(cw.statistic), np.atleast_1d(cw.pvalue)
+        for i, (c, s, both, e1_, e2_) in enumerate(group):
+            c.charts["_worth"][s] = (float(stat[i]), float(pval[i]), float(np.mean(np.abs(e2_[both]))),
+                                     float(np.mean(np.abs(e1_[both]))), int(both.sum()))
+
+
 def _drivers_and_worth(c: _Ctx) -> None:
-    """Per driver: reference vs recent coefficient, Clark–West test of the model with vs without it."""
+    """Per driver: reference vs recent coefficient, Clark–West test of the model with vs without it
+    (:func:`_worth_fits`, computed here unless the chunk's batched pass already did)."""
     d, chk = c.design, c.cfg.check
     ref_coef = c.charts.pop("_ref_coef")
-    n = d.n
-    recent = np.arange(n) >= max(d.n_ref, n - chk.recent_window)
-    # Worth keeping: one-step forecasts of the model with and without each driver, both re-estimated on a
-    # rolling window (the recent-coefficient window). An expanding (recursive) fit would carry the reference
-    # period's effect into the recent forecasts: after a driver's effect vanishes the full model keeps
-    # forecasting with a stale coefficient and the Clark-West adjustment term (y1 - y2)^2 then reads that
-    # stale, harmful difference as a gain. Clark & West (2007) cover the rolling scheme.
-    names = list(d.driver_columns)
     window = chk.rolling_window or chk.recent_window
-    nested_fe: dict[str, np.ndarray] = {}
-    roll_coef = c.charts.pop("_roll_coef", None)
-    if roll_coef is not None and window < n:  # the screening pass already fitted this rolling window
-        fe_full = _one_step_errors(c.y[None], c.X[None], roll_coef[None])[0]
-    else:
-        fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window)[0]
-    if names:
-        Xn = np.stack([np.delete(c.X, d.driver_columns[s], axis=1) for s in names])
-        Yn = np.broadcast_to(c.y, (len(names), n))
-        fe_n = _rolling_forecast_errors(Yn, Xn, window)
-        for i, s in enumerate(names):
-            nested_fe[s] = fe_n[i]
-    c.charts["_fe_roll"], c.charts["_fe_roll_without"] = fe_full, nested_fe  # reused by _lag_drift
+    if "_worth" not in c.charts:
+        _worth_fits([c])
+    c.charts.pop("_roll_coef", None)
+    worth = c.charts.pop("_worth")
     last = {s: f.get("last_period") for s, f in c.charts.get("feeds", {}).items()}
     for dr in c.model.drivers:
         s = dr.series
@@ -76,39 +140,33 @@ def _drivers_and_worth(c: _Ctx) -> None:
         info["next_due"] = feed.get("next_due")
         info["late"] = bool(feed.get("late", False))
         # worth keeping: forecasts y - e over the recent window
-        e1 = np.where(recent, nested_fe[s], np.nan)  # without the driver (restricted)
-        e2 = np.where(recent, fe_full, np.nan)  # with it
-        both = np.isfinite(e1) & np.isfinite(e2)
-        if both.sum() >= 10:
-            y = c.y
-            cw = engine.clark_west(y[both], (y - e1)[both], (y - e2)[both])
-            mae_with = float(np.mean(np.abs(e2[both])))
-            mae_without = float(np.mean(np.abs(e1[both])))
-            info["worth"] = {"test": "clark-west", "statistic": _num(cw.statistic), "pvalue": _num(cw.pvalue),
+        if s in worth:
+            cw_stat, cw_p, mae_with, mae_without, n_both = worth[s]
+            info["worth"] = {"test": "clark-west", "statistic": _num(cw_stat), "pvalue": _num(cw_p),
                              "mae_with": round(mae_with, 4), "mae_without": round(mae_without, 4),
-                             "n": int(both.sum())}
+                             "n": n_both}
             ci = info.get("ci_recent")
             covers_zero = ci is not None and ci[0] is not None and ci[0] <= 0 <= ci[1]
-            helps = _num(cw.pvalue) is not None and cw.pvalue < chk.level
+            helps = _num(cw_p) is not None and cw_p < chk.level
             late_action = next((a for a in c.actions if a.action == "data-late" and a.extra.get("driver") == s),
                                None)
             if late_action is not None and late_action.extra.get("missing_periods", 0) > chk.feed_limit:
                 # a feed gone for long is a data problem, not a verdict on the driver: say what running
                 # without it would cost (the same figures as the driver's worth entry)
                 cost = (f"without it the one-step MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
-                        f"{c.model.unit} over {window_words(int(both.sum()), chk.recent_window)} "
-                        f"(Clark–West p = {fmt_p(cw.pvalue)})")
+                        f"{c.model.unit} over {window_words(n_both, chk.recent_window)} "
+                        f"(Clark–West p = {fmt_p(cw_p)})")
                 late_action.reason += (
                     f" It still helps the forecasts, so restore the feed: {cost}." if helps else
                     f" It no longer helps the forecasts much: {cost}. Restore the feed or run without it.")
                 late_action.extra["without"] = {"mae_with": info["worth"]["mae_with"],
                                                 "mae_without": info["worth"]["mae_without"],
-                                                "n": int(both.sum()), "pvalue": _num(cw.pvalue)}
+                                                "n": n_both, "pvalue": _num(cw_p)}
             # a driver that still helps the forecasts is never proposed for dropping
             if not helps and covers_zero:
                 reason = (f"Driver '{s}' is not earning its place: over "
-                          f"{window_words(int(both.sum()), chk.recent_window)} it no "
-                          f"longer improves the forecasts (Clark–West p = {fmt_p(cw.pvalue)}) and its recent "
+                          f"{window_words(n_both, chk.recent_window)} it no "
+                          f"longer improves the forecasts (Clark–West p = {fmt_p(cw_p)}) and its recent "
                           f"coefficient interval [{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] "
                           f"covers zero; MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
                           f"{c.model.unit} without it.")
@@ -116,18 +174,22 @@ def _drivers_and_worth(c: _Ctx) -> None:
         c.drivers.append(info)
 
 
-def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int) -> np.ndarray:
+def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int, *, start: int = 0) -> np.ndarray:
     """(M, n) one-step errors ``y_t - x_t' b_{t-1}``, ``b_{t-1}`` the OLS fit on rows ``t - window .. t - 1``;
-    NaN where that window cannot be fitted (too short, a missing row, rank deficient)."""
+    NaN where that window cannot be fitted (too short, a missing row, rank deficient). Only the errors of
+    periods ``t >= start`` are computed (the rows before ``start - window`` are not fitted), NaN before."""
     M, n, k = X.shape
     out = np.full((M, n), np.nan)
-    if window < k + 2 or window >= n:
+    if window < k + 2 or window >= n or start >= n:
         return out
+    lo = max(0, start - window)
     try:
-        roll = engine.rolling_coefficients(Y, X, window)
+        roll = engine.rolling_coefficients(Y[:, lo:], X[:, lo:], window)
     except InsufficientDataError:
         return out
-    return _one_step_errors(Y, X, np.asarray(roll.coef).reshape(M, n, k))
+    fe = _one_step_errors(Y[:, lo:], X[:, lo:], np.asarray(roll.coef).reshape(M, n - lo, k))
+    out[:, lo + max(0, start - lo):] = fe[:, max(0, start - lo):]
+    return out
 
 
 def _one_step_errors(Y: np.ndarray, X: np.ndarray, coef: np.ndarray) -> np.ndarray:
@@ -174,17 +236,15 @@ def _lag_series(c: _Ctx) -> tuple[int, int, list[tuple[Any, np.ndarray, np.ndarr
     if recent_n < max(20, max_lag + 10):
         skipped.update({s: f"{recent_n} periods monitored, {max(20, max_lag + 10)} needed" for s in lagged})
         return out
-    obs = c.obs
-    for dr in m.drivers:
+    wanted = [dr for dr in m.drivers if dr.form == "lagged" and dr.series in d.driver_columns]
+    # the drivers' own values by period (latest vintage), on the target's period grid
+    latest = _latest_by_series(c.obs, [dr.series for dr in wanted if dr.series not in c.late], d.periods)
+    for dr in wanted:
         s = dr.series
-        if dr.form != "lagged" or s not in d.driver_columns:
-            continue
         if s in c.late:
             skipped[s] = "its feed is late"
             continue
-        vint = obs[obs["series"] == s]
-        # the driver's own values by period (latest vintage), on the target's period grid
-        xv = latest_values(vint, d.periods)
+        xv = latest[s]
         if np.isfinite(xv[ref]).sum() <= det.shape[1] + 5:
             skipped[s] = "too few reference values"
             continue
@@ -192,6 +252,48 @@ def _lag_series(c: _Ctx) -> tuple[int, int, list[tuple[Any, np.ndarray, np.ndarr
         j = d.driver_columns[s]
         items.append((dr, d.y - fitted + d.X[:, j] * b_ref[j], rx))
     return out
+
+
+def _latest_by_series(obs: pd.DataFrame, series: list[str], periods: pd.DatetimeIndex) -> dict[str, np.ndarray]:
+    """``latest_values(obs[obs["series"] == s], periods)`` for each series ``s`` (:func:`drift.panel.latest_values`:
+    the latest known vintage of each period, the one with the latest ``available_at``, the later row on a
+    tie), from the frame's columns read once as arrays instead of one filtered frame per series."""
+    if not series:
+        return {}
+    if obs.empty or len(periods) == 0:
+        return {s: latest_values(obs.iloc[0:0], periods) for s in series}
+    names = obs["series"].to_numpy()
+    vp = _ns(obs["period"])
+    at = _ns(obs["available_at"])
+    val = obs["value"].to_numpy(dtype=float)
+    rp = _ns(periods)
+    out: dict[str, np.ndarray] = {}
+    for s in series:
+        rows = np.flatnonzero(names == s)
+        x = np.full(len(periods), np.nan)
+        out[s] = x
+        if rows.size == 0:
+            continue
+        vp_s, at_s = vp[rows], at[rows]
+        order = np.lexsort((rows, at_s, vp_s))  # by period, then time, then row order
+        p_sorted = vp_s[order]
+        last = np.r_[p_sorted[1:] != p_sorted[:-1], True]  # last row of each period
+        per = p_sorted[last]
+        v = val[rows][order][last]
+        k = np.searchsorted(per, rp)
+        hit = (k < per.size) & (per[np.minimum(k, per.size - 1)] == rp)
+        x[hit] = v[k[hit]]
+    return out
+
+
+def _ns(values: Any) -> np.ndarray:
+    """Datetime-likes as int64 nanoseconds, UTC for aware ones, NaT as the smallest int64
+    (:func:`drift.panel.as_ns`), without building an index when the values are already datetime64."""
+    arr = getattr(values, "array", values)
+    if isinstance(arr, pd.arrays.DatetimeArray) or isinstance(values, pd.DatetimeIndex):
+        a = pd.DatetimeIndex(values).as_unit("ns") if isinstance(values, pd.DatetimeIndex) else arr.as_unit("ns")
+        return np.asarray(a.asi8)  # aware values: asi8 counts from the UTC epoch
+    return as_ns(values)
 
 
 def _lag_profiles_batched(ctxs: list[_Ctx]) -> None:
@@ -274,7 +376,7 @@ def _lag_drift(c: _Ctx) -> None:
                        "band_recent": _num(lp_rec.band), "current_lag": cur}
         new = int(lp_rec.peak_lag)
         # the peak must clear a band corrected for scanning max_lag + 1 lags (Bonferroni)
-        z = stats.norm.ppf(1 - chk.level / (2 * (max_lag + 1))) / np.sqrt(float(lp_rec.nobs))
+        z = _norm_ppf(1 - chk.level / (2 * (max_lag + 1))) / np.sqrt(float(lp_rec.nobs))
         r_new = float(np.asarray(lp_rec.ccf)[new])
         if new == cur or abs(r_new) <= z or new < _min_lag(c, dr):
             continue
@@ -289,7 +391,7 @@ def _lag_drift(c: _Ctx) -> None:
         # fit found little) would look better once the effect at the current lag has gone.
         y_alt, X_alt, _, _ = _prewhiten(m, alt)
         window = chk.rolling_window or chk.recent_window
-        e_new = _rolling_forecast_errors(y_alt[None], X_alt[None], window)[0][d.n - recent_n:]
+        e_new = _rolling_forecast_errors(y_alt[None], X_alt[None], window, start=d.n - recent_n)[0][d.n - recent_n:]
         e_cur = c.charts["_fe_roll"][d.n - recent_n:]
         e_without = c.charts["_fe_roll_without"][s][d.n - recent_n:]
         both = np.isfinite(e_new) & np.isfinite(e_cur) & np.isfinite(e_without)
@@ -320,6 +422,12 @@ def _lag_drift(c: _Ctx) -> None:
                 + (f" At lag {cur} it no longer helps, but at lag {new} it does: keep it." if dropped else ""))))
     if profiles:
         c.charts["lag_profile"] = profiles
+
+
+@lru_cache(maxsize=64)
+def _norm_ppf(q: float) -> float:
+    """The standard normal quantile ``q`` (the same level and lag count recur in every model)."""
+    return stats.norm.ppf(q)  # type: ignore[no-any-return]
 
 
 def _min_lag(c: _Ctx, dr: Any) -> int:

@@ -34,6 +34,8 @@ from drift.typing import FloatArray
 Loss = Literal["squared", "absolute"]
 Alternative = Literal["two-sided", "less", "greater"]
 LEVELS = (0.10, 0.05, 0.01)
+#: one-sided standard normal critical values of the Clark-West test, by level
+_CW_CRITICAL = {lvl: float(stats.norm.ppf(1.0 - lvl)) for lvl in LEVELS}
 
 
 def _batch(*arrays: Any) -> tuple[list[FloatArray], bool]:
@@ -211,7 +213,7 @@ def clark_west(y: Any, f_restricted: Any, f_unrestricted: Any, *, h: int = 1) ->
         mspe2 = np.nanmean(np.where(ok, e2 * e2, np.nan), axis=1)
     return TestResult(
         statistic=_squeeze(cw, squeeze), pvalue=_squeeze(pval, squeeze),
-        critical_values={lvl: float(stats.norm.ppf(1.0 - lvl)) for lvl in LEVELS},
+        critical_values=dict(_CW_CRITICAL),
         nobs=_squeeze(n.astype(np.int64), squeeze),
         null="the driver adds nothing: equal population MSPE of the nested and the larger model",
         alternative="the model with the driver has the smaller MSPE (one-sided)",
