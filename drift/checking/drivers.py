@@ -23,7 +23,7 @@ from drift.checking.context import _Ctx, _list, _num, log
 from drift.checking.designs import _prewhiten
 from drift.config import MAX_LAG_BY_FREQ, period_length
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import as_ns, build_design, latest_values
+from drift.panel import as_ns, build_design
 from drift.verdicts import Action, fmt_num, fmt_p, window_words
 
 
@@ -205,95 +205,203 @@ def _lag_series(c: _Ctx) -> tuple[int, int, list[tuple[Any, np.ndarray, np.ndarr
     item ``(driver, ry, rx)`` per lagged driver, the target's partial residual ``ry`` (deterministic terms
     and the other drivers' reference effects removed) and the driver ``rx`` less its deterministic part,
     both estimated on the reference period only (no look-ahead). Why a driver has none is recorded in
-    ``charts['lag_profile_skipped']``. Kept in ``charts['_lag_series']`` so it is built once per check."""
-    if "_lag_series" in c.charts:
-        return c.charts["_lag_series"]
+    ``charts['lag_profile_skipped']``. Kept in ``charts['_lag_series']`` so it is built once per check (for
+    the whole chunk by :func:`_lag_profiles_batched`, :func:`_lag_series_chunk`)."""
+    if "_lag_series" not in c.charts:
+        _lag_series_chunk([c])
+    return c.charts["_lag_series"]  # type: ignore[no-any-return]
+
+
+def _lag_series_chunk(ctxs: list[_Ctx]) -> None:
+    """:func:`_lag_series` of several models: their reference fits and their drivers' deterministic parts in
+    a few batched least-squares calls, their drivers' latest values read in one pass over the models'
+    observations. With several models, one whose inputs fail is left without (its own stage builds them
+    again and reports the failure); a single model's failure is raised."""
+    alone = len(ctxs) == 1
+    started: list[tuple[_Ctx, np.ndarray]] = []
+    for c in ctxs:
+        try:
+            okx = _lag_start(c)
+        except Exception:  # raised again in the model's own stage, and reported there
+            if alone:
+                raise
+            c.charts.pop("_lag_series", None)
+            continue
+        if okx is not None:
+            started.append((c, okx))
+    if not started:
+        return
+    try:
+        _lag_fill(started)
+    except Exception:  # each model on its own below: a model that fails fails alone
+        if alone:
+            raise
+        for c, okx in started:
+            try:
+                _lag_fill([(c, okx)])
+            except Exception:  # noqa: BLE001 - raised again in the model's own stage, and reported there
+                c.charts.pop("_lag_series", None)
+
+
+def _lag_start(c: _Ctx) -> np.ndarray | None:
+    """The checks of :func:`_lag_series` before any fit: ``None`` when no driver gets a profile (the reason in
+    ``charts['lag_profile_skipped']``), else the usable reference rows of the model's reference fit."""
     d, chk, m = c.design, c.cfg.check, c.model
     max_lag = chk.max_lag or MAX_LAG_BY_FREQ[m.frequency]
     ref = slice(0, d.n_ref)
-    det = d.X[:, d.deterministic]
     ok = np.isfinite(d.y[ref])
     skipped: dict[str, str] = {}
     c.charts["lag_profile_skipped"] = skipped  # why a driver has no profile (said beside the chart)
     items: list[tuple[Any, np.ndarray, np.ndarray]] = []
-    c.charts["_lag_series"] = out = (max_lag, 0, items)
+    c.charts["_lag_series"] = (max_lag, 0, items)
     lagged = [dr.series for dr in m.drivers if dr.form == "lagged" and dr.series in d.driver_columns]
-    if ok.sum() <= det.shape[1] + max_lag + 5:
+    if ok.sum() <= len(d.deterministic) + max_lag + 5:
         skipped.update({s: f"too few reference periods for {max_lag} lags" for s in lagged})
-        return out
-    # deterministic part estimated on the reference period only (no look-ahead into the monitoring span)
-    def _resid(v: np.ndarray) -> np.ndarray:
-        good = np.isfinite(v[ref])
-        b, *_ = np.linalg.lstsq(det[ref][good], v[ref][good], rcond=None)
-        return v - det @ b
-
-    # partial residual of the target: remove deterministic terms and the *other* drivers' reference effects
+        return None
     okx = np.isfinite(d.y[ref]) & np.isfinite(d.X[ref]).all(axis=1)
-    b_ref, *_ = np.linalg.lstsq(d.X[ref][okx], d.y[ref][okx], rcond=None)
-    fitted = d.X @ b_ref
     recent_n = min(chk.recent_window, d.n - d.n_ref)
-    c.charts["_lag_series"] = out = (max_lag, recent_n, items)
+    c.charts["_lag_series"] = (max_lag, recent_n, items)
     if recent_n < max(20, max_lag + 10):
         skipped.update({s: f"{recent_n} periods monitored, {max(20, max_lag + 10)} needed" for s in lagged})
+        return None
+    return okx
+
+
+def _lag_fill(started: list[tuple[_Ctx, np.ndarray]]) -> None:
+    """The items of :func:`_lag_series` of models past :func:`_lag_start` (``(context, usable reference
+    rows)``); every figure is computed before any model's charts are written, so a failure leaves none."""
+    # partial residual of the target: remove deterministic terms and the *other* drivers' reference effects
+    b_ref = _ols_by_shape([(c.design.X[: c.design.n_ref], c.design.y[: c.design.n_ref], okx) for c, okx in started])
+    latest = _latest_by_series([c.obs for c, _ in started],
+                               [[dr.series for dr in c.model.drivers if dr.form == "lagged"
+                                 and dr.series in c.design.driver_columns and dr.series not in c.late]
+                                for c, _ in started],
+                               [c.design.periods for c, _ in started])
+    skips: list[dict[str, str]] = []
+    todo: list[tuple[int, Any, np.ndarray]] = []  # (model, driver, its values)
+    dets: list[np.ndarray] = []  # each model's deterministic columns
+    for i, (c, _) in enumerate(started):
+        d = c.design
+        skips.append({})
+        dets.append(d.X[:, : len(d.deterministic)] if d.deterministic == list(range(len(d.deterministic)))
+                    else d.X[:, d.deterministic])
+        for dr in c.model.drivers:
+            s = dr.series
+            if dr.form != "lagged" or s not in d.driver_columns:
+                continue
+            if s in c.late:
+                skips[i][s] = "its feed is late"
+                continue
+            xv = latest[i][s]
+            if np.isfinite(xv[: d.n_ref]).sum() <= len(d.deterministic) + 5:
+                skips[i][s] = "too few reference values"
+                continue
+            todo.append((i, dr, xv))
+    # deterministic part estimated on the reference period only (no look-ahead into the monitoring span)
+    n_ref = [c.design.n_ref for c, _ in started]
+    b_det = _ols_by_shape([(dets[i][: n_ref[i]], xv[: n_ref[i]], np.isfinite(xv[: n_ref[i]])) for i, _, xv in todo])
+    items: list[list[tuple[Any, np.ndarray, np.ndarray]]] = [[] for _ in started]
+    for (i, dr, xv), b in zip(todo, b_det):
+        d = started[i][0].design
+        j = d.driver_columns[dr.series]
+        fitted = d.X @ b_ref[i]
+        items[i].append((dr, d.y - fitted + d.X[:, j] * b_ref[i][j], xv - dets[i] @ b))
+    for (c, _), skip, its in zip(started, skips, items):
+        c.charts["lag_profile_skipped"].update(skip)
+        c.charts["_lag_series"][2].extend(its)
+
+
+def _ols_by_shape(problems: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> list[np.ndarray]:
+    """The least-squares coefficients of each problem ``(A, b, rows)``: ``b[rows]`` on ``A[rows]``, batched
+    over the problems of the same shape (:func:`_ols`)."""
+    out: list[np.ndarray] = [np.zeros(0)] * len(problems)
+    shapes: dict[tuple[int, ...], list[int]] = {}
+    for i, (A, _, _) in enumerate(problems):
+        shapes.setdefault(A.shape, []).append(i)
+    for idx in shapes.values():
+        coef = _ols(np.stack([problems[i][0] for i in idx]), np.stack([problems[i][1] for i in idx]),
+                    np.stack([problems[i][2] for i in idx]))
+        for r, i in enumerate(idx):
+            out[i] = coef[r]
+    return out
+
+
+def _ols(A: np.ndarray, b: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """(M, k) ``np.linalg.lstsq(A[m][rows[m]], b[m][rows[m]])[0]`` for each model ``m`` of (M, n, k) ``A``, (M, n)
+    ``b`` and ``rows``: one batched QR factorisation of the usable rows (the others zeroed: they add nothing
+    to the fit). A model whose columns are close to collinear on its rows (a column's part orthogonal to
+    the ones before it below 1e-6 of its size: there the two solutions could differ beyond rounding), or
+    whose fit is not finite, is solved by ``np.linalg.lstsq`` itself (its minimum-norm solution)."""
+    M, _, k = A.shape
+    Az = np.where(rows[:, :, None], A, 0.0)
+    bz = np.where(rows, b, 0.0)
+    coef = np.full((M, k), np.nan)
+    with np.errstate(all="ignore"):
+        try:
+            Q, R = np.linalg.qr(Az)
+            size = np.sqrt(np.einsum("mtk,mtk->mk", Az, Az))
+            good = ((np.abs(np.diagonal(R, axis1=1, axis2=2)) > 1e-6 * size).all(axis=1)
+                    & (rows.sum(axis=1) >= k))
+            if good.any():
+                qb = Q[good].transpose(0, 2, 1) @ bz[good][:, :, None]
+                coef[good] = np.linalg.solve(R[good], qb)[:, :, 0]
+        except np.linalg.LinAlgError:
+            pass
+    for i in np.flatnonzero(~np.isfinite(coef).all(axis=1)):
+        coef[i] = np.linalg.lstsq(A[i][rows[i]], b[i][rows[i]], rcond=None)[0]
+    return coef
+
+
+def _latest_by_series(frames: list[pd.DataFrame], series: list[list[str]],
+                      periods: list[pd.DatetimeIndex]) -> list[dict[str, np.ndarray]]:
+    """For each frame ``obs`` of observations, its series and its period grid: ``latest_values(obs[obs["series"]
+    == s], periods)`` for each of its series ``s`` (:func:`drift.panel.latest_values`: the latest known vintage
+    of each period, the one with the latest ``available_at``, the later row on a tie), all the frames sorted
+    in one pass instead of one filtered frame per series."""
+    out = [{s: np.full(len(grid), np.nan) for s in names} for names, grid in zip(series, periods)]
+    obs = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+    if obs.empty:
         return out
-    wanted = [dr for dr in m.drivers if dr.form == "lagged" and dr.series in d.driver_columns]
-    # the drivers' own values by period (latest vintage), on the target's period grid
-    latest = _latest_by_series(c.obs, [dr.series for dr in wanted if dr.series not in c.late], d.periods)
-    for dr in wanted:
-        s = dr.series
-        if s in c.late:
-            skipped[s] = "its feed is late"
-            continue
-        xv = latest[s]
-        if np.isfinite(xv[ref]).sum() <= det.shape[1] + 5:
-            skipped[s] = "too few reference values"
-            continue
-        rx = _resid(xv)
-        j = d.driver_columns[s]
-        items.append((dr, d.y - fitted + d.X[:, j] * b_ref[j], rx))
-    return out
-
-
-def _latest_by_series(obs: pd.DataFrame, series: list[str], periods: pd.DatetimeIndex) -> dict[str, np.ndarray]:
-    """``latest_values(obs[obs["series"] == s], periods)`` for each series ``s`` (:func:`drift.panel.latest_values`:
-    the latest known vintage of each period, the one with the latest ``available_at``, the later row on a
-    tie), from the frame's columns read once as arrays instead of one filtered frame per series."""
-    if not series:
-        return {}
-    if obs.empty or len(periods) == 0:
-        return {s: latest_values(obs.iloc[0:0], periods) for s in series}
-    names = obs["series"].to_numpy()
-    vp = _ns(obs["period"])
-    at = _ns(obs["available_at"])
+    frame = np.repeat(np.arange(len(frames)), [len(f) for f in frames])
+    codes, uniques = pd.factorize(obs["series"])
+    code = {str(u): i for i, u in enumerate(uniques)}
+    group = frame * (len(code) + 1) + (codes + 1)  # (frame, series) as one sortable number
+    vp = as_ns(obs["period"])
+    at = as_ns(obs["available_at"])
     val = obs["value"].to_numpy(dtype=float)
-    rp = _ns(periods)
-    out: dict[str, np.ndarray] = {}
-    for s in series:
-        rows = np.flatnonzero(names == s)
-        x = np.full(len(periods), np.nan)
-        out[s] = x
-        if rows.size == 0:
-            continue
-        vp_s, at_s = vp[rows], at[rows]
-        order = np.lexsort((rows, at_s, vp_s))  # by period, then time, then row order
-        p_sorted = vp_s[order]
-        last = np.r_[p_sorted[1:] != p_sorted[:-1], True]  # last row of each period
-        per = p_sorted[last]
-        v = val[rows][order][last]
-        k = np.searchsorted(per, rp)
-        hit = (k < per.size) & (per[np.minimum(k, per.size - 1)] == rp)
-        x[hit] = v[k[hit]]
+    order = np.lexsort((np.arange(len(obs)), at, vp, group))  # by frame and series, period, time, row order
+    g_s, p_s = group[order], vp[order]
+    last = np.r_[(g_s[1:] != g_s[:-1]) | (p_s[1:] != p_s[:-1]), True]  # last row of each (series, period)
+    g_last, p_last, v_last = g_s[last], p_s[last], val[order][last]
+    # every wanted (frame, series, period) looked up at once: a period as its rank among the stored ones,
+    # so that (series group, period rank) is one sorted number
+    known = np.unique(p_last)
+    key_last = g_last * known.size + np.searchsorted(known, p_last)
+    sizes = [len(grid) for grid in periods]
+    # the grids as drift.panel.as_ns gives them (UTC for aware ones), converted at once
+    grids = as_ns(np.concatenate([(grid if isinstance(grid, pd.DatetimeIndex) else pd.DatetimeIndex(grid)).values
+                                  for grid in periods]))
+    ends = np.cumsum(sizes)
+    want_g: list[np.ndarray] = []
+    want_p: list[np.ndarray] = []
+    for i, names in enumerate(series):
+        rp = grids[ends[i] - sizes[i]:ends[i]]
+        for s in names:
+            want_g.append(np.full(rp.size, i * (len(code) + 1) + code[s] + 1 if s in code else -1))
+            want_p.append(rp)
+    if not want_g:
+        return out
+    wg, wp = np.concatenate(want_g), np.concatenate(want_p)
+    r = np.minimum(np.searchsorted(known, wp), known.size - 1)
+    key = wg * known.size + r
+    k = np.minimum(np.searchsorted(key_last, key), key_last.size - 1)
+    found = np.where((wg >= 0) & (known[r] == wp) & (key_last[k] == key), v_last[k], np.nan)
+    pos = 0
+    for got in out:
+        for s, x in got.items():
+            x[:] = found[pos:pos + x.size]
+            pos += x.size
     return out
-
-
-def _ns(values: Any) -> np.ndarray:
-    """Datetime-likes as int64 nanoseconds, UTC for aware ones, NaT as the smallest int64
-    (:func:`drift.panel.as_ns`), without building an index when the values are already datetime64."""
-    arr = getattr(values, "array", values)
-    if isinstance(arr, pd.arrays.DatetimeArray) or isinstance(values, pd.DatetimeIndex):
-        a = pd.DatetimeIndex(values).as_unit("ns") if isinstance(values, pd.DatetimeIndex) else arr.as_unit("ns")
-        return np.asarray(a.asi8)  # aware values: asi8 counts from the UTC epoch
-    return as_ns(values)
 
 
 def _lag_profiles_batched(ctxs: list[_Ctx]) -> None:
@@ -303,12 +411,11 @@ def _lag_profiles_batched(ctxs: list[_Ctx]) -> None:
     refuses (one series too short or constant), is left to :func:`_lag_drift`, which computes and reports
     it model by model."""
     jobs: dict[tuple[int, int, int], list[tuple[_Ctx, str, np.ndarray, np.ndarray]]] = {}
+    _lag_series_chunk([c for c in ctxs if "_lag_series" not in c.charts])
     for c in ctxs:
-        try:
-            max_lag, recent_n, items = _lag_series(c)
-        except Exception:  # noqa: BLE001 - raised again in the model's own stage, and reported there
-            c.charts.pop("_lag_series", None)
+        if "_lag_series" not in c.charts:  # its inputs failed: its own stage computes and reports it
             continue
+        max_lag, recent_n, items = c.charts["_lag_series"]
         c.charts["_lag_profiles"] = {}
         d = c.design
         for dr, ry, rx in items:

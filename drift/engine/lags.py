@@ -106,17 +106,21 @@ def _fit_ar_aic(x: FloatArray, max_ar: int) -> tuple[FloatArray, IntArray]:
     best_aic = np.full(M, np.inf)
     best = np.zeros((M, max_ar))
     order = np.zeros(M, dtype=np.int64)
+    yy = np.einsum("mt,mt->m", yv, yv)
+    # the cross-products of every order at once (order p uses the leading p x p block): matrix products
+    Zt = Z.transpose(0, 2, 1)
+    G = Zt @ Z
+    cz = (Zt @ yv[:, :, None])[:, :, 0]
     for p in range(max_ar + 1):
         if p == 0:
             coef = np.zeros((M, 0))
-            rss = np.einsum("mt,mt->m", yv, yv)
+            rss = yy
         else:
             Zp = Z[:, :, :p]
-            A = np.einsum("mti,mtj->mij", Zp, Zp) + np.eye(p) * 1e-12 * np.einsum("mt,mt->m", yv, yv)[:, None, None]
-            c = np.einsum("mti,mt->mi", Zp, yv)
+            A = G[:, :p, :p] + np.eye(p) * 1e-12 * yy[:, None, None]
             # pseudo-inverse: a constant (or all-zero) series gives A = 0 and coefficients 0, not an error
-            coef = np.einsum("mij,mj->mi", np.linalg.pinv(A, hermitian=True), c)
-            r = yv - np.einsum("mti,mi->mt", Zp, coef)
+            coef = (np.linalg.pinv(A, hermitian=True) @ cz[:, :p, None])[:, :, 0]
+            r = yv - (Zp @ coef[:, :, None])[:, :, 0]
             rss = np.einsum("mt,mt->m", r, r)
         with np.errstate(divide="ignore"):
             aic = n * np.log(np.maximum(rss, 1e-300) / np.maximum(n, 1)) + 2.0 * p
