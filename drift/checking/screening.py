@@ -40,7 +40,10 @@ def _screen(group: list[_Ctx]) -> None:
         o = Y.shape[1] - c.design.n
         Y[i, o:], Xs[i, o:], off[i] = c.y, c.X, o
     m = np.array([c.design.n_ref for c in group]) + off
-    rf = engine.recursive_fit(Y, Xs, coef_se=False)  # the check reads coefficients, not their errors
+    # the check reads coefficients, not their errors; and only those at the end of each model's reference
+    # period, unless an h-step replay needs a model's whole coefficient path
+    whole_path = any(c.model.horizon > 1 for c in group)
+    rf = engine.recursive_fit(Y, Xs, coef_se=False, coef_at=None if whole_path else m - 1)
     # The monitor family (engine.family_levels): on the recursive residuals the CUSUM monitor (small
     # persistent changes), the abrupt-shift monitor (Page CUSUM with a reference value) and the variance
     # monitor; per driver slot its effect monitor (the driver's score process, also when the change
@@ -125,7 +128,9 @@ def _screen(group: list[_Ctx]) -> None:
     window = chk.rolling_window or chk.recent_window
     roll = None
     if window >= ds[0].k + 2 and window <= Y.shape[1]:
-        roll = engine.rolling_coefficients(Y, Xs, window)
+        # standard errors only for the drivers' columns: the coefficient charts draw those intervals alone
+        drawn = sorted({j for c in group for j in c.design.driver_columns.values()})
+        roll = engine.rolling_coefficients(Y, Xs, window, se_columns=drawn)
     _per_model(group, Y, off, m, rf, specs, mons, warns, levels, trigg, cus, cusq, enough, retro_dates,
                roll, window)
 
@@ -158,12 +163,13 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
     mon_vals = [None if r is None or rw is None else (
         _ints(r.alarm_index), _ints(r.horizon_end), _floats(r.statistic), _floats(r.pvalue),
         _ints(rw.alarm_index), _floats(rw.statistic)) for r, rw in zip(mons, warns)]
-    trigg_last = trigg_sig = trigg_first = None
+    trigg_last: list[int] = []
+    trigg_first: list[int] = []
+    trigg_sig = np.empty((0, 0))
     if trigg is not None:
-        sig = np.atleast_2d(trigg.signal)
-        fin = np.isfinite(sig)
+        trigg_sig = np.atleast_2d(trigg.signal)
+        fin = np.isfinite(trigg_sig)  # the last finite value of each row: the signal as of the check
         trigg_last = np.where(fin.any(axis=1), T - 1 - np.argmax(fin[:, ::-1], axis=1), -1).tolist()
-        trigg_sig = sig
         trigg_first = _ints(trigg.first_signal)
     retro = None
     if cus is not None and cusq is not None:
@@ -226,8 +232,8 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
                                  **({"beyond_horizon": True} if wi >= h_end else {})})
         _monitor_chart(c, i, o, specs, mons, levels, vals=mon_vals, dates=per)
         if trigg is not None:
-            last = trigg_last[i]  # type: ignore[index]
-            fs = trigg_first[i] - o  # type: ignore[index]
+            last = trigg_last[i]
+            fs = trigg_first[i] - o
             if last >= o:
                 c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(trigg_sig[i, last]), 4)),
                                 "pvalue": None, "threshold": _num(trigg.limit), "level": 0.01,

@@ -117,7 +117,8 @@ def _triu_inverse(R: FloatArray) -> FloatArray:
     return Ri
 
 
-def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10, coef_se: bool = True) -> RecursiveFit:
+def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10, coef_se: bool = True,
+                  coef_at: object = None) -> RecursiveFit:
     r"""Recursive least squares with recursive residuals, batched over models.
 
     Parameters
@@ -134,6 +135,12 @@ def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10, coef_se: boo
         Compute the recursive coefficients' standard errors. With False, ``coef_se`` is all NaN and no
         triangular inverse is formed at any step: the coefficients come from one back substitution per
         step (cheaper; the same numbers to rounding).
+    coef_at : int or array_like (M,) of int, optional
+        Only the coefficients (and their standard errors) of the fit up to row ``coef_at[i]`` of each
+        model are wanted, e.g. the end of its reference period: ``coef`` and ``coef_se`` are NaN at every
+        other row, and the coefficients are solved for only at those steps (the residuals, forecast
+        errors, ``rss`` and ``nobs`` are unchanged; the coefficients given are the same numbers as
+        without it). Default: every row.
 
     Returns
     -------
@@ -143,7 +150,7 @@ def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10, coef_se: boo
     Raises
     ------
     ValueError
-        Bad shapes, infinite values, or ``rank_tol`` not in (0, 1).
+        Bad shapes, infinite values, ``rank_tol`` not in (0, 1), or ``coef_at`` not (M,) integers.
 
     Notes
     -----
@@ -174,7 +181,7 @@ def recursive_fit(y: object, X: object, *, rank_tol: float = 1e-10, coef_se: boo
     relationships over time. Journal of the Royal Statistical Society B 37(2), 149-192.
     Golub, G. H. & Van Loan, C. F. (2013). Matrix Computations, 4th ed., section 6.5 (updating QR).
     """
-    return _recursion(y, X, rank_tol, "se" if coef_se else "coef")  # type: ignore[return-value]
+    return _recursion(y, X, rank_tol, "se" if coef_se else "coef", coef_at)  # type: ignore[return-value]
 
 
 def _back_substitute(R: FloatArray, z: FloatArray) -> FloatArray:
@@ -189,15 +196,23 @@ def _back_substitute(R: FloatArray, z: FloatArray) -> FloatArray:
     return b
 
 
-def _recursion(y: object, X: object, rank_tol: float, want: str) -> RecursiveFit | FloatArray:
+def _recursion(y: object, X: object, rank_tol: float, want: str, coef_at: object = None) -> RecursiveFit | FloatArray:
     """The Givens recursion of :func:`recursive_fit`; ``want`` = ``"se"`` (everything), ``"coef"`` (no
-    standard errors, no inverse) or ``"resid"`` (the standardised recursive residuals only)."""
+    standard errors, no inverse) or ``"resid"`` (the standardised recursive residuals only); ``coef_at``
+    the one row per model whose coefficients are wanted (None: every row)."""
     if not isinstance(rank_tol, (int, float)) or not (0.0 < float(rank_tol) < 1.0):
         raise ValueError(f"rank_tol must be a float in (0, 1); got {rank_tol!r}")
     ya, Xa, batched = as_batch(y, X)
     M, n, k = Xa.shape
     tol = float(rank_tol)
     path = want != "resid"
+    at: IntArray | None = None
+    if coef_at is not None:
+        at_raw = np.asarray(coef_at)
+        if at_raw.dtype.kind not in "iu" or at_raw.ndim > 1 or (at_raw.ndim == 1 and at_raw.shape != (M,)):
+            raise ValueError(f"coef_at must be an int or ({M},) integers; got {coef_at!r}")
+        at = np.broadcast_to(at_raw.astype(np.int64), (M,))
+        solve_steps = set(at[(at >= 0) & (at < n)].tolist())
 
     # Time-major, model-last working layout: every per-step operation touches contiguous length-M
     # blocks. Augmented rows [x_t, y_t]; skipped rows become zero rows, which rotations leave as no-ops.
@@ -220,7 +235,7 @@ def _recursion(y: object, X: object, rank_tol: float, want: str) -> RecursiveFit
     if path:
         ferr_t = np.full((n, M), np.nan)
         scale_t = np.full((n, M), np.nan)
-        coef_t = np.empty((n, k, M))
+        coef_t = np.empty((n, k, M)) if at is None else np.full((n, k, M), np.nan)
         se_t = np.full((n, k, M), np.nan)
         rss_t = np.empty((n, M))
         nobs_t = np.empty((n, M), dtype=np.int64)
@@ -315,6 +330,9 @@ def _recursion(y: object, X: object, rank_tol: float, want: str) -> RecursiveFit
         if not path:
             continue
         nobs_t[t] = count
+        rss_t[t] = rss_acc if all_full else np.where(full, rss_acc, np.nan)
+        if at is not None and t not in solve_steps:
+            continue
         R = Raug[:, :k] if all_full else np.where(full, Raug[:, :k], eye_safe)  # placeholder where not full
         if want == "se":
             Ri = _triu_inverse(R)
@@ -323,15 +341,19 @@ def _recursion(y: object, X: object, rank_tol: float, want: str) -> RecursiveFit
             with np.errstate(invalid="ignore", divide="ignore"):
                 sd = np.sqrt(np.where(dof > 0, rss_acc / np.maximum(dof, 1), np.nan))
             se = sd * np.sqrt(np.einsum("ijm,ijm->im", Ri, Ri))
-            se_t[t] = se if all_full else np.where(full, se, np.nan)
+            se = se if all_full else np.where(full, se, np.nan)
         else:
             b = _back_substitute(R, Raug[:, k])
-        if all_full:
+        b = b if all_full else np.where(full, b, np.nan)
+        if at is None:
             coef_t[t] = b
-            rss_t[t] = rss_acc
+            if want == "se":
+                se_t[t] = se
         else:
-            coef_t[t] = np.where(full, b, np.nan)
-            rss_t[t] = np.where(full, rss_acc, np.nan)
+            here = at == t
+            coef_t[t][:, here] = b[:, here]
+            if want == "se":
+                se_t[t][:, here] = se[:, here]
 
     if not path:
         resid = np.ascontiguousarray(resid_t.T)

@@ -9,6 +9,7 @@ suffers far less cancellation than raw ``y'y - b'X'y``.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -37,7 +38,8 @@ class RollingFit:
         ``window - 1`` positions, for windows containing a NaN row, and for rank-deficient windows.
     se : ndarray (M, n, k)
         Conventional OLS standard errors ``s * sqrt(diag((X'X)^{-1}))``, ``s^2 = RSS / (window - k)``;
-        NaN where ``coef`` is, and everywhere when ``window == k``.
+        NaN where ``coef`` is, everywhere when ``window == k``, and in the columns not asked for
+        (``se_columns``).
     nobs : ndarray (M, n) of int
         Usable rows in the window ending at ``t`` (0 for the first ``window - 1`` positions).
     window : int
@@ -73,21 +75,21 @@ class _Work:
         self.prod = np.empty((npair + k + 1, chunk, n + 1))
         self.flat = np.empty((npair + k + 1, chunk, ends))
         self.L = np.empty((k, k, chunk, ends))
-        self.Li = np.empty((k, k, chunk, ends))
         self.g = np.empty((k, chunk, ends))
         self.beta = np.empty((k, chunk, ends))
+        self.w = np.empty((k, chunk, ends))
         self.t = np.empty((3, chunk, ends))
-        self.rows = np.empty((k, chunk, ends))
         self.good = np.empty((chunk, ends), dtype=bool)
         self.okb = np.empty((chunk, ends), dtype=bool)
 
 
-def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: FloatArray, work: _Work) -> IntArray:
-    """Fit one chunk of models; writes into ``coef`` and ``se`` laid out (k, M_chunk, n), already NaN.
+def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: FloatArray, work: _Work,
+           se_cols: list[int]) -> IntArray:
+    """Fit one chunk of models; writes into ``coef`` and ``se`` laid out (k, M_chunk, n), already NaN
+    (``se`` only in the rows ``se_cols``).
 
-    Every vector below is a (model, window end) plane; the operations and their order are those of the
-    scalar formulas (Cholesky, triangular inverse, solves), each applied to all planes at once in the
-    work buffers."""
+    Every vector below is a (model, window end) plane; the scalar formulas (Cholesky, forward and back
+    substitution) are applied to all planes at once, in the work buffers."""
     M, n, k = X.shape
     valid = np.isfinite(y) & np.isfinite(X).all(axis=2)
     Xz = np.where(valid[:, :, None], X, 0.0)
@@ -134,50 +136,44 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
     good = work.good[:M]
     np.equal(nobs[:, window - 1:], window, out=good)
     good &= ok_model[:, None]
-    L, Li, g, beta = work.L[:, :, :M], work.Li[:, :, :M], work.g[:, :M], work.beta[:, :M]
+    L, g, beta, wv = work.L[:, :, :M], work.g[:, :M], work.beta[:, :M], work.w[:, :M]
     t0, t1, t2 = work.t[0, :M], work.t[1, :M], work.t[2, :M]
     okb = work.okb[:M]
 
     def dot_into(out: FloatArray, pairs: list[tuple[FloatArray, FloatArray]]) -> FloatArray:
-        """out = a0*b0 + a1*b1 + ..., summed left to right (what ``sum(generator, zeros)`` gave)."""
+        """out = a0*b0 + a1*b1 + ..., summed left to right."""
         np.multiply(pairs[0][0], pairs[0][1], out=out)
         for a, b in pairs[1:]:
             np.multiply(a, b, out=t2)
             out += t2
         return out
 
+    def minus_dot(out: FloatArray, first: FloatArray, pairs: list[tuple[FloatArray, FloatArray]]) -> FloatArray:
+        """out = first - (a0*b0 + a1*b1 + ...); out = first when there are no pairs."""
+        if pairs:
+            dot_into(out, pairs)
+            np.subtract(first, out, out=out)
+        else:
+            np.copyto(out, first)
+        return out
+
     # Cholesky A = L L', vectorised over (model, window); a pivot below tolerance marks rank deficiency
     for j in range(k):
-        dj = t0
-        if j:
-            dot_into(dj, [(L[j, m], L[j, m]) for m in range(j)])
-            np.subtract(A(j, j), dj, out=dj)
-        else:
-            np.copyto(dj, A(0, 0))
+        dj = minus_dot(t0, A(j, j), [(L[j, m], L[j, m]) for m in range(j)])
         np.multiply(A(j, j), _WINDOW_PIVOT_TOL, out=t1)
         np.greater(dj, t1, out=okb)  # NaN-safe: a NaN pivot is bad
         good &= okb
         np.copyto(dj, 1.0, where=~okb)
         np.sqrt(dj, out=L[j, j])
         for i in range(j + 1, k):
-            acc = L[i, j]
-            if j:
-                dot_into(acc, [(L[i, m], L[j, m]) for m in range(j)])
-                np.subtract(A(i, j), acc, out=acc)
-            else:
-                np.copyto(acc, A(i, j))
-            acc /= L[j, j]
-    # Li = L^{-1} (lower triangular)
-    for i in range(k):
-        np.divide(1.0, L[i, i], out=Li[i, i])
-        for j in range(i):
-            acc = dot_into(Li[i, j], [(L[i, m], Li[m, j]) for m in range(j, i)])
-            np.negative(acc, out=acc)
-            acc *= Li[i, i]
-    for i in range(k):  # g = L^{-1} c
-        dot_into(g[i], [(Li[i, j], c[j]) for j in range(i + 1)])
-    for j in range(k):  # beta = A^{-1} c
-        dot_into(beta[j], [(Li[i, j], g[i]) for i in range(j, k)])
+            minus_dot(L[i, j], A(i, j), [(L[i, m], L[j, m]) for m in range(j)])
+            L[i, j] /= L[j, j]
+    for i in range(k):  # g = L^{-1} c (forward substitution)
+        minus_dot(g[i], c[i], [(L[i, j], g[j]) for j in range(i)])
+        g[i] /= L[i, i]
+    for j in range(k - 1, -1, -1):  # beta = L^{-T} g = A^{-1} c (back substitution)
+        minus_dot(beta[j], g[j], [(L[i, j], beta[i]) for i in range(j + 1, k)])
+        beta[j] /= L[j, j]
     rss = dot_into(t0, [(g[i], g[i]) for i in range(k)])
     np.subtract(q, rss, out=rss)
     np.maximum(rss, 0.0, out=rss)
@@ -192,26 +188,25 @@ def _chunk(y: FloatArray, X: FloatArray, window: int, coef: FloatArray, se: Floa
     out_b = coef[:, :, window - 1:]
     out_s = se[:, :, window - 1:]
     Rb = [[Rinv[:, i, j, None] for j in range(k)] for i in range(k)]  # (M, 1): broadcast over windows
-    v, gil = work.rows[0, :M], work.rows[1, :M]
     for i in range(k):
         bi = dot_into(out_b[i], [(Rb[i][j], beta[j]) for j in range(i, k)])
         np.add(b0[:, i, None], bi, out=bi)
-        # cov / s^2 = G G' with G = R^{-1} L^{-T}: G[i, l] = sum_{j >= i} Rinv[i, j] Li[l, j]
-        for lcol in range(i, k):
-            dot_into(gil, [(Rb[i][j], Li[lcol, j]) for j in range(i, lcol + 1)])
-            if lcol == i:
-                np.multiply(gil, gil, out=v)
-            else:
-                np.multiply(gil, gil, out=gil)
-                v += gil
+        np.copyto(bi, np.nan, where=bad)
+    for i in se_cols:
+        # var(b_i) / s^2 = e_i' R^{-1} A^{-1} R^{-T} e_i = |L^{-1} u|^2 with u = R^{-T} e_i (row i of R^{-1},
+        # zero before i): one forward substitution from row i
+        for j in range(i, k):
+            minus_dot(wv[j], Rb[i][j], [(L[j, m], wv[m]) for m in range(i, j)])
+            wv[j] /= L[j, j]
+        v = dot_into(t0, [(wv[j], wv[j]) for j in range(i, k)])
         np.sqrt(v, out=v)
         np.multiply(s_w, v, out=out_s[i])
-        np.copyto(bi, np.nan, where=bad)
         np.copyto(out_s[i], np.nan, where=bad)
     return nobs
 
 
-def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
+def rolling_coefficients(y: object, X: object, window: int, *, se_columns: Sequence[int] | None = None
+                         ) -> RollingFit:
     r"""OLS coefficients and standard errors over a rolling window, batched over models.
 
     Parameters
@@ -222,6 +217,10 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
         Regressors; a window that contains a row with NaN in ``y`` or ``X`` gives NaN.
     window : int
         Window length, ``k <= window <= n``.
+    se_columns : sequence of int, optional
+        The columns whose standard errors are wanted (default: all); the others' ``se`` are NaN. Each
+        column's standard errors cost a triangular solve per window, so asking only for the drivers'
+        (the last columns of a design) saves most of that work.
 
     Returns
     -------
@@ -234,7 +233,7 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
     TypeError
         ``window`` not an int.
     ValueError
-        ``window < k``, bad shapes or infinite values.
+        ``window < k``, bad shapes or infinite values, ``se_columns`` out of range.
     InsufficientDataError
         ``window > n``.
 
@@ -248,7 +247,9 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
 
     :math:`\widehat{\mathrm{cov}}(b_t) = s_t^2 R^{-1}A_t^{-1}R^{-T}`, :math:`s_t^2 = \mathrm{RSS}_t/(w-k)`.
     The window sums are differences of cumulative sums over time (no per-window refit); :math:`A_t` is
-    factorised by a Cholesky decomposition vectorised over all models and windows. A window is treated
+    factorised by a Cholesky decomposition vectorised over all models and windows, and every solve is a
+    forward or back substitution with that factor (no inverse is formed):
+    :math:`\mathrm{var}(b_{t,i})/s_t^2 = \lVert L_t^{-1}R^{-T}e_i\rVert^2`. A window is treated
     as rank deficient when a Cholesky pivot falls below ``1e-10`` times the corresponding diagonal of
     :math:`A_t` (the pivot ratio is :math:`1 - R^2` of that column on the previous ones); a model whose
     full sample is rank deficient gives NaN throughout. When the window fit is far better than the
@@ -268,6 +269,12 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
         raise ValueError(f"window must be at least the number of regressors k={k}; got {w}")
     if w > n:
         raise InsufficientDataError("rolling coefficients", w, n, hint=f"window={w} exceeds the series length")
+    if se_columns is None:
+        se_cols = list(range(k))
+    else:
+        se_cols = sorted({int(j) for j in se_columns})
+        if any(j < 0 or j >= k for j in se_cols):
+            raise ValueError(f"se_columns must be column indices in 0..{k - 1}; got {list(se_columns)}")
     # regressor-major buffers, returned as (M, n, k) views (a transposed copy would cost more than the fit)
     coef_k = np.full((k, M, n), np.nan)
     se_k = np.full((k, M, n), np.nan)
@@ -275,7 +282,7 @@ def rolling_coefficients(y: object, X: object, window: int) -> RollingFit:
     work = _Work(k, min(M, _CHUNK), n, w)
     for lo in range(0, M, _CHUNK):
         hi = min(M, lo + _CHUNK)
-        nobs[lo:hi] = _chunk(ya[lo:hi], Xa[lo:hi], w, coef_k[:, lo:hi], se_k[:, lo:hi], work)
+        nobs[lo:hi] = _chunk(ya[lo:hi], Xa[lo:hi], w, coef_k[:, lo:hi], se_k[:, lo:hi], work, se_cols)
     coef = coef_k.transpose(1, 2, 0)
     se = se_k.transpose(1, 2, 0)
     if not batched:

@@ -275,3 +275,40 @@ def test_large_values_use_the_overflow_safe_rotations() -> None:
     big = 1e120
     w = recursive_residuals(y * big, X * big)
     np.testing.assert_allclose(w[3:] / big, recursive_residuals(y, X)[3:], rtol=1e-9)
+
+
+# source: statsmodels 0.15.0 RecursiveLS (recursive_coefficients.filtered, resid_recursive) at the row asked
+# for; the fit with coefficients at one row per model gives the same residuals, forecast errors and rss as
+# the full path, and the full path's coefficients (and standard errors) at that row, NaN elsewhere
+def test_coefficients_at_one_row_per_model() -> None:
+    rng = np.random.default_rng(113)
+    M, n, k = 5, 60, 3
+    ys, Xs = zip(*[_design(rng, n, k) for _ in range(M)])
+    y, X = np.stack(ys), np.stack(Xs)
+    y[1, :4] = np.nan  # ragged start
+    at = np.array([40, 40, 1, 59, 25])  # row 1 of model 2 is before full rank: NaN there as in the full path
+    full = recursive_fit(y, X)
+    for coef_se in (True, False):
+        part = recursive_fit(y, X, coef_se=coef_se, coef_at=at)
+        for name in ("resid", "forecast_error", "scale", "rss", "nobs", "first"):
+            np.testing.assert_array_equal(getattr(part, name), getattr(full, name), err_msg=name)
+        for i, t in enumerate(at):
+            np.testing.assert_allclose(part.coef[i, t], full.coef[i, t], rtol=1e-12, atol=1e-14)
+            if coef_se:
+                np.testing.assert_array_equal(part.coef_se[i, t], full.coef_se[i, t])
+            assert np.isnan(np.delete(part.coef[i], t, axis=0)).all()
+            assert np.isnan(np.delete(part.coef_se[i], t, axis=0)).all()
+    assert np.isnan(part.coef[2, 1]).all()
+    for i in (0, 3, 4):  # complete models: statsmodels' Kalman filter on the same rows
+        res = sm.RecursiveLS(y[i], X[i]).fit()
+        np.testing.assert_allclose(part.coef[i, at[i]], res.recursive_coefficients.filtered[:, at[i]], rtol=0,
+                                   atol=1e-8)
+    one = recursive_fit(y[0], X[0], coef_at=30)  # unbatched, a plain int
+    np.testing.assert_allclose(one.coef[30], full.coef[0, 30], rtol=1e-12)
+
+
+@pytest.mark.parametrize("bad", [np.array([1.5, 2.0]), np.array([1, 2, 3]), np.zeros((2, 1), int), True])
+def test_bad_coef_at(bad: object) -> None:
+    y, X = np.zeros((2, 10)), np.ones((2, 10, 1))
+    with pytest.raises(ValueError, match="coef_at"):
+        recursive_fit(y, X, coef_at=bad)

@@ -123,3 +123,20 @@ def test_degenerate_models_and_errors() -> None:
         rolling_coefficients(y[0], X[0], 1)
     with pytest.raises(TypeError, match="window"):
         rolling_coefficients(y[0], X[0], 10.0)  # type: ignore[arg-type]
+
+
+# source: statsmodels 0.15.0 RollingOLS (bse); standard errors asked for some columns only: those columns'
+# are the full call's, the others NaN, the coefficients unchanged
+def test_standard_errors_of_some_columns() -> None:
+    rng = np.random.default_rng(305)
+    y, X = _design(rng, 80, 4)
+    full = rolling_coefficients(y, X, 20)
+    part = rolling_coefficients(y, X, 20, se_columns=[3, 1])
+    ref = RollingOLS(y, X, window=20).fit()
+    np.testing.assert_array_equal(part.coef, full.coef)
+    np.testing.assert_array_equal(part.se[:, [1, 3]], full.se[:, [1, 3]])
+    np.testing.assert_allclose(part.se[:, [1, 3]], ref.bse[:, [1, 3]], rtol=1e-8)
+    assert np.isnan(part.se[:, [0, 2]]).all()
+    assert np.isnan(rolling_coefficients(y, X, 20, se_columns=[]).se).all()
+    with pytest.raises(ValueError, match="se_columns"):
+        rolling_coefficients(y, X, 20, se_columns=[4])
