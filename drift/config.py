@@ -32,6 +32,7 @@ from pydantic import (
     BaseModel,
     ConfigDict,
     Field,
+    PrivateAttr,
     ValidationError,
     field_validator,
     model_validator,
@@ -606,6 +607,7 @@ class Config(_Strict):
 
     # not from YAML
     base_dir: Path = Field(default=Path("."), exclude=True)
+    _delays_of: tuple[list[ModelConfig], int, dict[str, timedelta]] | None = PrivateAttr(default=None)
     file: Path | None = Field(default=None, exclude=True)
 
     @field_validator("store")
@@ -689,15 +691,24 @@ class Config(_Strict):
     def driver_delay(self, model: ModelConfig, driver: DriverConfig) -> timedelta:
         if driver.delay is not None:
             return driver.delay
-        return self.series_delays().get(driver.series, timedelta(0))
+        return self._series_delays().get(driver.series, timedelta(0))
 
     def series_delays(self) -> dict[str, timedelta]:
         """Publication delay per series: the driver's own ``delay`` when a model sets one."""
+        return dict(self._series_delays())
+
+    def _series_delays(self) -> dict[str, timedelta]:
+        # computed once per models list (the check asks per driver of every model: a walk over all the
+        # models each time was quadratic, a second per 1,000 models)
+        cached = self._delays_of
+        if cached is not None and cached[0] is self.models and cached[1] == len(self.models):
+            return cached[2]
         out: dict[str, timedelta] = {}
         for m in self.models:
             for d in m.drivers:
                 if d.delay is not None:
                     out[d.series] = max(out.get(d.series, timedelta(0)), d.delay)
+        self._delays_of = (self.models, len(self.models), out)
         return out
 
 

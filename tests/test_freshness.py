@@ -86,3 +86,21 @@ def test_plan_loaded_after_the_fact_is_not_late_when_its_period_is_in_the_file(t
     (p,) = out.models
     assert _late(p) == [], _late(p)
     assert p["charts"]["feeds"]["x2"]["late"] is False
+
+
+# common practice, no source: the freshness stage's array views agree with drift.panel.as_ns and with
+# pandas' groupby (oracle), whatever the column's unit, time zone, string storage or missing values
+def test_freshness_views_agree_with_pandas() -> None:
+    from drift.checking.freshness import _ns, _rows_by_series
+    from drift.panel import as_ns
+
+    t = pd.to_datetime(["2025-01-06 10:00:00.123456", None, "1999-12-31 00:00:00.000000"])
+    for col in (pd.Series(t).astype("datetime64[s]"), pd.Series(t).astype("datetime64[us]"), pd.Series(t),
+                pd.Series(t).dt.tz_localize("UTC").astype("datetime64[us, UTC]"),
+                pd.Series(t).dt.tz_localize("Europe/Lisbon")):
+        assert np.array_equal(_ns(col), as_ns(col))
+    for dtype in ("str", object):
+        ser = pd.Series(["b", "a", None, "b", "c", "a"], dtype=dtype)
+        got = _rows_by_series(ser)
+        want = {str(k): np.asarray(v) for k, v in ser.groupby(ser, sort=False).indices.items()}
+        assert got.keys() == want.keys() and all(np.array_equal(got[k], want[k]) for k in want)
