@@ -27,13 +27,16 @@ leaves in e, the MAD ignores the few large differences at the breaks. If that is
 data), the full-sample residual variance RSS / (n - p) is used instead.
 
 ruptures is not batched, so the search loops over models; it is meant for models already flagged by
-the batched tests.
+the batched tests. PELT with the l2 cost (the break dating of the check) runs ``_pelt_l2``, ruptures'
+Pelt recursion without its per-candidate dictionaries: the same breakpoints by the same arithmetic
+(tested against ruptures), at about half the time.
 """
 
 from __future__ import annotations
 
 import itertools
 import math
+import sys
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -161,6 +164,63 @@ class _CumL2(rpt.base.BaseCost):  # type: ignore[misc]
             raise rpt.costs.NotEnoughPoints
         s1 = self.s1[end] - self.s1[start]
         return float(max(self.s2[end] - self.s2[start] - s1 * s1 / (end - start), 0.0))
+
+
+#: Python's ``sum`` of floats adds left to right before 3.12 (compensated summation since): a partition's
+#: total is then its parent's total plus the new segment's cost, computed for all candidates at once
+_SEQUENTIAL_SUM = sys.version_info < (3, 12)
+
+
+def _pelt_l2(signal: FloatArray, pen: float, min_size: int) -> list[int]:
+    """``rpt.Pelt(custom_cost=_CumL2(), min_size=min_size, jump=1).fit(signal).predict(pen=pen)``: the same
+    breakpoints by the same arithmetic, without ruptures' per-candidate dictionaries.
+
+    ruptures keeps, for every candidate end ``t``, the optimal partition of ``0..t`` as a dictionary of
+    segment costs (each ``error + pen``, after a first entry 0) and compares partitions by the Python
+    ``sum`` of those values. Here the segment costs of all candidate starts are computed at once by
+    ``_CumL2``'s formula (elementwise: the same floating-point operations), a partition's total is formed as
+    ``sum`` forms it (its parent's total plus the new cost while ``sum`` adds left to right; the summed
+    list of costs otherwise), the first minimum wins as in ``min`` and the admissible starts are pruned by
+    the same test. A start ``t`` with no partition of ``0..t`` (``0 < t < min_size``) is skipped, as
+    ruptures skips it.
+    """
+    n = int(signal.shape[0])
+    if min_size > n:  # ruptures' sanity check for no change
+        raise rpt.exceptions.BadSegmentationParameters
+    cost = _CumL2().fit(signal)
+    s1, s2 = cost.s1, cost.s2
+    total = np.zeros(n + 1)  # total cost of the optimal partition of 0..t
+    values: dict[int, list[float]] = {0: [0]}  # its segment costs in order (compensated sum only)
+    back = np.zeros(n + 1, dtype=np.int64)
+    adm = np.zeros(0, dtype=np.int64)
+    for bkp in [*range(min_size, n), n]:
+        new = bkp - min_size
+        if new == 0 or new >= min_size:
+            adm = np.append(adm, new)
+        d1 = s1[bkp] - s1[adm]
+        err = np.maximum(s2[bkp] - s2[adm] - d1 * d1 / (bkp - adm), 0.0) + pen
+        if _SEQUENTIAL_SUM:
+            tot = total[adm] + err
+        else:
+            tot = np.array([sum([*values[t], e]) for t, e in zip(adm.tolist(), err.tolist())])
+        if np.isfinite(tot).all():
+            best = int(np.argmin(tot))  # the first minimum, as min() takes it
+        else:
+            best = 0
+            for j in range(1, tot.size):  # min()'s own comparisons when a total is NaN
+                if tot[j] < tot[best]:
+                    best = j
+        total[bkp] = tot[best]
+        back[bkp] = adm[best]
+        if not _SEQUENTIAL_SUM:
+            values[bkp] = [*values[int(adm[best])], float(err[best])]
+        adm = adm[tot <= total[bkp] + pen]
+    bkps = []
+    t = n
+    while t > 0:
+        bkps.append(t)
+        t = int(back[t])
+    return sorted(bkps)
 
 
 def _ols(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
@@ -312,15 +372,16 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
             bk: list[int] = [m]
         else:
             signal = yi[:, None] if cost == "l2" else np.column_stack([yi, Xi])
-            if cost == "l2":
-                algo = METHODS[method](custom_cost=_CumL2(), min_size=ms, jump=1).fit(signal)
+            if cost == "l2" and method == "pelt":
+                bk = _pelt_l2(signal, pen, ms)  # ruptures' Pelt, the same arithmetic, without its overhead
             else:
-                algo = METHODS[method](custom_cost=_LinearRSS(), min_size=ms, jump=1).fit(signal)
-            if method == "pelt":
-                bk = algo.predict(pen=pen)
-            else:
-                kmax = m // ms - 1 if max_breaks is None else int(max_breaks)
-                bk = _penalised_fixed_k(algo, pen, kmax)
+                algo = METHODS[method](custom_cost=_CumL2() if cost == "l2" else _LinearRSS(), min_size=ms,
+                                       jump=1).fit(signal)
+                if method == "pelt":
+                    bk = algo.predict(pen=pen)
+                else:
+                    kmax = m // ms - 1 if max_breaks is None else int(max_breaks)
+                    bk = _penalised_fixed_k(algo, pen, kmax)
         local = check_partition(bk[:-1], m, ms)
         edges = (0, *local, m)
         segs = []

@@ -173,3 +173,36 @@ def test_cumulative_l2_cost_equals_ruptures_costl2() -> None:
     ours = _CumL2().fit(sig)
     for a, b in [(0, 120), (3, 17), (50, 51), (90, 120), (10, 60)]:
         assert ours.error(a, b) == pytest.approx(ref.error(a, b), rel=1e-9, abs=1e-6)
+
+
+@pytest.mark.parametrize("sequential_sum", [True, False])
+def test_l2_pelt_equals_ruptures_pelt_on_many_series(sequential_sum: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    # reference: ruptures 1.1.10 Pelt(custom_cost=_CumL2(), jump=1).predict(pen): change_points' own l2
+    # PELT gives the same breakpoints on invented series of every kind (noise, shifts, values with exact
+    # ties, large values), minimum sizes and penalties, and refuses what ruptures refuses; both ways of
+    # forming a partition's total (the summed list of costs is what a Python >= 3.12 takes)
+    from drift.engine import changepoints
+    from drift.engine.changepoints import _CumL2, _pelt_l2
+
+    if not sequential_sum:
+        monkeypatch.setattr(changepoints, "_SEQUENTIAL_SUM", False)
+
+    rng = np.random.default_rng(20261203)
+    for trial in range(400):
+        n = int(rng.integers(6, 90))
+        kind = trial % 4
+        if kind == 0:
+            x = rng.normal(size=n)
+        elif kind == 1:
+            x = rng.normal(size=n) + np.repeat(rng.normal(scale=3, size=4), -(-n // 4))[:n]
+        elif kind == 2:
+            x = rng.integers(0, 3, size=n).astype(float)
+        else:
+            x = np.round(rng.normal(size=n), 1) * 1e6
+        ms = int(rng.integers(1, max(2, n // 2) + 1))
+        pen = float(rng.choice([0.1, 1.0, 2 * np.log(n), 10.0, 1e3])) * (1e12 if kind == 3 else 1.0)
+        sig = x[:, None]
+        ref = rpt.Pelt(custom_cost=_CumL2(), min_size=ms, jump=1).fit(sig).predict(pen=pen)
+        assert _pelt_l2(sig, pen, ms) == ref, (trial, n, ms, pen)
+    with pytest.raises(rpt.exceptions.BadSegmentationParameters):
+        _pelt_l2(np.zeros((4, 1)), 1.0, 5)
