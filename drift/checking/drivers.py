@@ -59,30 +59,41 @@ def _worth_fits(ctxs: list[_Ctx]) -> None:
     and the Clark-West adjustment term (y1 - y2)^2 then reads that stale, harmful difference as a gain.
     Clark & West (2007) cover the rolling scheme. Only the recent window's errors are computed (all a
     payload reads); the models of ``ctxs`` with the same shapes share one engine call."""
-    fits: dict[tuple[int, int, int, int], list[tuple[dict[str, np.ndarray], str, np.ndarray, np.ndarray]]] = {}
+    fits: dict[tuple[int, int, int, int], list[tuple[dict[str, np.ndarray], str, _Ctx, int]]] = {}
     spans: list[int] = []
     for c in ctxs:
         d, chk = c.design, c.cfg.check
         n = d.n
         window = chk.rolling_window or chk.recent_window
-        start = max(d.n_ref, n - chk.recent_window)  # first period of the recent window
+        start = max(d.n_ref, n - chk.recent_window, 1)  # first period of the recent window
         spans.append(start)
         roll_coef = c.charts.get("_roll_coef")
         if roll_coef is not None and window < n:  # the screening pass already fitted this rolling window
-            fe_full = _one_step_errors(c.y[None], c.X[None], roll_coef[None])[0]
+            fe_full = np.full(n, np.nan)
+            if start < n:
+                fe_full[start:] = _one_step_errors(c.y[None, start - 1:], c.X[None, start - 1:],
+                                                   roll_coef[None, start - 1:])[0, 1:]
         else:
             fe_full = _rolling_forecast_errors(c.y[None], c.X[None], window, start=start)[0]
         nested: dict[str, np.ndarray] = {}
         c.charts["_fe_roll"], c.charts["_fe_roll_without"] = fe_full, nested  # reused by _lag_drift
         kn = d.k - 1
         for s, j in d.driver_columns.items():
-            nested[s] = np.full(n, np.nan)
             if n - start < 10 or window < kn + 2 or window >= n:
-                continue  # no worth test reads them (nor a relag, which needs 20 recent periods)
-            fits.setdefault((n, start, kn, window), []).append((nested, s, c.y, np.delete(c.X, j, axis=1)))
-    for (_, start, _, window), group in fits.items():
-        fe = _rolling_forecast_errors(np.stack([y for _, _, y, _ in group]), np.stack([x for _, _, _, x in group]),
-                                      window, start=start)
+                nested[s] = np.full(n, np.nan)  # no worth test reads them (nor a relag: 20 recent periods)
+            else:
+                fits.setdefault((n, start, kn, window), []).append((nested, s, c, j))
+    for (n, start, kn, window), group in fits.items():
+        # each nested model on the rows its recent forecasts need: the window before the recent one on
+        lo = max(0, start - window)
+        Y = np.empty((len(group), n - lo))
+        X = np.empty((len(group), n - lo, kn))
+        for i, (_, _, c, j) in enumerate(group):
+            Y[i] = c.y[lo:]
+            X[i, :, :j] = c.X[lo:, :j]  # the model's columns less the driver's
+            X[i, :, j:] = c.X[lo:, j + 1:]
+        fe = np.full((len(group), n), np.nan)
+        fe[:, lo:] = _rolling_forecast_errors(Y, X, window, start=start - lo)
         for i, (nested, s, _, _) in enumerate(group):
             nested[s] = fe[i]
     # the Clark–West tests, one engine call per recent-window length
@@ -90,20 +101,24 @@ def _worth_fits(ctxs: list[_Ctx]) -> None:
     for c, start in zip(ctxs, spans):
         c.charts["_worth"] = {}
         fe_full = c.charts["_fe_roll"][start:]
-        for s, fe_without in c.charts["_fe_roll_without"].items():
-            e1, e2 = fe_without[start:], fe_full  # without the driver (restricted), with it
+        for s in c.design.driver_columns:
+            e1, e2 = c.charts["_fe_roll_without"][s][start:], fe_full  # without the driver (restricted), with it
             both = np.isfinite(e1) & np.isfinite(e2)
             if both.sum() >= 10:
                 tests.setdefault(e2.size, []).append((c, s, both, e1, e2))
     for group in tests.values():
-        y = np.stack([np.where(both, c.y[c.design.n - both.size:], np.nan) for c, _, both, _, _ in group])
+        both = np.stack([b for _, _, b, _, _ in group])
+        y = np.where(both, np.stack([c.y[c.design.n - both.shape[1]:] for c, _, _, _, _ in group]), np.nan)
         e1 = np.stack([e1 for _, _, _, e1, _ in group])
         e2 = np.stack([e2 for _, _, _, _, e2 in group])
         cw = engine.clark_west(y, y - e1, y - e2)
         stat, pval = np.atleast_1d(cw.statistic), np.atleast_1d(cw.pvalue)
-        for i, (c, s, both, e1_, e2_) in enumerate(group):
-            c.charts["_worth"][s] = (float(stat[i]), float(pval[i]), float(np.mean(np.abs(e2_[both]))),
-                                     float(np.mean(np.abs(e1_[both]))), int(both.sum()))
+        n_both = both.sum(axis=1)
+        mae_with = np.where(both, np.abs(e2), 0.0).sum(axis=1) / n_both
+        mae_without = np.where(both, np.abs(e1), 0.0).sum(axis=1) / n_both
+        for i, (c, s, _, _, _) in enumerate(group):
+            c.charts["_worth"][s] = (float(stat[i]), float(pval[i]), float(mae_with[i]), float(mae_without[i]),
+                                     int(n_both[i]))
 
 
 def _drivers_and_worth(c: _Ctx) -> None:
@@ -131,8 +146,8 @@ def _drivers_and_worth(c: _Ctx) -> None:
                 info["coef_recent"] = coefs["coef"][lastc]
                 info["ci_recent"] = [coefs["lower"][lastc], coefs["upper"][lastc]]
                 w = int(coefs.get("window") or window)
-                info["recent_window"] = {"start": d.periods[max(0, lastc - w + 1)].date().isoformat(),
-                                         "end": d.periods[lastc].date().isoformat(), "n": w}
+                info["recent_window"] = {"start": _day(d.periods, max(0, lastc - w + 1)),
+                                         "end": _day(d.periods, lastc), "n": w}
         if s in c.charts.get("_effects", {}):
             info["break"] = c.charts["_effects"][s]  # the refit's before/after figures (same object)
         feed = c.charts.get("feeds", {}).get(s, {})
@@ -172,6 +187,13 @@ def _drivers_and_worth(c: _Ctx) -> None:
                           f"{c.model.unit} without it.")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
+
+
+def _day(periods: pd.DatetimeIndex, i: int) -> str:
+    """``periods[i].date().isoformat()``, without making a Timestamp for a naive index."""
+    if periods.tz is None:
+        return str(np.datetime_as_string(periods.values[i], unit="D"))
+    return periods[i].date().isoformat()  # type: ignore[no-any-return]
 
 
 def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int, *, start: int = 0) -> np.ndarray:
