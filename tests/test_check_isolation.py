@@ -228,13 +228,13 @@ def test_batched_worth_equals_the_per_model_one(tmp_path: Path, monkeypatch: pyt
     real = drift.engine.rolling_coefficients
     k_nested = 9  # the model's 10 columns (const, trend, 3 Fourier pairs, 2 drivers) less the driver left out
 
-    def counted(y: Any, X: Any, window: int) -> Any:
+    def counted(y: Any, X: Any, window: int, **kw: Any) -> Any:
         rows = np.shape(y)[0] if np.ndim(y) == 2 else 1
         if np.shape(X)[-1] == k_nested:
             calls.append(rows)
             if rows == 6 and calls.count(6) == 1:
                 raise np.linalg.LinAlgError("refused")
-        return real(y, X, window)
+        return real(y, X, window, **kw)
 
     monkeypatch.setattr(drift.engine, "rolling_coefficients", counted)
     batched, errors = run_chunk(cfg, obs)

@@ -206,7 +206,7 @@ def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int, *, start
         return out
     lo = max(0, start - window)
     try:
-        roll = engine.rolling_coefficients(Y[:, lo:], X[:, lo:], window)
+        roll = engine.rolling_coefficients(Y[:, lo:], X[:, lo:], window, se_columns=())  # no standard errors
     except InsufficientDataError:
         return out
     fe = _one_step_errors(Y[:, lo:], X[:, lo:], np.asarray(roll.coef).reshape(M, n - lo, k))
