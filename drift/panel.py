@@ -478,13 +478,14 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
     at_ns = pd.Timestamp(as_of).value
     todo = []
     for m in models:
-        names = list(dict.fromkeys(m.read_series))
-        if (len(names) != len(m.read_series) or not all(x in table for x in m.series)
-                or (_season_length(m) is not None and m.preprocess.method == "stl")):
+        read = m.read_series
+        if (len(set(read)) != len(read) or not all(x in table for x in read[:1 + len(m.drivers)])
+                or (m.preprocess.method == "stl" and _season_length(m) is not None)):
             continue
         todo.append(m)
-    if not todo or len(v) == 0 or bool(np.any(v.available == _NAT)) or bool(np.any(v.period == _NAT)):
-        return {}
+    if (not todo or len(v) == 0 or table._starts[0] > 0 or bool(np.any(v.available == _NAT))
+            or bool(np.any(v.period == _NAT))):
+        return {}  # rows without a series name or a time: build_design copes
     sec = np.int64(10**9)
     if bool(np.any(v.available % sec)):
         return {}
@@ -493,33 +494,40 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
     heads = table._starts[:-1][np.diff(table._starts) > 0]
     last_known = np.maximum.reduceat(np.where(known, v.period, _NAT), heads) if heads.size else heads
     series_last = dict(zip((s for s, (a, b) in table._slices.items() if b > a), last_known.tolist()))
-    # the requests: every model's target on its grid, then its lagged drivers and target lags
+    # the requests: every model's target on its grid (lat_*), then its lagged drivers and target lags (req_*)
     plan = []
-    req_s: list[np.ndarray] = []
+    grids: dict[tuple[Any, ...], tuple[_Grid, int]] = {}
+    req_s: list[int] = []
     req_p: list[np.ndarray] = []
     req_o: list[np.ndarray] = []
-    lat_s: list[np.ndarray] = []
+    lat_s: list[int] = []
     lat_p: list[np.ndarray] = []
+    index = table._index
     n_req = n_lat = 0
     for m in todo:
         last_ns = series_last.get(m.target, _NAT)
         if last_ns == _NAT:
             continue
-        ref_start = pd.Timestamp(m.reference.start)
-        ref_end = pd.Timestamp(m.reference.end)
-        last = pd.Timestamp(last_ns, unit="ns").as_unit(v.period_unit)
-        end = max(last, ref_end)
-        g = _grid(m.frequency, week_anchor(m), ref_start, ref_start.unit, end, end.unit)
+        key = (m.frequency, m.reference.start, m.reference.end, last_ns)
+        got = grids.get(key)
+        if got is None:
+            ref_start = pd.Timestamp(m.reference.start)
+            ref_end = pd.Timestamp(m.reference.end)
+            last = pd.Timestamp(last_ns, unit="ns").as_unit(v.period_unit)
+            end = max(last, ref_end)
+            g = _grid(m.frequency, week_anchor(m), ref_start, ref_start.unit, end, end.unit)
+            got = grids[key] = (g, g.n_ref(ref_end))
+        g, n_ref = got
         n = len(g.ns)
         origins = g.shifted(0)
-        t_idx = table._index[m.target]
-        lat_s.append(np.full(n, t_idx))
+        t_idx = index[m.target]
+        lat_s.append(t_idx)
         lat_p.append(g.ns)
         cols = []
         for d in m.drivers:
             if d.form == "lagged":
                 cols.append((d, d.lag, n_req))
-                req_s.append(np.full(n, table._index[d.series]))
+                req_s.append(index[d.series])
                 req_p.append(g.shifted(d.lag))
                 req_o.append(origins)
                 n_req += n
@@ -528,17 +536,17 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
         tlags = []
         for j in m.target_lags:
             tlags.append((j, n_req))
-            req_s.append(np.full(n, t_idx))
+            req_s.append(t_idx)
             req_p.append(g.shifted(j))
             req_o.append(origins)
             n_req += n
-        plan.append((m, g, ref_end, n_lat, cols, tlags))
+        plan.append((m, g, n_ref, n_lat, cols, tlags))
         n_lat += n
     if not plan:
         return {}
-    rs = np.concatenate(req_s) if req_s else np.empty(0, np.int64)
     rp = np.concatenate(req_p) if req_p else np.empty(0, np.int64)
     ro = np.concatenate(req_o) if req_o else np.empty(0, np.int64)
+    rs = np.repeat(np.asarray(req_s, np.int64), [len(a) for a in req_p]) if req_p else np.empty(0, np.int64)
     if bool(np.any(ro % sec)):
         return {}
     base = int(min(v.available.min(), ro.min() if ro.size else v.available.min())) - 10**9
@@ -553,9 +561,15 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
         return {}
     pcode = np.searchsorted(uniq_p, v.period)
     vcode = series_of.astype(np.int64) * n_p + pcode
-    order = np.lexsort((v.available, vcode))  # stable: stored order among equal times
-    vkey = vcode[order] * _SHIFT + (v.available[order] - base) // 10**9
-    vals = v.value[order]
+    vsec = (v.available - base) // 10**9
+    vkey = vcode * _SHIFT + vsec
+    if bool(np.all(vkey[1:] >= vkey[:-1])):  # already by series, period and time (the store's order)
+        order = None
+        vals = v.value
+    else:
+        order = np.lexsort((v.available, vcode))  # stable: stored order among equal times
+        vkey = vkey[order]
+        vals = v.value[order]
     out = np.full(rs.size, np.nan)
     if rs.size:
         rk = np.searchsorted(uniq_p, rp)
@@ -566,12 +580,12 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
         ok[ok] &= (vkey[pos[ok]] // _SHIFT) == rcode[ok]
         out[ok] = vals[pos[ok]]
     # the latest vintage known at as_of of each target period
-    kn = known[order]
-    kcode = vcode[order][kn]
+    kn = known if order is None else known[order]
+    kcode = (vcode if order is None else vcode[order])[kn]
     kval = vals[kn]
     is_last = np.r_[kcode[1:] != kcode[:-1], True] if kcode.size else np.empty(0, bool)
     per, per_val = kcode[is_last], kval[is_last]
-    ls = np.concatenate(lat_s)
+    ls = np.repeat(np.asarray(lat_s, np.int64), [len(a) for a in lat_p])
     lp = np.concatenate(lat_p)
     lk = np.searchsorted(uniq_p, lp)
     lfound = (lk < n_p) & (uniq_p[np.minimum(lk, n_p - 1)] == lp)
@@ -582,9 +596,8 @@ def build_designs(cfg: Config, models: Sequence[ModelConfig], table: SeriesVinta
         hit = lfound & (k < per.size) & (per[np.minimum(k, per.size - 1)] == lcode)
         yall[hit] = per_val[k[hit]]
     designs: dict[str, Design] = {}
-    for m, g, ref_end, at, cols, tlags in plan:
+    for m, g, n_ref, at, cols, tlags in plan:
         n = len(g.ns)
-        n_ref = g.n_ref(ref_end)
         y = yall[at:at + n]
         if not np.isfinite(y[:n_ref]).any():
             continue  # build_design says why

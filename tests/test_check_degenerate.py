@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 from collections.abc import Callable
 from pathlib import Path
+from types import SimpleNamespace
 
 import pandas as pd
 import pytest
@@ -107,3 +108,65 @@ def test_quarantined_columns_on_every_store(store, tmp_path: Path) -> None:
     assert list(held) == ["a"]
     n, row, why = held["a"]
     assert (n, row) == (3, 2) and "beyond ±1e+100" in why
+
+
+def test_designs_cleared_together_are_those_validate_passes() -> None:
+    # oracle: the chunk's pre-check (drift.checking.designs._surely_valid) clears a design only where
+    # _validate itself finds nothing, and clears the plain ones; invented designs, seeded (common practice,
+    # no source: each case is one of _validate's own conditions, or a near-collinear column between its
+    # tolerance and the pre-check's margin)
+    import numpy as np
+
+    from drift.checking.designs import COLLINEAR_RTOL, MIN_SCALE, _surely_valid, _validate
+    from drift.panel import Design
+
+    rng = np.random.default_rng(9400)
+    n, n_ref = 60, 40
+
+    def design(name: str, edit: Callable[[np.ndarray, np.ndarray], None] | None = None) -> Design:
+        t = np.arange(n, dtype=float)
+        X = np.column_stack([np.ones(n), t / n_ref, rng.normal(size=n), rng.normal(size=n)])
+        X[:2, 2] = np.nan  # a lag's first rows
+        y = X[:, 2:].sum(axis=1) + rng.normal(size=n)
+        if edit is not None:
+            edit(y, X)
+        return Design(model=name, periods=pd.date_range("2021-01-04", periods=n, freq="7D"), y=y, X=X,
+                      columns=["const", "trend", "a", "b"], driver_columns={"a": 2, "b": 3}, n_ref=n_ref,
+                      deterministic=[0, 1], lags={"a": 1, "b": 1})
+
+    def near(scale: float) -> Callable[[np.ndarray, np.ndarray], None]:
+        def edit(y: np.ndarray, X: np.ndarray) -> None:
+            X[:, 3] = X[:, 0] + scale * rng.normal(size=n)
+        return edit
+
+    def setter(fn: Callable[[np.ndarray, np.ndarray], None]) -> Callable[[np.ndarray, np.ndarray], None]:
+        return fn
+
+    cases = {
+        "plain": None, "plain too": None,
+        "huge target": setter(lambda y, X: y.__setitem__(50, 1e120)),
+        "huge driver": setter(lambda y, X: X.__setitem__((45, 3), -1e150)),
+        "tiny driver": setter(lambda y, X: X.__setitem__((slice(None), 3), X[:, 3] * MIN_SCALE * 1e-3)),
+        "few rows": setter(lambda y, X: X.__setitem__((slice(0, 36), 3), np.nan)),
+        "constant target": setter(lambda y, X: y.__setitem__(slice(None), 7.0)),
+        "zero driver": setter(lambda y, X: X.__setitem__((slice(None), 3), 0.0)),
+        "collinear": setter(lambda y, X: X.__setitem__((slice(None), 3), 2.0 * X[:, 1])),
+        "near collinear": near(3.0 * COLLINEAR_RTOL),
+        "nearer": near(0.3 * COLLINEAR_RTOL),
+    }
+    designs = [design(name, edit) for name, edit in cases.items()]
+    cleared = dict(zip(cases, _surely_valid(designs)))
+    outcome: dict[str, bool] = {}
+    for d in designs:
+        try:
+            _validate(SimpleNamespace(design=d, model=SimpleNamespace(name=d.model, target="y"), y=d.y, X=d.X,
+                                      n_ref_ok=int(np.sum(np.isfinite(d.y[:n_ref])
+                                                          & np.isfinite(d.X[:n_ref]).all(axis=1)))))
+            passes = True
+        except Exception:  # noqa: BLE001 - any refusal
+            passes = False
+        assert not cleared[d.model] or passes, d.model
+        outcome[d.model] = passes
+    assert cleared["plain"] and cleared["plain too"]
+    assert outcome["near collinear"] and not outcome["nearer"]  # the margin is exercised on both sides
+    assert not any(v for k, v in cleared.items() if not k.startswith("plain")), cleared

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
@@ -18,7 +19,7 @@ import pandas as pd
 
 from drift.config import Config, ModelConfig
 from drift.exceptions import DriftError
-from drift.panel import Design
+from drift.panel import Design, Vintages
 from drift.verdicts import Action
 
 #: every stage logs under the check's one name, as when the check was one module
@@ -35,6 +36,10 @@ class _Ctx:
     design: Design
     as_of: datetime
     obs: pd.DataFrame
+    #: the model's observations as arrays, series -> Vintages (``c.obs`` converted once; what
+    #: :func:`drift.panel.build_design`, :func:`~drift.panel.values_as_of` and :func:`~drift.panel.latest_values`
+    #: take without converting a frame again)
+    vintages: Mapping[str, Vintages] | None = None
     y: np.ndarray = None  # type: ignore[assignment]
     X: np.ndarray = None  # type: ignore[assignment]
     error_model: str | None = None

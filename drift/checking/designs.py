@@ -62,6 +62,7 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
         self._models = list(models)
         self._designs: dict[str, tuple[ModelConfig, Design]] = {}
         self._designs_at: datetime | None = None
+        self._valid: set[str] = set()
 
     def design(self, cfg: Config, m: ModelConfig, as_of: datetime) -> Design | None:
         """The model's one-step design at ``as_of`` from the designs of the chunk's models, built together
@@ -75,8 +76,20 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
                 built = {}
             self._designs = {m.name: (m, built[m.name]) for m in self._models if m.name in built}
             self._designs_at = as_of
+            plain = [d for m, d in self._designs.values() if m.error_order == (0, 0)]
+            try:
+                self._valid = {d.model for d, ok in zip(plain, _surely_valid(plain)) if ok}
+            except Exception as exc:  # noqa: BLE001 - each model is then validated on its own
+                log.debug("validating the chunk's designs together failed (%s: %s)", type(exc).__name__, exc)
+                self._valid = set()
         got = self._designs.get(m.name)
         return got[1] if got is not None and got[0] is m else None
+
+    def surely_valid(self, m: ModelConfig, d: Design) -> bool:
+        """Whether the chunk's check of its designs found this design, used as built (no error model),
+        clear of every problem :func:`_validate` looks for (:func:`_surely_valid`)."""
+        got = self._designs.get(m.name)
+        return got is not None and got[0] is m and got[1] is d and d.model in self._valid
 
     def model_series(self, m: ModelConfig) -> list[str]:
         """The series of a model's frame: its own, then its logged forecasts when the chunk has them."""
@@ -142,20 +155,24 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
         raise DriftError(
             f"model '{m.name}': no observations of {which} are in the store as of {day.isoformat()}; "
             "check the source and the series names (drift ingest reports what it stored)")
+    vint: Mapping[str, Vintages]
     if isinstance(by_series, SeriesFrames):
         names = by_series.model_series(m)
         mobs = by_series.model_frame(names)
+        vint = by_series.model_vintages(names)
         built = by_series.design(cfg, m, as_of)
-        d = built if built is not None else build_design(cfg, m, by_series.model_vintages(names), pd.Timestamp(as_of))
+        d = built if built is not None else build_design(cfg, m, vint, pd.Timestamp(as_of))
     else:
         extra = [m.forecast_series] if m.forecast_series in by_series else []  # logged forecasts
         mobs = pd.concat([by_series[s] for s in [*dict.fromkeys(m.series), *extra]], ignore_index=True)
-        d = build_design(cfg, m, mobs, pd.Timestamp(as_of))
-    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs)
+        vint = SeriesVintages(mobs)
+        d = build_design(cfg, m, vint, pd.Timestamp(as_of))
+    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs, vintages=vint)
     c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
     c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
     c.horizon_n = _horizon_periods(cfg, m, d.n_ref)
-    _validate(c)
+    if not (isinstance(by_series, SeriesFrames) and c.y is d.y and by_series.surely_valid(m, d)):
+        _validate(c)
     return c
 
 
@@ -278,6 +295,40 @@ def _validate(c: _Ctx) -> None:
             f"model '{m.name}': the regressors are collinear on the {int(ok.sum())} usable reference rows: "
             f"{d.columns[j]} = {' + '.join(terms) or '0'}; their effects cannot be told apart. Drop one of "
             "these drivers (or change its lag), or check the source")
+
+
+def _surely_valid(designs: Sequence[Design]) -> list[bool]:
+    """For designs used as built (no error model): True where :func:`_validate` certainly finds nothing,
+    computed for designs of one shape together. The checks are those of :func:`_validate` on the same
+    values, the collinearity one with a margin (the stacked QR of the reference rows, unusable rows
+    zeroed, differs from :func:`_validate`'s in rounding only): a design it cannot clear is simply
+    validated on its own."""
+    out = [False] * len(designs)
+    groups: dict[tuple[int, int, int, tuple[int, ...]], list[int]] = {}
+    for i, d in enumerate(designs):
+        groups.setdefault((d.n, d.n_ref, d.k, tuple(d.driver_columns.values())), []).append(i)
+    for (_, n_ref, k, drivers), idx in groups.items():
+        Y = np.stack([designs[i].y for i in idx])
+        X = np.stack([designs[i].X for i in idx])
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore", under="ignore"):
+            fine = ~((np.abs(Y) > MAX_ABS_VALUE).any(axis=1) | (np.abs(X) > MAX_ABS_VALUE).any(axis=(1, 2)))
+            yr, Xr = Y[:, :n_ref], X[:, :n_ref]
+            ok = np.isfinite(yr) & np.isfinite(Xr).all(axis=2)
+            fine &= ok.sum(axis=1) >= k + 3
+            for v in (yr, *(Xr[:, :, j] for j in drivers)):
+                top = np.where(ok, np.abs(v), 0.0).max(axis=1)
+                fine &= ~((top > 0) & (top < MIN_SCALE))
+            fin = np.isfinite(yr)
+            fine &= np.where(fin, yr, -np.inf).max(axis=1) > np.where(fin, yr, np.inf).min(axis=1)
+            Xz = np.where(ok[:, :, None], Xr, 0.0)
+            norms = np.sqrt(np.sum(Xz * Xz, axis=1))
+            fine &= (norms > 0).all(axis=1)
+            r = np.abs(np.diagonal(np.linalg.qr(Xz / np.where(norms > 0, norms, 1.0)[:, None, :], mode="r"),
+                                   axis1=1, axis2=2))
+            fine &= (r >= 10.0 * COLLINEAR_RTOL).all(axis=1)
+        for i, f in zip(idx, fine.tolist()):
+            out[i] = bool(f)
+    return out
 
 
 def _check_scale(c: _Ctx, ok: np.ndarray) -> None:
