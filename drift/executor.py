@@ -6,9 +6,10 @@ function it is given (the check passes :func:`drift.check.analyse`; this module 
 check) with the configured executor and puts the results back together in the original model order.
 
 Observations come either as one frame (sliced per chunk) or as a loader ``load(series) -> frame`` that the
-coordinator calls once per chunk, just before the chunk is handed out: then at most a few chunks'
-observations are in memory at a time (``2 x workers`` in flight for the pool executors), whatever the
-number of models. Workers only compute; the coordinator alone reads and writes the store.
+coordinator calls once per chunk, in a background thread one chunk ahead of the chunk being handed out (the
+read overlaps the work on the previous chunk): then at most a few chunks' observations are in memory at a
+time (``2 x workers`` in flight for the pool executors, plus the one read ahead), whatever the number of
+models. Workers only compute; the coordinator alone reads and writes the store.
 
 Contract
 --------
@@ -243,25 +244,67 @@ def run_chunks(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame | L
     chunks = chunk_models(models, chk.chunk_size)
     if not chunks:
         return [], {}
+    prefetch: _Prefetch | None = None
     if isinstance(obs, pd.DataFrame):
         parts = chunk_observations(obs, chunks)
         load: Callable[[int], pd.DataFrame] = parts.__getitem__
     elif callable(obs):
         loader = obs
 
-        def load(i: int) -> pd.DataFrame:
+        def read(i: int) -> pd.DataFrame:
             return loader(list(dict.fromkeys(s for m in chunks[i] for s in m.read_series)))
+
+        load = prefetch = _Prefetch(read, len(chunks))
     else:
         raise TypeError(f"obs must be a DataFrame or a loader function, got {type(obs).__name__}")
     done = on_done or (lambda n: None)
     log.info("checking %d models in %d chunk(s) with the %s executor", len(models), len(chunks), executor)
-    if executor == "local":
-        results = _run_local(func, cfg, chunks, load, as_of, done)
-    elif executor == "process":
-        results = _run_process(func, cfg, chunks, load, as_of, workers, done)
-    else:
-        results = _run_dask(func, cfg, chunks, load, as_of, workers, chk.dask_scheduler, done)
+    try:
+        if executor == "local":
+            results = _run_local(func, cfg, chunks, load, as_of, done)
+        elif executor == "process":
+            results = _run_process(func, cfg, chunks, load, as_of, workers, done)
+        else:
+            results = _run_dask(func, cfg, chunks, load, as_of, workers, chk.dask_scheduler, done)
+    finally:
+        if prefetch is not None:
+            prefetch.close()
     return _assemble(models, chunks, results)
+
+
+class _Prefetch:
+    """A chunk loader that reads chunk ``i + 1`` in a background thread while chunk ``i`` is worked on.
+
+    Chunks are asked for in order (every executor hands them out in order); the read of the next one then
+    overlaps the current chunk's analysis (the database read runs mostly outside the GIL: SQLite's and
+    Arrow's work in C). At most one chunk is read ahead, so memory grows by one chunk's observations. A read
+    that fails raises when its chunk is asked for, as without prefetching.
+    """
+
+    def __init__(self, read: Callable[[int], pd.DataFrame], n: int) -> None:
+        self._read = read
+        self._n = n
+        self._pool = cf.ThreadPoolExecutor(max_workers=1, thread_name_prefix="drift-read-ahead")
+        self._ahead: tuple[int, cf.Future[pd.DataFrame]] | None = None
+
+    def __call__(self, i: int) -> pd.DataFrame:
+        ahead, self._ahead = self._ahead, None
+        try:
+            if ahead is not None and ahead[0] == i:
+                return ahead[1].result()
+            if ahead is not None:  # asked out of order: that read is not wanted now
+                ahead[1].cancel()
+            return self._read(i)
+        finally:
+            if i + 1 < self._n:
+                self._ahead = (i + 1, self._pool.submit(self._read, i + 1))
+
+    def close(self) -> None:
+        """Stop reading ahead (a read under way finishes; its result is dropped)."""
+        if self._ahead is not None:
+            self._ahead[1].cancel()
+            self._ahead = None
+        self._pool.shutdown(wait=True, cancel_futures=True)
 
 
 _Outcome: TypeAlias = "tuple[Payloads, Errors] | BaseException"

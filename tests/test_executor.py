@@ -305,6 +305,34 @@ def test_a_failing_loader_fails_only_its_chunk(scenario: tuple[Config, pd.DataFr
         assert [p["name"] for p in payloads] == ["m0", "m1", "m4", "m5"]
 
 
+# common practice, no source: the next chunk's read runs while the current chunk is worked on: the work on
+# chunk 0 waits for the read of chunk 1 to start (it would wait for ever with the reads done in turn)
+def test_the_next_chunk_is_read_while_the_current_one_is_worked_on(
+        scenario: tuple[Config, pd.DataFrame, str]) -> None:
+    import threading
+
+    cfg, obs, oracle = scenario
+    second_read = threading.Event()
+    calls: list[list[str]] = []
+
+    def load(series: list[str]) -> pd.DataFrame:
+        calls.append(series)
+        if len(calls) == 2:
+            second_read.set()
+        return obs[obs["series"].isin(series)]
+
+    def waiting(cfg: Config, models: Sequence[ModelConfig], chunk_obs: pd.DataFrame, at: datetime
+                ) -> tuple[list[dict[str, Any]], dict[str, str]]:
+        if models[0].name == "m0":
+            assert second_read.wait(timeout=30), "chunk 1 was not read while chunk 0 was worked on"
+        return analyse(cfg, models, chunk_obs, at)
+
+    payloads, errors = run_chunks(with_executor(cfg, "local", 2), cfg.models, load, as_of(), func=waiting)
+    assert errors == {} and dump(payloads) == oracle
+    assert [sorted(c) for c in calls] == [sorted({s for m in ch for s in m.read_series})
+                                          for ch in chunk_models(cfg.models, 2)]
+
+
 def test_the_executor_needs_its_function_and_imports_no_check() -> None:
     import subprocess
     import sys
