@@ -22,33 +22,33 @@ from drift.config import next_period, period_start
 from drift.panel import as_ns, next_due, shift_periods, week_anchor
 from drift.verdicts import Action
 
-_NO_ROWS = np.empty(0, np.intp)
+_NO_NS = np.empty(0, np.int64)
 
 
 def _freshness(c: _Ctx) -> None:
-    m, d, known = c.model, c.design, c.obs  # c.obs holds only this model's series
-    # numpy views: each series' row positions, period and available_at as int64 ns (the first vintage of each
-    # period is shown); the chart's dates are written in one call per column for all the feeds
-    rows_of = _rows_by_series(known["series"])
-    per_ns = _ns(known["period"])
-    at_ns = _ns(known["available_at"])
+    m, d = c.model, c.design
+    # each series' periods and availability times as int64 ns (the first vintage of each period is shown),
+    # from the arrays the design stage made (else from the frame); the chart's dates are written in one call
+    # per column for all the feeds
+    arrays = _series_arrays(c)
     start_ns = pd.Timestamp(d.periods[max(0, d.n - 26)]).as_unit("ns").value
     as_of = pd.Timestamp(c.as_of)
-    feeds: list[tuple[str, np.ndarray, dict[str, Any]]] = []
+    feeds: list[tuple[str, np.ndarray, np.ndarray, dict[str, Any]]] = []
     limit = c.cfg.check.feed_limit
     for s in m.series:
         dr = next((x for x in m.drivers if x.series == s), None)
         if dr is not None and dr.form != "lagged":
-            feeds.append(_forward_feed(c, dr, rows_of.get(dr.series, _NO_ROWS), per_ns, at_ns))
+            feeds.append(_forward_feed(c, dr, *arrays.get(dr.series, (_NO_NS, _NO_NS))))
             continue
         delay = c.cfg.driver_delay(m, dr) if dr else timedelta(0)
-        rows = rows_of.get(s)
-        if rows is None:
+        got = arrays.get(s)
+        if got is None or got[0].size == 0:
             continue
-        lp, lp_day, due, due_iso = _due(int(per_ns[rows].max()), m.frequency, delay)
+        per, at = got
+        lp, lp_day, due, due_iso = _due(int(per.max()), m.frequency, delay)
         late = bool(as_of > due)
-        feeds.append((s, _first_arrivals(rows, per_ns, at_ns, start_ns),
-                      {"next_due": due_iso, "late": late, "last_period": lp_day}))
+        first = _first_arrivals(per, at, start_ns)
+        feeds.append((s, per[first], at[first], {"next_due": due_iso, "late": late, "last_period": lp_day}))
         if late:
             c.late.add(s)
             missing = _periods_between(lp, as_of, m.frequency, delay)
@@ -62,7 +62,17 @@ def _freshness(c: _Ctx) -> None:
                                     extra={"driver": s, "last_period": lp_day,
                                            "missing_periods": int(missing),
                                            **({"feed_limit": limit} if missing > limit else {})}))
-    c.charts["feeds"] = _feed_charts(feeds, per_ns, at_ns)
+    c.charts["feeds"] = _feed_charts(feeds)
+
+
+def _series_arrays(c: _Ctx) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Series -> (period, available_at) as int64 ns, rows in their stored order: ``c.vintages`` when the
+    design stage left them, else read from ``c.obs``."""
+    if c.vintages is not None:
+        return {s: (v.period, v.available) for s, v in c.vintages.items()}
+    known = c.obs
+    per_ns, at_ns = _ns(known["period"]), _ns(known["available_at"])
+    return {s: (per_ns[r], at_ns[r]) for s, r in _rows_by_series(known["series"]).items()}
 
 
 def _rows_by_series(col: pd.Series) -> dict[str, np.ndarray]:
@@ -108,43 +118,43 @@ def _due(last_ns: int, freq: str, delay: timedelta) -> tuple[pd.Timestamp, str, 
     return lp, lp.date().isoformat(), due, due.isoformat()
 
 
-def _first_arrivals(rows: np.ndarray, per_ns: np.ndarray, at_ns: np.ndarray, start_ns: int) -> np.ndarray:
+def _first_arrivals(per: np.ndarray, at: np.ndarray, start_ns: int) -> np.ndarray:
     """The rows of a feed's chart: for each period from ``start_ns`` on, its first arrival."""
-    recent = rows[per_ns[rows] >= start_ns]
+    recent = np.flatnonzero(per >= start_ns)
     if recent.size == 0:
         return recent
-    recent = recent[np.lexsort((at_ns[recent], per_ns[recent]))]
-    p = per_ns[recent]
+    recent = recent[np.lexsort((at[recent], per[recent]))]
+    p = per[recent]
     keep = np.empty(p.size, bool)
     keep[0] = True
     np.not_equal(p[1:], p[:-1], out=keep[1:])
     return recent[keep]
 
 
-def _feed_charts(feeds: list[tuple[str, np.ndarray, dict[str, Any]]], per_ns: np.ndarray, at_ns: np.ndarray
-                 ) -> dict[str, Any]:
-    """``charts['feeds']``: per series its chart rows' periods and first arrival times (ISO), then the rest."""
-    rows = np.concatenate([f[1] for f in feeds]) if feeds else _NO_ROWS
-    days = np.datetime_as_string(per_ns[rows].astype("datetime64[ns]"), unit="D").tolist()
-    times = [t + "+00:00" for t in np.datetime_as_string(at_ns[rows].astype("datetime64[ns]"), unit="s").tolist()]
+def _feed_charts(feeds: list[tuple[str, np.ndarray, np.ndarray, dict[str, Any]]]) -> dict[str, Any]:
+    """``charts['feeds']``: per series its chart's periods and first arrival times (ISO), then the rest."""
+    per = np.concatenate([f[1] for f in feeds]) if feeds else _NO_NS
+    at = np.concatenate([f[2] for f in feeds]) if feeds else _NO_NS
+    days = np.datetime_as_string(per.astype("datetime64[ns]"), unit="D").tolist()
+    times = [t + "+00:00" for t in np.datetime_as_string(at.astype("datetime64[ns]"), unit="s").tolist()]
     out: dict[str, Any] = {}
-    at = 0
-    for s, r, rest in feeds:
-        out[s] = {"periods": days[at:at + r.size], "available_at": times[at:at + r.size], **rest}
-        at += r.size
+    i = 0
+    for s, p, _a, rest in feeds:
+        out[s] = {"periods": days[i:i + p.size], "available_at": times[i:i + p.size], **rest}
+        i += p.size
     return out
 
 
-def _forward_feed(c: _Ctx, dr: Any, rows: np.ndarray, per_ns: np.ndarray, at_ns: np.ndarray
-                  ) -> tuple[str, np.ndarray, dict[str, Any]]:
+def _forward_feed(c: _Ctx, dr: Any, per: np.ndarray, at: np.ndarray
+                  ) -> tuple[str, np.ndarray, np.ndarray, dict[str, Any]]:
     """A forecast or planned driver is late when the forecast of the current period had to be made
-    without it: no forecast (or plan) of the period it needs was stored by the check's moment. Returns
-    the feed's chart (series, chart rows, the other fields)."""
+    without it: no forecast (or plan) of the period it needs was stored by the check's moment. ``per``,
+    ``at``: the driver's periods and availability times (ns). Returns the feed's chart (series, its
+    periods and first arrival times, the other fields)."""
     m = c.model
     cur, need, need_ns, start_ns = _forward_periods(pd.Timestamp(c.as_of), m.frequency, week_anchor(m), dr.lag)
-    have = per_ns[rows]
-    last = pd.Timestamp(int(have.max())) if have.size else None
-    late = not bool(np.any(have == need_ns))
+    last = pd.Timestamp(int(per.max())) if per.size else None
+    late = not bool(np.any(per == need_ns))
     kind = "forecast" if dr.form == "forecast" else "plan"
     if late:
         c.late.add(dr.series)
@@ -158,7 +168,8 @@ def _forward_feed(c: _Ctx, dr: Any, rows: np.ndarray, per_ns: np.ndarray, at_ns:
                 f"and none had arrived; {covers}.")))
     # the timeline of the chart: the periods of the last half year and when their first plan (forecast)
     # was stored, as for a lagged feed
-    return dr.series, _first_arrivals(rows, per_ns, at_ns, start_ns), {
+    first = _first_arrivals(per, at, start_ns)
+    return dr.series, per[first], at[first], {
         "next_due": cur.tz_localize("UTC").isoformat(), "late": late,
         "last_period": last.date().isoformat() if last is not None else None, "form": dr.form}
 
