@@ -36,3 +36,41 @@ def test_rolling_forecast_errors_from_a_start_equal_one_fit_per_window() -> None
         np.testing.assert_allclose(got[:, start:], want[:, start:], rtol=1e-9, atol=1e-12)
     assert np.isnan(_rolling_forecast_errors(y, X, window, start=n)).all()
     assert np.isnan(_rolling_forecast_errors(y, X, n)).all()  # a window as long as the series: nothing to forecast
+
+
+def test_latest_values_of_many_frames_equal_one_filtered_frame_per_series() -> None:
+    """The lag stage's latest values, every model's frame in one sorted pass, against
+    drift.panel.latest_values of the frame filtered to each series (the per-driver computation it
+    replaces): revised values, ties in available_at (the later row wins), a missing series, an empty
+    frame, an aware grid. Invented data (common practice, no source)."""
+    import pandas as pd
+
+    from drift.checking.drivers import _latest_by_series
+    from drift.panel import latest_values
+
+    rng = np.random.default_rng(5)
+    grid = pd.date_range("2024-01-01", periods=40, freq="7D")
+    frames = []
+    for f in range(4):
+        rows = []
+        for s in ("y", "x1", "x2"):
+            per = grid[rng.permutation(40)[:30]]  # some periods missing
+            avail = (per + pd.Timedelta(days=7)).tz_localize("UTC")
+            rows.append(pd.DataFrame({"series": f"m{f}_{s}", "period": per, "issued_at": pd.NaT,
+                                      "value": rng.standard_normal(30), "available_at": avail}))
+            late = rows[-1].sample(8, random_state=f)  # revisions, known later
+            rows.append(late.assign(value=late["value"] + 1.0, available_at=late["available_at"] + pd.Timedelta(days=3)))
+            tie = rows[-1].head(3)  # a second value known at the same moment as a revision: the later row wins
+            rows.append(tie.assign(value=-9.0))
+        frames.append(pd.concat(rows, ignore_index=True).sample(frac=1.0, random_state=f).reset_index(drop=True))
+    for frame in frames:
+        frame["issued_at"] = pd.to_datetime(frame["issued_at"], utc=True)
+    frames.append(frames[0].iloc[0:0])
+    wanted = [[f"m{f}_x1", f"m{f}_x2", f"m{f}_y", "absent"] for f in range(5)]
+    grids = [grid, grid[5:], grid.tz_localize("UTC"), grid[:10], grid]
+    got = _latest_by_series(frames, wanted, grids)
+    for frame, names, g, values in zip(frames, wanted, grids, got):
+        for s in names:
+            want = latest_values(frame[frame["series"] == s], g)
+            np.testing.assert_array_equal(values[s], want)
+    assert np.isfinite(got[0]["m0_x1"]).sum() > 20 and (got[0]["m0_x1"] == -9.0).any()

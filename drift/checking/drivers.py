@@ -23,7 +23,7 @@ from drift.checking.context import _Ctx, _list, _num, log
 from drift.checking.designs import _prewhiten
 from drift.config import MAX_LAG_BY_FREQ, period_length
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import as_ns, build_design
+from drift.panel import as_ns, build_design, latest_values
 from drift.verdicts import Action, fmt_num, fmt_p, window_words
 
 
@@ -294,11 +294,10 @@ def _lag_fill(started: list[tuple[_Ctx, np.ndarray]]) -> None:
     rows)``); every figure is computed before any model's charts are written, so a failure leaves none."""
     # partial residual of the target: remove deterministic terms and the *other* drivers' reference effects
     b_ref = _ols_by_shape([(c.design.X[: c.design.n_ref], c.design.y[: c.design.n_ref], okx) for c, okx in started])
-    latest = _latest_by_series([c.obs for c, _ in started],
-                               [[dr.series for dr in c.model.drivers if dr.form == "lagged"
-                                 and dr.series in c.design.driver_columns and dr.series not in c.late]
-                                for c, _ in started],
-                               [c.design.periods for c, _ in started])
+    latest = _latest_values([c for c, _ in started],
+                            [[dr.series for dr in c.model.drivers if dr.form == "lagged"
+                              and dr.series in c.design.driver_columns and dr.series not in c.late]
+                             for c, _ in started])
     skips: list[dict[str, str]] = []
     todo: list[tuple[int, Any, np.ndarray]] = []  # (model, driver, its values)
     dets: list[np.ndarray] = []  # each model's deterministic columns
@@ -374,6 +373,37 @@ def _ols(A: np.ndarray, b: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return coef
 
 
+def _latest_values(ctxs: list[_Ctx], series: list[list[str]]) -> list[dict[str, np.ndarray]]:
+    """For each context and its series ``s``: ``latest_values(c.obs[c.obs["series"] == s], c.design.periods)``
+    (:func:`drift.panel.latest_values`: the latest known vintage of each period on the target's grid), from
+    the model's observations as arrays (``c.vintages``), or from its frame when it has none
+    (:func:`_latest_by_series`)."""
+    out: list[dict[str, np.ndarray]] = [{} for _ in ctxs]
+    arrays = [i for i, c in enumerate(ctxs) if c.vintages is not None]
+    framed = [i for i, c in enumerate(ctxs) if c.vintages is None]
+    if arrays:
+        # every grid as drift.panel.as_ns gives it (UTC for aware ones), converted at once
+        grids = as_ns(np.concatenate([_utc_values(ctxs[i].design.periods) for i in arrays]))
+        at = 0
+        for i in arrays:
+            c = ctxs[i]
+            rp = grids[at:at + c.design.n]
+            at += c.design.n
+            vint = c.vintages or {}
+            out[i] = {s: latest_values(vint[s], rp) if s in vint else np.full(rp.size, np.nan) for s in series[i]}
+    if framed:
+        for i, got in zip(framed, _latest_by_series([ctxs[i].obs for i in framed], [series[i] for i in framed],
+                                                    [ctxs[i].design.periods for i in framed])):
+            out[i] = got
+    return out
+
+
+def _utc_values(grid: Any) -> np.ndarray:
+    """A grid of periods as datetime64 values, UTC for an aware one (what :func:`drift.panel.as_ns` reads)."""
+    g = grid if isinstance(grid, pd.DatetimeIndex) else pd.DatetimeIndex(grid)
+    return (g.tz_convert(None) if g.tz is not None else g).to_numpy()
+
+
 def _latest_by_series(frames: list[pd.DataFrame], series: list[list[str]],
                       periods: list[pd.DatetimeIndex]) -> list[dict[str, np.ndarray]]:
     """For each frame ``obs`` of observations, its series and its period grid: ``latest_values(obs[obs["series"]
@@ -401,8 +431,7 @@ def _latest_by_series(frames: list[pd.DataFrame], series: list[list[str]],
     key_last = g_last * known.size + np.searchsorted(known, p_last)
     sizes = [len(grid) for grid in periods]
     # the grids as drift.panel.as_ns gives them (UTC for aware ones), converted at once
-    grids = as_ns(np.concatenate([(grid if isinstance(grid, pd.DatetimeIndex) else pd.DatetimeIndex(grid)).values
-                                  for grid in periods]))
+    grids = as_ns(np.concatenate([_utc_values(grid) for grid in periods]))
     ends = np.cumsum(sizes)
     want_g: list[np.ndarray] = []
     want_p: list[np.ndarray] = []
