@@ -276,6 +276,8 @@ OBS_COLUMNS = ("series", "period", "issued_at", "value", "available_at", "ingest
                "vintage")
 #: rows per executemany call / per COPY progress step
 INSERT_CHUNK = 20_000
+#: verdict payloads encoded and inserted at a time (:meth:`Store.save_verdicts`)
+VERDICT_BATCH = 500
 
 
 #: series per as-of read query (a check chunk of 500 models x 3 series is one query; SQLite allows 32,766
@@ -1058,12 +1060,16 @@ class Store:
 
     # ---------------------------------------------------------------- verdicts
     def save_verdicts(self, run_id: int, as_of: date, items: Sequence[dict[str, Any]]) -> None:
+        """One verdict row per payload (its strict JSON, charts included), all in one transaction, encoded and
+        inserted :data:`VERDICT_BATCH` at a time (the texts of a 10,000-model check would hold ~0.4 GB)."""
+        if not items:
+            return
         now = utcnow()
-        rows = [{"run": run_id, "model": it["name"], "as_of": as_of, "verdict": it["verdict"],
-                 "payload": _strict_json(it), "created_at": now} for it in items]
-        if rows:
-            with self.begin() as conn:
-                conn.execute(verdicts.insert(), rows)
+        with self.begin() as conn:
+            for part in _chunks(list(items), VERDICT_BATCH):
+                conn.execute(verdicts.insert(), [
+                    {"run": run_id, "model": it["name"], "as_of": as_of, "verdict": it["verdict"],
+                     "payload": _strict_json(it), "created_at": now} for it in part])
 
     def latest_verdicts(self, since: datetime | None = None) -> list[dict[str, Any]]:
         """The newest verdict row per model (optionally only those created since a time)."""
