@@ -43,7 +43,18 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
 
     def __init__(self, obs: pd.DataFrame, models: Sequence[ModelConfig] = ()) -> None:
         self.obs = obs
-        self.vintages = SeriesVintages(obs)
+        self._models = list(models)
+        self._designs: dict[str, tuple[ModelConfig, Design]] = {}
+        self._designs_at: datetime | None = None
+        self._valid: set[str] = set()
+        self._spans: dict[tuple[str, ...], tuple[int, int]] = {}
+        self.groups: dict[str, pd.DataFrame] | None = None  # the frames by series, when not converted
+        try:
+            self.vintages = SeriesVintages(obs)
+        except Exception as exc:  # noqa: BLE001 - columns that cannot be converted: each model says so alone
+            log.debug("the chunk's observations cannot be converted at once (%s: %s)", type(exc).__name__, exc)
+            self.groups = {str(k): g for k, g in obs.groupby("series", sort=False, observed=True)}
+            return
         # the frames of the models to come, made in one take and handed out as slices of it
         spans: dict[tuple[str, ...], tuple[int, int]] = {}
         parts: list[np.ndarray] = []
@@ -59,10 +70,6 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
             at += n
         self._spans = spans
         self._frames = obs.take(np.concatenate(parts)) if parts else obs.iloc[0:0]
-        self._models = list(models)
-        self._designs: dict[str, tuple[ModelConfig, Design]] = {}
-        self._designs_at: datetime | None = None
-        self._valid: set[str] = set()
 
     def design(self, cfg: Config, m: ModelConfig, as_of: datetime) -> Design | None:
         """The model's one-step design at ``as_of`` from the designs of the chunk's models, built together
@@ -99,16 +106,18 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
         return names
 
     def __getitem__(self, name: str) -> pd.DataFrame:
+        if self.groups is not None:
+            return self.groups[name]
         return self.obs.iloc[self.vintages.rows(name)]
 
     def __contains__(self, name: object) -> bool:
-        return name in self.vintages
+        return name in (self.groups if self.groups is not None else self.vintages)
 
     def __iter__(self) -> Iterator[str]:
-        return iter(self.vintages)
+        return iter(self.groups if self.groups is not None else self.vintages)
 
     def __len__(self) -> int:
-        return len(self.vintages)
+        return len(self.groups if self.groups is not None else self.vintages)
 
     def model_frame(self, names: list[str]) -> pd.DataFrame:
         """The rows of these series, series after series (stored order within each), index 0..n-1: the
@@ -156,7 +165,7 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
             f"model '{m.name}': no observations of {which} are in the store as of {day.isoformat()}; "
             "check the source and the series names (drift ingest reports what it stored)")
     vint: Mapping[str, Vintages]
-    if isinstance(by_series, SeriesFrames):
+    if isinstance(by_series, SeriesFrames) and by_series.groups is None:
         names = by_series.model_series(m)
         mobs = by_series.model_frame(names)
         vint = by_series.model_vintages(names)
@@ -165,7 +174,7 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
     else:
         extra = [m.forecast_series] if m.forecast_series in by_series else []  # logged forecasts
         mobs = pd.concat([by_series[s] for s in [*dict.fromkeys(m.series), *extra]], ignore_index=True)
-        vint = SeriesVintages(mobs)
+        vint = SeriesVintages(mobs)  # raises for this model alone what cannot be converted
         d = build_design(cfg, m, vint, pd.Timestamp(as_of))
     c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs, vintages=vint)
     c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
