@@ -79,6 +79,9 @@ CONTEXT_KEYS = ("target", "unit", "frequency", "verdict", "reference", "monitor_
                 "drivers", "accuracy")
 #: version of the JSON kept in ``alerts.payload``
 _STATE_VERSION = 1
+#: models whose alerts one transaction of :func:`process_alerts` updates (SQL ``IN`` lists stay short, and a
+#: SQLite writer waits at most one batch for the lock)
+ALERT_BATCH = 400
 
 Event = Literal["opened", "worse", "unchanged", "cleared"]
 
@@ -262,6 +265,8 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
             sa.select(model_epochs.c.model, sa.func.max(model_epochs.c.epoch)).group_by(model_epochs.c.model))}
         snoozing = {str(mo) for (mo,) in conn.execute(
             sa.select(alert_snoozes.c.model).where(alert_snoozes.c.ended_at.is_(None)).distinct())}
+    # models whose payload can change their alerts, in the order they are processed
+    todo: list[tuple[str, Mapping[str, Any], date | None, dict[str, dict[str, Any]]]] = []
     for name in sorted(models):
         payload = models[name]
         actions = payload.get("actions")
@@ -269,33 +274,58 @@ def process_alerts(cfg: Config, store: Store, outcome: Any, *, now: datetime | N
             log.info("model %s: no actions list in its payload; its alerts are left as they are", name)
             continue
         as_of = _as_date(payload.get("as_of")) or default_as_of
-        current = _current_conditions(actions)
         if _older_epoch(newest_epoch.get(name), payload):
             log.info("model %s: the check as of %s belongs to an earlier epoch; its alerts are left as they are",
                      name, as_of)
             continue
+        todo.append((name, payload, as_of, _current_conditions(actions)))
+    # a few hundred models per transaction: each transaction reads its models' open alerts and snoozes in
+    # one query each (they cannot change before its commit) and writes what the run calls for; a model with
+    # no condition and no open alert costs nothing more
+    for start in range(0, len(todo), ALERT_BATCH):
+        part = todo[start:start + ALERT_BATCH]
+        names = [t[0] for t in part]
         with store.begin() as conn:
-            rows = conn.execute(sa.select(alerts).where(alerts.c.model == name, alerts.c.status == "open")
-                                .order_by(alerts.c.id)).fetchall()
-            open_rows = {r.condition: r for r in rows}  # the newest row wins if ever duplicated
-            snoozes = {r.condition: r for r in conn.execute(
-                sa.select(alert_snoozes).where(alert_snoozes.c.model == name, alert_snoozes.c.ended_at.is_(None))
-                .order_by(alert_snoozes.c.id))} if name in snoozing else {}
-            for cond in sorted(set(snoozes) - set(current)):
-                if as_of is not None and as_of >= snoozes[cond].until:
-                    _end_snooze(conn, snoozes.pop(cond), "expired", now)
-            for cond in sorted(current):
-                sn = snoozes.get(cond)
-                row = open_rows.get(cond)
-                if sn is None:
-                    events.append(_apply(conn, cfg, channels, payload, cond, current[cond], row, as_of=as_of,
-                                         run_id=run_id, now=now, min_rank=min_rank))
-                    continue
-                events.append(_apply_snoozed(conn, cfg, channels, payload, cond, current[cond], row, sn,
-                                             as_of=as_of, run_id=run_id, now=now, min_rank=min_rank))
-            for cond in sorted(set(open_rows) - set(current)):
-                events.append(_clear(conn, cfg, channels, payload, open_rows[cond], as_of=as_of, run_id=run_id,
-                                     now=now, notify=notify_cleared))
+            open_by_model: dict[str, dict[str, Any]] = {}
+            for r in conn.execute(sa.select(alerts).where(alerts.c.model.in_(names), alerts.c.status == "open")
+                                  .order_by(alerts.c.id)):
+                open_by_model.setdefault(r.model, {})[r.condition] = r  # the newest row wins if ever duplicated
+            snoozed = [n for n in names if n in snoozing]
+            snooze_by_model: dict[str, dict[str, Any]] = {}
+            if snoozed:
+                for r in conn.execute(sa.select(alert_snoozes).where(alert_snoozes.c.model.in_(snoozed),
+                                                                     alert_snoozes.c.ended_at.is_(None))
+                                      .order_by(alert_snoozes.c.id)):
+                    snooze_by_model.setdefault(r.model, {})[r.condition] = r
+            for name, payload, as_of, current in part:
+                events.extend(_model_alerts(conn, cfg, channels, payload, current, open_by_model.get(name, {}),
+                                            snooze_by_model.get(name, {}), as_of=as_of, run_id=run_id, now=now,
+                                            min_rank=min_rank, notify_cleared=notify_cleared))
+    return events
+
+
+def _model_alerts(conn: Any, cfg: Config, channels: Sequence[tuple[str, Any]], payload: Mapping[str, Any],
+                  current: dict[str, dict[str, Any]], open_rows: dict[str, Any], snoozes: dict[str, Any], *,
+                  as_of: date | None, run_id: Any, now: datetime, min_rank: int,
+                  notify_cleared: bool) -> list[AlertEvent]:
+    """One model's alert events inside the run's transaction (its open alerts and snoozes read by the caller)."""
+    events: list[AlertEvent] = []
+    snoozes = dict(snoozes)
+    for cond in sorted(set(snoozes) - set(current)):
+        if as_of is not None and as_of >= snoozes[cond].until:
+            _end_snooze(conn, snoozes.pop(cond), "expired", now)
+    for cond in sorted(current):
+        sn = snoozes.get(cond)
+        row = open_rows.get(cond)
+        if sn is None:
+            events.append(_apply(conn, cfg, channels, payload, cond, current[cond], row, as_of=as_of,
+                                 run_id=run_id, now=now, min_rank=min_rank))
+            continue
+        events.append(_apply_snoozed(conn, cfg, channels, payload, cond, current[cond], row, sn,
+                                     as_of=as_of, run_id=run_id, now=now, min_rank=min_rank))
+    for cond in sorted(set(open_rows) - set(current)):
+        events.append(_clear(conn, cfg, channels, payload, open_rows[cond], as_of=as_of, run_id=run_id,
+                             now=now, notify=notify_cleared))
     return events
 
 

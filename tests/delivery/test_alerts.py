@@ -211,3 +211,34 @@ def test_alert_and_outbox_rows_commit_together(cfg: Any, store: Any, monkeypatch
 def test_naive_now_rejected(cfg: Any, store: Any) -> None:
     with pytest.raises(ValueError, match="now"):
         process_alerts(cfg, store, outcome(payload("k000", [])), now=dt.datetime(2025, 1, 1))
+
+
+def test_transactions_of_a_few_models_give_the_same_events_as_one(tmp_path: Path, monkeypatch: Any) -> None:
+    """process_alerts updates models in batches of ALERT_BATCH per transaction: the events, open alerts and
+    outbox rows are the same whatever the batch size (here 1, 3 and all), across opening, worse, unchanged
+    and cleared. Common practice, no source."""
+    import drift.delivery.alerts as al
+    from drift.store import open_store
+
+    def run(size: int) -> tuple[list[Any], list[Any], list[Any]]:
+        monkeypatch.setattr(al, "ALERT_BATCH", size)
+        folder = tmp_path / f"b{size}"
+        folder.mkdir()
+        cfg = make_cfg(folder, [{"kind": "folder", "path": "out"}], min_action="watch")
+        st = open_store("sqlite:///" + str(folder / "drift.db"))
+        first = [payload(f"k{i:03d}", [action("refit", since="2024-11-04")] if i % 2 else
+                         [action("watch", "watch")] if i % 3 else []) for i in range(7)]
+        second = [payload(f"k{i:03d}", [] if i % 2 else [action("watch", "act")] if i % 3 else
+                          [action("drop-driver", driver="x")], as_of="2026-01-05") for i in range(7)]
+        ev = process_alerts(cfg, st, outcome(*first), now=T0)
+        ev += process_alerts(cfg, st, outcome(*second, run_id=2), now=T0 + dt.timedelta(days=7))
+        events = [(e.model, e.condition, e.event, e.notified) for e in ev]
+        opened = [(a.model, a.condition, a.severity) for a in open_alerts(st)]
+        rows = [(r.channel, r.subject) for r in outbox_rows(st)]
+        st.dispose()
+        return events, opened, rows
+
+    whole = run(1000)
+    assert whole[0] and whole[1] and whole[2]
+    assert run(1) == whole
+    assert run(3) == whole
