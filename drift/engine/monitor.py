@@ -219,8 +219,8 @@ def _reference_fit(y: FloatArray, X: FloatArray, m: IntArray) -> ReferenceFit:
     n_ref = ref.sum(axis=1)
     Xr = np.where(ref[:, :, None], X, 0.0)
     yr = np.where(ref, y, 0.0)
-    xtx = np.einsum("mti,mtj->mij", Xr, Xr)
-    xty = np.einsum("mti,mt->mi", Xr, yr)
+    xtx = np.matmul(Xr.transpose(0, 2, 1), Xr)  # matmul: einsum's loops cost several times more here
+    xty = np.matmul(Xr.transpose(0, 2, 1), yr[:, :, None])[:, :, 0]
     # Rank check relative to the scale of the design (collinear or empty reference samples).
     sv = np.linalg.svd(xtx, compute_uv=False)
     full_rank = sv[:, -1] > sv[:, 0] * (k * np.finfo(float).eps * 1e4)
@@ -246,13 +246,13 @@ def _reference_fit(y: FloatArray, X: FloatArray, m: IntArray) -> ReferenceFit:
             continue
         x = np.where(active[:, None], X[:, t], 0.0)
         yt = np.where(active, y[:, t], 0.0)
-        Px = np.einsum("mij,mj->mi", P, x)
-        f = 1.0 + np.einsum("mi,mi->m", x, Px)
-        e = yt - np.einsum("mi,mi->m", x, b)
+        Px = np.matmul(P, x[:, :, None])[:, :, 0]
+        f = 1.0 + np.sum(x * Px, axis=1)
+        e = yt - np.sum(x * b, axis=1)
         w[:, t] = np.where(active, e / np.sqrt(f), np.nan)
         g = np.where(active, 1.0 / f, 0.0)
         b = b + Px * (e * g)[:, None]
-        P = P - np.einsum("mi,mj->mij", Px, Px * g[:, None])
+        P = P - Px[:, :, None] * (Px * g[:, None])[:, None, :]
     coef = np.where(ok[:, None], b_ref, np.nan)
     return ReferenceFit(coef=coef, sigma=np.where(ok, sigma, np.nan), nobs_reference=n_ref.astype(np.int64),
                         m=m, w=w, ok=ok)
@@ -762,16 +762,17 @@ def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
     ref = (np.arange(T)[None, :] < mb[:, None]) & finite
     X0 = np.where(finite[:, :, None], Xb, 0.0)
     Xr = np.where(ref[:, :, None], X0, 0.0)
-    G = np.einsum("mti,mtj->mij", Xr, Xr)
+    G = np.matmul(Xr.transpose(0, 2, 1), Xr)  # matmul, not einsum: einsum's loops cost 5-10x here
     P = np.linalg.pinv(G, hermitian=True)
     safe = np.where(cols >= 0, cols, 0)
     pj = np.take_along_axis(P, safe[:, None, :], axis=2).transpose(0, 2, 1)  # (M, J, k): rows P e_j
     pjj = np.take_along_axis(np.diagonal(P, axis1=1, axis2=2), safe, axis=1)  # (M, J)
     with np.errstate(invalid="ignore", divide="ignore"):
         c = pj / pjj[:, :, None]
-        xt = np.einsum("mtk,mjk->mjt", X0, c)  # (M, J, T)
+        xt = np.matmul(c, X0.transpose(0, 2, 1))  # (M, J, T)
         B = P[:, None, :, :] - pj[:, :, :, None] * pj[:, :, None, :] / pjj[:, :, None, None]
-        h = np.einsum("mti,mjik,mtk->mjt", X0, B, X0)  # leverage of x_-j at each row
+        XB = np.matmul(X0[:, None, :, :], B)  # (M, J, T, k)
+        h = np.sum(XB * X0[:, None, :, :], axis=3)  # leverage of x_-j at each row
         n_ref = ref.sum(axis=1).astype(float)
         s2 = np.sum(np.where(ref[:, None, :], xt, 0.0) ** 2, axis=2) / np.maximum(n_ref - k + 1, 1.0)[:, None]
         monitored = ~(np.arange(T)[None, :] < mb[:, None])
