@@ -135,14 +135,35 @@ def _feed_charts(feeds: list[tuple[str, np.ndarray, np.ndarray, dict[str, Any]]]
     """``charts['feeds']``: per series its chart's periods and first arrival times (ISO), then the rest."""
     per = np.concatenate([f[1] for f in feeds]) if feeds else _NO_NS
     at = np.concatenate([f[2] for f in feeds]) if feeds else _NO_NS
-    days = np.datetime_as_string(per.astype("datetime64[ns]"), unit="D").tolist()
-    times = [t + "+00:00" for t in np.datetime_as_string(at.astype("datetime64[ns]"), unit="s").tolist()]
+    days, times = _iso(per, "D"), _iso(at, "s")
     out: dict[str, Any] = {}
     i = 0
     for s, p, _a, rest in feeds:
         out[s] = {"periods": days[i:i + p.size], "available_at": times[i:i + p.size], **rest}
         i += p.size
     return out
+
+
+#: ISO texts of the dates and times the feeds' charts show, one str object per distinct value: the feeds of a
+#: check repeat the same few hundred dates (each its own string cost ~10 MB per 1,000 models held until the
+#: verdicts are saved); cleared when it grows past :data:`_ISO_MAX`
+_ISO: dict[str, dict[int, str]] = {"D": {}, "s": {}}
+_ISO_MAX = 100_000
+
+
+def _iso(values: np.ndarray, unit: str) -> list[str]:
+    """int64 ns -> ISO dates (``unit`` "D") or UTC times to the second (``unit`` "s", with ``+00:00``)."""
+    known = _ISO[unit]
+    if len(known) > _ISO_MAX:
+        known.clear()
+    keys = values.tolist()
+    out = [known.get(k) for k in keys]
+    miss = [j for j, t in enumerate(out) if t is None]
+    if miss:
+        texts = np.datetime_as_string(values[miss].astype("datetime64[ns]"), unit=unit).tolist()
+        for j, t in zip(miss, texts, strict=True):
+            out[j] = known.setdefault(keys[j], t if unit == "D" else t + "+00:00")
+    return out  # type: ignore[return-value]
 
 
 def _forward_feed(c: _Ctx, dr: Any, per: np.ndarray, at: np.ndarray
