@@ -1,6 +1,7 @@
 """Simulate the critical values of drift's sequential monitoring detectors and the Trigg signal quantiles.
 
-Writes ``drift/engine/tables/monitoring.py`` (committed). Run from the repository root::
+Writes ``drift/engine/tables/monitoring_data.py`` (committed; data only, the lookups are hand-written in
+``drift/engine/tables/monitoring.py``). Run from the repository root::
 
     python tools/simulate_monitoring.py            # full run (about a minute on 2 cores)
     python tools/simulate_monitoring.py --reps 2000 --out /tmp/m.py   # quick smoke run
@@ -129,146 +130,13 @@ def _fmt_rows(arr: np.ndarray) -> str:
     return "[\n" + "".join("        [" + ", ".join(f"{x:.4f}" for x in row) + "],\n" for row in arr) + "    ]"
 
 
-LOOKUP_CODE = '''
-
-def _row(table: dict, key: float, name: str) -> Any:
-    for k, v in table.items():
-        if abs(k - key) < 1e-12:
-            return v
-    raise ValueError(f"{name} must be one of {sorted(table)}, got {key!r}")
-
-
-def _interp_horizon(rows: Any, horizon: Any) -> np.ndarray:
-    """Rows of quantiles (len(HORIZONS), len(TAIL_PROBS)) interpolated linearly at each horizon.
-
-    Below the smallest tabulated horizon the smallest horizon's row is used (conservative: critical values
-    grow with the horizon). Above the largest a ValueError is raised.
-    """
-    horizon = np.atleast_1d(np.asarray(horizon, dtype=float))
-    if np.any(~np.isfinite(horizon)) or np.any(horizon <= 0):
-        raise ValueError("horizon must be positive and finite")
-    if np.any(horizon > HORIZONS[-1] + 1e-12):
-        raise ValueError(
-            f"horizon {float(horizon.max()):.3g} is beyond the simulated table (max {HORIZONS[-1]}); "
-            "extend tools/simulate_monitoring.py or monitor in shorter spans"
-        )
-    hz = np.asarray(HORIZONS)
-    rows = np.asarray(rows, dtype=float)
-    return np.stack([np.interp(horizon, hz, rows[:, j]) for j in range(rows.shape[1])], axis=-1)
-
-
-def _check_dof(dof: Any, shape: tuple[int, ...]) -> np.ndarray | None:
-    if dof is None:
-        return None
-    nu = np.broadcast_to(np.asarray(dof, dtype=float), shape)
-    if np.any(np.isnan(nu)) or np.any(nu < DOF[0] - 1e-12):
-        raise ValueError(f"dof must be >= {DOF[0]} (the smallest tabulated) or inf, got {dof!r}")
-    return nu
-
-
-def quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np.ndarray:
-    """Tabulated quantiles, shape ``horizon.shape + (len(TAIL_PROBS),)``, at each horizon and scale dof.
-
-    ``dof`` None (or inf): known scale (``CSW_FINITE`` / ``MOSUM`` / ``PAGE``). Otherwise the ``*_DOF``
-    tables, interpolated linearly in 1/dof between the tabulated ``DOF`` and the known-scale table at
-    1/dof = 0 (the quantiles are close to linear in 1/dof, as Student's t quantiles are). A dof below
-    ``DOF[0]`` raises ValueError.
-    """
-    known, by_dof = _table(detector, param)
-    horizon = np.atleast_1d(np.asarray(horizon, dtype=float))
-    base = _interp_horizon(known, horizon)
-    nu = _check_dof(dof, horizon.shape)
-    if nu is None:
-        return base
-    inv_grid = np.concatenate([[0.0], 1.0 / np.asarray(DOF[::-1], dtype=float)])
-    stack = np.stack([base] + [_interp_horizon(by_dof[d], horizon) for d in DOF[::-1]])
-    with np.errstate(divide="ignore"):
-        inv = np.where(np.isinf(nu), 0.0, 1.0 / nu)
-    i = np.clip(np.searchsorted(inv_grid, inv, side="right") - 1, 0, len(inv_grid) - 2)
-    w = ((inv - inv_grid[i]) / (inv_grid[i + 1] - inv_grid[i]))[..., None]
-    lo = np.take_along_axis(stack, i[None, ..., None], axis=0)[0]
-    hi = np.take_along_axis(stack, (i + 1)[None, ..., None], axis=0)[0]
-    return (1.0 - w) * lo + w * hi
-
-
-def critical_value(detector: str, param: float, horizon: Any, level: float, dof: Any = None) -> np.ndarray:
-    """Critical value of ``detector`` ("mosum": param = window fraction h; "page": param = gamma; "csw":
-    param ignored, returns the finite-horizon a^2) at false-alarm probability ``level`` over ``horizon``,
-    for a known scale (``dof`` None) or a scale estimated with ``dof`` degrees of freedom.
-
-    ``level`` is any probability in [min(TAIL_PROBS), max(TAIL_PROBS)]; between tabulated tail
-    probabilities the quantile is interpolated linearly in log(level) (the tail is close to exponential, so
-    this is accurate to the table's own Monte Carlo error; e.g. a Bonferroni share 0.05 / 4). Horizons are
-    interpolated linearly (see :func:`_interp_horizon` for the edges), dof linearly in 1/dof (see
-    :func:`quantiles`). Returns an array shaped like ``horizon``.
-    """
-    probs = np.asarray(TAIL_PROBS)
-    if not (probs.min() - 1e-12 <= level <= probs.max() + 1e-12):
-        raise ValueError(f"level must be in [{probs.min()}, {probs.max()}], got {level!r}")
-    q = quantiles(detector, param, horizon, dof)
-    j = [i for i, p in enumerate(TAIL_PROBS) if abs(p - level) < 1e-12]
-    if j:
-        return q[..., j[0]]
-    # TAIL_PROBS decrease: find the segment [hi, lo] of probabilities around level
-    i = int(np.searchsorted(-probs, -level))  # first index with prob < level
-    p_hi, p_lo = probs[i - 1], probs[i]
-    w = (np.log(p_hi) - np.log(level)) / (np.log(p_hi) - np.log(p_lo))
-    return (1.0 - w) * q[..., i - 1] + w * q[..., i]
-
-
-def pvalue(detector: str, param: float, horizon: Any, statistic: Any, dof: Any = None) -> np.ndarray:
-    """Approximate p-value by interpolating log tail probability against the tabulated quantiles.
-
-    Clipped to the tabulated range: a statistic below the median quantile gets 0.5 (read "p >= 0.5"), one
-    beyond the last quantile gets 0.005 (read "p <= 0.005"). NaN statistics give NaN. Vectorised.
-    """
-    stat = np.atleast_1d(np.asarray(statistic, dtype=float))
-    q = quantiles(detector, param, np.broadcast_to(horizon, stat.shape), dof)
-    logp = np.log(np.asarray(TAIL_PROBS))
-    finite = np.isfinite(stat)
-    s = np.where(finite, stat, 0.0)
-    j = np.clip((q <= s[..., None]).sum(axis=-1), 1, len(TAIL_PROBS) - 1)  # segment [j - 1, j]
-    q0 = np.take_along_axis(q, (j - 1)[..., None], axis=-1)[..., 0]
-    q1 = np.take_along_axis(q, j[..., None], axis=-1)[..., 0]
-    w = np.clip((s - q0) / (q1 - q0), 0.0, 1.0)
-    out = np.exp((1.0 - w) * logp[j - 1] + w * logp[j])
-    return np.where(finite, out, np.nan)
-
-
-def _table(detector: str, param: float) -> tuple[Any, dict]:
-    if detector == "mosum":
-        name = "mosum window fraction h"
-        return _row(MOSUM, param, name), _row(MOSUM_DOF, param, name)
-    if detector == "page":
-        return _row(PAGE, param, "page gamma"), _row(PAGE_DOF, param, "page gamma")
-    if detector == "csw":
-        return CSW_FINITE, CSW_FINITE_DOF
-    raise ValueError(f"detector must be 'mosum', 'page' or 'csw', got {detector!r}")
-
-
-def trigg_limit(alpha: float, level: float) -> float:
-    """Stationary (1 - level) quantile of |T| for iid normal errors and smoothing ``alpha``.
-
-    Only tabulated ``alpha`` and ``level`` are available (ValueError otherwise).
-    """
-    row: dict[float, float] | None = None
-    for a, v in TRIGG.items():
-        if abs(a - alpha) < 1e-12:
-            row = v
-    if row is None:
-        raise ValueError(f"alpha must be one of {sorted(TRIGG)} for a tabulated Trigg limit, got {alpha!r}")
-    for lvl, val in row.items():
-        if abs(lvl - level) < 1e-12:
-            return float(val)
-    raise ValueError(f"level must be one of {sorted(row)}, got {level!r}")
-'''
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=40000)
     ap.add_argument("--m", type=int, default=250, help="discretisation: steps per unit of monitoring time")
-    ap.add_argument("--out", default="drift/engine/tables/monitoring.py")
+    ap.add_argument("--out", default="drift/engine/tables/monitoring_data.py")
     args = ap.parse_args()
     rng = np.random.default_rng(SEED)
     t0 = time.time()
@@ -279,7 +147,8 @@ def main() -> None:
 
     parts = [f'''"""Simulated critical values for sequential monitoring and Trigg tracking-signal limits.
 
-GENERATED by ``tools/simulate_monitoring.py`` -- do not edit by hand; re-run the script instead.
+GENERATED by ``tools/simulate_monitoring.py`` -- do not edit by hand; re-run the script instead. Data only:
+the lookups are hand-written in :mod:`drift.engine.tables.monitoring`.
 
 Simulation record: seed {SEED}, {args.reps} replications, discretisation m = {args.m} steps per unit of
 monitoring time (horizon 1 = as many monitored observations as the reference sample), sigma known,
@@ -317,10 +186,6 @@ Arrays are indexed [horizon][tail probability] over ``HORIZONS`` x ``TAIL_PROBS`
 
 from __future__ import annotations
 
-from typing import Any
-
-import numpy as np
-
 SEED = {SEED}
 REPLICATIONS = {args.reps}
 DISCRETISATION = {args.m}
@@ -352,7 +217,6 @@ MOSUM = {{
     for a, row in trigg.items():
         parts.append(f"    {a!r}: {{" + ", ".join(f"{lvl!r}: {v:.4f}" for lvl, v in row.items()) + "},\n")
     parts.append("}\n")
-    parts.append(LOOKUP_CODE)
     text = "".join(parts).replace("    [\n", "    [\n")
     pathlib.Path(args.out).write_text(text)
     print(f"wrote {args.out} in {elapsed:.1f} s")

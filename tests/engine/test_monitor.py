@@ -426,3 +426,19 @@ def test_batch_with_degenerate_model_and_nan_rows() -> None:
         assert np.isnan(r.statistic[1]) and r.alarm_index[1] == -1 and np.isnan(r.pvalue[1])
         assert np.isfinite(r.statistic[[0, 2]]).all()
         assert r.nobs[2] == 27 and r.params["degenerate_models"] == 1
+
+
+def test_table_lookup_once_per_distinct_horizon_and_dof_equals_the_elementwise_lookup() -> None:
+    """monitoring.quantiles looks each distinct (horizon, dof) pair up once and spreads the rows back: the
+    same numbers as looking every element up (repeats, infinite dof, a 2-D batch). Common practice, no source."""
+    from drift.engine.tables import monitoring as tab
+
+    rng = np.random.default_rng(7)
+    h = rng.choice([0.25, 0.5, 1.0, 2.7], size=(6, 5))
+    nu = rng.choice([8.0, 50.0, np.inf], size=(6, 5))
+    for detector, param in (("page", 0.25), ("mosum", 0.25), ("csw", 0.0)):
+        for dof in (None, nu):
+            got = tab.quantiles(detector, param, h, dof)
+            want = tab._quantiles(detector, param, h, dof)
+            assert got.shape == want.shape == (6, 5, len(tab.TAIL_PROBS))
+            np.testing.assert_array_equal(got, want)
