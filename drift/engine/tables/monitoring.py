@@ -7,6 +7,7 @@ Hand-written, one copy: the generator writes the data module only.
 
 from __future__ import annotations
 
+import functools
 from typing import Any
 
 import numpy as np
@@ -37,10 +38,12 @@ def _row(table: dict, key: float, name: str) -> Any:
 
 
 def _interp_horizon(rows: Any, horizon: Any) -> np.ndarray:
-    """Rows of quantiles (len(HORIZONS), len(TAIL_PROBS)) interpolated linearly at each horizon.
+    """Rows of quantiles (..., len(HORIZONS), len(TAIL_PROBS)) interpolated linearly at each horizon:
+    shape (..., *horizon.shape, len(TAIL_PROBS)); the leading axes (several tables) in one step.
 
     Below the smallest tabulated horizon the smallest horizon's row is used (conservative: critical values
-    grow with the horizon). Above the largest a ValueError is raised.
+    grow with the horizon). Above the largest a ValueError is raised. The arithmetic is ``np.interp``'s
+    (slope times distance from the left knot, plus the left value).
     """
     horizon = np.atleast_1d(np.asarray(horizon, dtype=float))
     if np.any(~np.isfinite(horizon)) or np.any(horizon <= 0):
@@ -52,7 +55,12 @@ def _interp_horizon(rows: Any, horizon: Any) -> np.ndarray:
         )
     hz = np.asarray(HORIZONS)
     rows = np.asarray(rows, dtype=float)
-    return np.stack([np.interp(horizon, hz, rows[:, j]) for j in range(rows.shape[1])], axis=-1)
+    x = np.clip(horizon.ravel(), hz[0], hz[-1])
+    j = np.clip(np.searchsorted(hz, x, side="right") - 1, 0, len(hz) - 2)
+    left = rows[..., j, :]
+    slope = (rows[..., j + 1, :] - left) / (hz[j + 1] - hz[j])[:, None]
+    out = slope * (x - hz[j])[:, None] + left
+    return out.reshape(rows.shape[:-2] + horizon.shape + rows.shape[-1:])
 
 
 def _check_dof(dof: Any, shape: tuple[int, ...]) -> np.ndarray | None:
@@ -85,16 +93,15 @@ def _quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np
     ``dof`` None (or inf): known scale (``CSW_FINITE`` / ``MOSUM`` / ``PAGE``). Otherwise the ``*_DOF``
     tables, interpolated linearly in 1/dof between the tabulated ``DOF`` and the known-scale table at
     1/dof = 0 (the quantiles are close to linear in 1/dof, as Student's t quantiles are). A dof below
-    ``DOF[0]`` raises ValueError.
+    ``DOF[0]`` raises ValueError. Horizons as :func:`_interp_horizon`, all tables in one step.
     """
-    known, by_dof = _table(detector, param)
+    stacked = _stacked(detector, float(param))  # (1 + len(DOF), len(HORIZONS), len(TAIL_PROBS))
     horizon = np.atleast_1d(np.asarray(horizon, dtype=float))
-    base = _interp_horizon(known, horizon)
     nu = _check_dof(dof, horizon.shape)
     if nu is None:
-        return base
+        return _interp_horizon(stacked[0], horizon)
     inv_grid = np.concatenate([[0.0], 1.0 / np.asarray(DOF[::-1], dtype=float)])
-    stack = np.stack([base] + [_interp_horizon(by_dof[d], horizon) for d in DOF[::-1]])
+    stack = _interp_horizon(stacked, horizon)
     with np.errstate(divide="ignore"):
         inv = np.where(np.isinf(nu), 0.0, 1.0 / nu)
     i = np.clip(np.searchsorted(inv_grid, inv, side="right") - 1, 0, len(inv_grid) - 2)
@@ -102,6 +109,15 @@ def _quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np
     lo = np.take_along_axis(stack, i[None, ..., None], axis=0)[0]
     hi = np.take_along_axis(stack, (i + 1)[None, ..., None], axis=0)[0]
     return (1.0 - w) * lo + w * hi
+
+
+@functools.lru_cache(maxsize=64)
+def _stacked(detector: str, param: float) -> np.ndarray:
+    """The known-scale table and the estimated-scale tables of ``DOF[::-1]`` as one read-only array."""
+    known, by_dof = _table(detector, param)
+    arr = np.stack([np.asarray(known, dtype=float)] + [np.asarray(by_dof[d], dtype=float) for d in DOF[::-1]])
+    arr.setflags(write=False)
+    return arr
 
 
 def critical_value(detector: str, param: float, horizon: Any, level: float, dof: Any = None) -> np.ndarray:
