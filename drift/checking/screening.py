@@ -242,16 +242,18 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
         # at 5%, their crossings pile up on stable models (their sequential versions are the family's CUSUM
         # and variance monitors). Their date is the first check of the standing crossing (first_signal).
         if retro is not None and enough[i]:
+            retro_date: dict[str, str | None] = {}
             for name, rdates, rstat, rpv, rcrit in retro:
                 fc_idx = rdates[i]
+                retro_date[name] = per[fc_idx - o] if fc_idx >= 0 else None
                 c.tests.append({"test": name, "statistic": _num(rstat[i]), "pvalue": _num(rpv[i]),
                                 "threshold": None if rcrit is None else _num(rcrit[i]), "level": 0.05,
-                                "date": per[fc_idx - o] if fc_idx >= 0 else None})
+                                "date": retro_date[name]})
             # the retrospective CUSUM (kept for the chart when no monitor ran): its own crossing date only
             c.charts["cusum"] = {
                 "path": cus_path[i, sl].tolist(),
                 "bounds": {lvl: b[i, sl].tolist() for lvl, b in cus_bounds.items()},
-                "alarm_date": next((t["date"] for t in c.tests if t["test"] == "cusum"), None)}
+                "alarm_date": retro_date["cusum"]}
         # rolling coefficients
         if roll is not None:
             c.charts["_roll_coef"] = np.atleast_3d(roll.coef)[i, sl]  # the full model's rolling fit, reused

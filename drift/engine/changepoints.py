@@ -37,22 +37,22 @@ from __future__ import annotations
 import itertools
 import math
 import sys
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import ruptures as rpt
 from scipy import stats
 
 from drift.engine.results import TestResult
 from drift.exceptions import InsufficientDataError
 from drift.typing import FloatArray, IntArray
 
-__all__ = ["COSTS", "METHODS", "ChangePointResult", "Segment", "change_points", "check_partition"]
+__all__ = ["COSTS", "METHODS", "ChangePointResult", "Segment", "change_points", "check_partition"]  # noqa: F822 - METHODS: __getattr__
 
-# registry: short name -> ruptures search class
-METHODS: dict[str, Callable[..., Any]] = {"pelt": rpt.Pelt, "binseg": rpt.Binseg, "dynp": rpt.Dynp}
+#: the searches change_points takes (``METHODS``, short name -> ruptures search class, is built on first use:
+#: importing ruptures costs ~0.5 s, and the check's l2 PELT search does not need it)
+_METHOD_NAMES = ("pelt", "binseg", "dynp")
 COSTS = ("linear", "l2")
 DEFAULT_TRIM = 0.15  # minimum segment as a fraction of n: the usual break-test trimming (Andrews 1993)
 
@@ -120,50 +120,70 @@ def _robust_sigma2(e: FloatArray, p: int) -> float:
     return float(e @ e) / dof
 
 
-class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
-    """Regression RSS of a segment, computed from explicit residuals.
-
-    ruptures' own ``CostLinear`` takes the RSS from ``numpy.linalg.lstsq``, which returns an empty
-    residual (cost 0) whenever the segment's regressors are rank deficient; this cost does not.
-    """
-
-    model = "linear_rss"
-    min_size = 2
-
-    def fit(self, signal: FloatArray) -> _LinearRSS:
-        self.signal = signal[:, 0]
-        self.covar = signal[:, 1:]
-        return self
-
-    def error(self, start: int, end: int) -> float:
-        if end - start < self.min_size:
-            raise rpt.costs.NotEnoughPoints
-        _, r = _ols(self.signal[start:end], self.covar[start:end])
-        return float(r @ r)
+_RUPTURES: dict[str, Any] = {}
 
 
-class _CumL2(rpt.base.BaseCost):  # type: ignore[misc]
-    """Sum of squared deviations from the segment mean, O(1) per segment from cumulative sums.
+def _ruptures() -> dict[str, Any]:
+    """ruptures and what is built on it (``rpt``, ``METHODS``, the costs ``_LinearRSS`` and ``_CumL2``),
+    imported on first use; also what the module's ``__getattr__`` gives for those names."""
+    if _RUPTURES:
+        return _RUPTURES
+    import ruptures as rpt
 
-    Same value as ruptures' ``CostL2`` (which recomputes the variance of every candidate segment, the
-    dominant cost of a jump=1 search); the series is centred first so the running sums stay accurate.
-    """
+    class _LinearRSS(rpt.base.BaseCost):  # type: ignore[misc]
+        """Regression RSS of a segment, computed from explicit residuals.
 
-    model = "l2_cumulative"
-    min_size = 1
+        ruptures' own ``CostLinear`` takes the RSS from ``numpy.linalg.lstsq``, which returns an empty
+        residual (cost 0) whenever the segment's regressors are rank deficient; this cost does not.
+        """
 
-    def fit(self, signal: FloatArray) -> _CumL2:
-        self.signal = np.asarray(signal, dtype=float).reshape(len(signal), -1)
-        v = self.signal[:, 0] - self.signal[:, 0].mean()
-        self.s1 = np.concatenate([[0.0], np.cumsum(v)])
-        self.s2 = np.concatenate([[0.0], np.cumsum(v * v)])
-        return self
+        model = "linear_rss"
+        min_size = 2
 
-    def error(self, start: int, end: int) -> float:
-        if end - start < self.min_size:
-            raise rpt.costs.NotEnoughPoints
-        s1 = self.s1[end] - self.s1[start]
-        return float(max(self.s2[end] - self.s2[start] - s1 * s1 / (end - start), 0.0))
+        def fit(self, signal: FloatArray) -> _LinearRSS:
+            self.signal = signal[:, 0]
+            self.covar = signal[:, 1:]
+            return self
+
+        def error(self, start: int, end: int) -> float:
+            if end - start < self.min_size:
+                raise rpt.costs.NotEnoughPoints
+            _, r = _ols(self.signal[start:end], self.covar[start:end])
+            return float(r @ r)
+
+
+    class _CumL2(rpt.base.BaseCost):  # type: ignore[misc]
+        """Sum of squared deviations from the segment mean, O(1) per segment from cumulative sums.
+
+        Same value as ruptures' ``CostL2`` (which recomputes the variance of every candidate segment, the
+        dominant cost of a jump=1 search); the series is centred first so the running sums stay accurate.
+        """
+
+        model = "l2_cumulative"
+        min_size = 1
+
+        def fit(self, signal: FloatArray) -> _CumL2:
+            self.signal = np.asarray(signal, dtype=float).reshape(len(signal), -1)
+            v = self.signal[:, 0] - self.signal[:, 0].mean()
+            self.s1 = np.concatenate([[0.0], np.cumsum(v)])
+            self.s2 = np.concatenate([[0.0], np.cumsum(v * v)])
+            return self
+
+        def error(self, start: int, end: int) -> float:
+            if end - start < self.min_size:
+                raise rpt.costs.NotEnoughPoints
+            s1 = self.s1[end] - self.s1[start]
+            return float(max(self.s2[end] - self.s2[start] - s1 * s1 / (end - start), 0.0))
+
+    _RUPTURES.update(rpt=rpt, METHODS={"pelt": rpt.Pelt, "binseg": rpt.Binseg, "dynp": rpt.Dynp},
+                     _LinearRSS=_LinearRSS, _CumL2=_CumL2)
+    return _RUPTURES
+
+
+def __getattr__(name: str) -> Any:
+    if name in ("rpt", "METHODS", "_LinearRSS", "_CumL2"):
+        return _ruptures()[name]
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 #: Python's ``sum`` of floats adds left to right before 3.12 (compensated summation since): a partition's
@@ -186,9 +206,12 @@ def _pelt_l2(signal: FloatArray, pen: float, min_size: int) -> list[int]:
     """
     n = int(signal.shape[0])
     if min_size > n:  # ruptures' sanity check for no change
-        raise rpt.exceptions.BadSegmentationParameters
-    cost = _CumL2().fit(signal)
-    s1, s2 = cost.s1, cost.s2
+        raise _ruptures()["rpt"].exceptions.BadSegmentationParameters
+    # _CumL2's running sums (its fit, the same operations)
+    sig = np.asarray(signal, dtype=float).reshape(len(signal), -1)
+    v = sig[:, 0] - sig[:, 0].mean()
+    s1 = np.concatenate([[0.0], np.cumsum(v)])
+    s2 = np.concatenate([[0.0], np.cumsum(v * v)])
     total = np.zeros(n + 1)  # total cost of the optimal partition of 0..t
     values: dict[int, list[float]] = {0: [0]}  # its segment costs in order (compensated sum only)
     back = np.zeros(n + 1, dtype=np.int64)
@@ -235,7 +258,7 @@ def _penalised_fixed_k(algo: Any, pen: float, kmax: int) -> list[int]:
     for k in range(1, kmax + 1):
         try:
             bk = algo.predict(n_bkps=k)
-        except rpt.exceptions.BadSegmentationParameters:
+        except _ruptures()["rpt"].exceptions.BadSegmentationParameters:
             break
         val = algo.cost.sum_of_costs(bk) + pen * k
         if val < best_val:
@@ -294,8 +317,8 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
     Truong, C., Oudre, L. & Vayatis, N. (2020). Selective review of offline change point detection
     methods. Signal Processing 167 (the ruptures package).
     """
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {sorted(METHODS)}, got {method!r}")
+    if method not in _METHOD_NAMES:
+        raise ValueError(f"method must be one of {sorted(_METHOD_NAMES)}, got {method!r}")
     if cost not in COSTS:
         raise ValueError(f"cost must be one of {COSTS}, got {cost!r}")
     try:
@@ -375,8 +398,9 @@ def change_points(y: object, X: object = None, *, method: str = "pelt", cost: st
             if cost == "l2" and method == "pelt":
                 bk = _pelt_l2(signal, pen, ms)  # ruptures' Pelt, the same arithmetic, without its overhead
             else:
-                algo = METHODS[method](custom_cost=_CumL2() if cost == "l2" else _LinearRSS(), min_size=ms,
-                                       jump=1).fit(signal)
+                rp = _ruptures()
+                algo = rp["METHODS"][method](custom_cost=rp["_CumL2"]() if cost == "l2" else rp["_LinearRSS"](),
+                                             min_size=ms, jump=1).fit(signal)
                 if method == "pelt":
                     bk = algo.predict(pen=pen)
                 else:
