@@ -74,3 +74,17 @@ def test_latest_values_of_many_frames_equal_one_filtered_frame_per_series() -> N
             want = latest_values(frame[frame["series"] == s], g)
             np.testing.assert_array_equal(values[s], want)
     assert np.isfinite(got[0]["m0_x1"]).sum() > 20 and (got[0]["m0_x1"] == -9.0).any()
+    # the same from the observations as arrays, every model's series sorted together
+    from drift.checking.drivers import _latest_of_vintages
+    from drift.panel import Vintages, as_ns
+
+    jobs = []
+    for frame, names, g in zip(frames, wanted, grids):
+        gv = as_ns(g.tz_convert(None) if g.tz is not None else g)
+        for s in names:
+            part = frame[frame["series"] == s]
+            if len(part):
+                jobs.append((Vintages.from_frame(part), gv, np.full(gv.size, np.nan), latest_values(part, g)))
+    _latest_of_vintages([j[:3] for j in jobs])
+    for _, _, out, want in jobs:
+        np.testing.assert_array_equal(out, want)

@@ -23,7 +23,7 @@ from drift.checking.context import _Ctx, _list, _num, log
 from drift.checking.designs import _prewhiten
 from drift.config import MAX_LAG_BY_FREQ, period_length
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import as_ns, build_design, latest_values
+from drift.panel import as_ns, build_design
 from drift.verdicts import Action, fmt_num, fmt_p, window_words
 
 
@@ -131,7 +131,10 @@ def _drivers_and_worth(c: _Ctx) -> None:
         _worth_fits([c])
     c.charts.pop("_roll_coef", None)
     worth = c.charts.pop("_worth")
-    last = {s: f.get("last_period") for s, f in c.charts.get("feeds", {}).items()}
+    feeds = c.charts.get("feeds", {})
+    coefficients = c.charts.get("coefficients", {})
+    effects = c.charts.get("_effects", {})
+    days: dict[tuple[int, int], tuple[str, str]] = {}
     for dr in c.model.drivers:
         s = dr.series
         if s not in d.driver_columns:
@@ -139,19 +142,21 @@ def _drivers_and_worth(c: _Ctx) -> None:
         j = d.driver_columns[s]
         info: dict[str, Any] = {"series": s, "lag": d.lags.get(s, dr.lag), "form": dr.form,
                                 "coef_reference": _num(round(float(ref_coef[j]), 6))}
-        coefs = c.charts.get("coefficients", {}).get(s)
+        coefs = coefficients.get(s)
         if coefs:
             lastc = next((k for k in range(len(coefs["coef"]) - 1, -1, -1) if coefs["coef"][k] is not None), None)
             if lastc is not None:
                 info["coef_recent"] = coefs["coef"][lastc]
                 info["ci_recent"] = [coefs["lower"][lastc], coefs["upper"][lastc]]
                 w = int(coefs.get("window") or window)
-                info["recent_window"] = {"start": _day(d.periods, max(0, lastc - w + 1)),
-                                         "end": _day(d.periods, lastc), "n": w}
-        if s in c.charts.get("_effects", {}):
-            info["break"] = c.charts["_effects"][s]  # the refit's before/after figures (same object)
-        feed = c.charts.get("feeds", {}).get(s, {})
-        info["last_period"] = last.get(s)
+                a, b = max(0, lastc - w + 1), lastc
+                if (a, b) not in days:  # the drivers share one window: its dates made once per model
+                    days[a, b] = _days(d.periods, a, b)
+                info["recent_window"] = {"start": days[a, b][0], "end": days[a, b][1], "n": w}
+        if s in effects:
+            info["break"] = effects[s]  # the refit's before/after figures (same object)
+        feed = feeds.get(s, {})
+        info["last_period"] = feed.get("last_period")
         info["next_due"] = feed.get("next_due")
         info["late"] = bool(feed.get("late", False))
         # worth keeping: forecasts y - e over the recent window
@@ -189,11 +194,13 @@ def _drivers_and_worth(c: _Ctx) -> None:
         c.drivers.append(info)
 
 
-def _day(periods: pd.DatetimeIndex, i: int) -> str:
-    """``periods[i].date().isoformat()``, without making a Timestamp for a naive index."""
+def _days(periods: pd.DatetimeIndex, a: int, b: int) -> tuple[str, str]:
+    """``periods[i].date().isoformat()`` for ``i`` = ``a`` and ``b``, without making a Timestamp for a naive
+    index."""
     if periods.tz is None:
-        return str(np.datetime_as_string(periods.values[i], unit="D"))
-    return periods[i].date().isoformat()  # type: ignore[no-any-return]
+        both = np.datetime_as_string(periods.values[[a, b]], unit="D")
+        return str(both[0]), str(both[1])
+    return periods[a].date().isoformat(), periods[b].date().isoformat()
 
 
 def _rolling_forecast_errors(Y: np.ndarray, X: np.ndarray, window: int, *, start: int = 0) -> np.ndarray:
@@ -385,17 +392,49 @@ def _latest_values(ctxs: list[_Ctx], series: list[list[str]]) -> list[dict[str, 
         # every grid as drift.panel.as_ns gives it (UTC for aware ones), converted at once
         grids = as_ns(np.concatenate([_utc_values(ctxs[i].design.periods) for i in arrays]))
         at = 0
+        jobs: list[tuple[Any, np.ndarray, np.ndarray]] = []  # (vintages, grid, where the values go)
         for i in arrays:
             c = ctxs[i]
             rp = grids[at:at + c.design.n]
             at += c.design.n
             vint = c.vintages or {}
-            out[i] = {s: latest_values(vint[s], rp) if s in vint else np.full(rp.size, np.nan) for s in series[i]}
+            out[i] = {s: np.full(rp.size, np.nan) for s in series[i]}
+            jobs.extend((vint[s], rp, out[i][s]) for s in series[i] if s in vint and len(vint[s]) and rp.size)
+        if jobs:
+            _latest_of_vintages(jobs)
     if framed:
         for i, got in zip(framed, _latest_by_series([ctxs[i].obs for i in framed], [series[i] for i in framed],
                                                     [ctxs[i].design.periods for i in framed])):
             out[i] = got
     return out
+
+
+def _latest_of_vintages(jobs: list[tuple[Any, np.ndarray, np.ndarray]]) -> None:
+    """For each job ``(vintages, grid, out)``: ``out[:] = latest_values(vintages, grid)``
+    (:func:`drift.panel.latest_values`: the latest known vintage of each period, the one with the latest
+    ``available``, the later row on a tie), every job's vintages sorted in one pass."""
+    sizes = np.array([len(v) for v, _, _ in jobs])
+    group = np.repeat(np.arange(len(jobs)), sizes)
+    vp = np.concatenate([v.period for v, _, _ in jobs])
+    at = np.concatenate([v.available for v, _, _ in jobs])
+    val = np.concatenate([v.value for v, _, _ in jobs])
+    order = np.lexsort((np.arange(vp.size), at, vp, group))  # by job, period, time, row order
+    g_s, p_s = group[order], vp[order]
+    last = np.r_[(g_s[1:] != g_s[:-1]) | (p_s[1:] != p_s[:-1]), True]  # last row of each (job, period)
+    g_last, p_last, v_last = g_s[last], p_s[last], val[order][last]
+    # a period as its rank among the stored ones, so that (job, period rank) is one sorted number
+    known = np.unique(p_last)
+    key_last = g_last * known.size + np.searchsorted(known, p_last)
+    wp = np.concatenate([rp for _, rp, _ in jobs])
+    wg = np.repeat(np.arange(len(jobs)), [rp.size for _, rp, _ in jobs])
+    r = np.minimum(np.searchsorted(known, wp), known.size - 1)
+    key = wg * known.size + r
+    k = np.minimum(np.searchsorted(key_last, key), key_last.size - 1)
+    found = np.where((known[r] == wp) & (key_last[k] == key), v_last[k], np.nan)
+    pos = 0
+    for _, rp, out in jobs:
+        out[:] = found[pos:pos + rp.size]
+        pos += rp.size
 
 
 def _utc_values(grid: Any) -> np.ndarray:

@@ -118,8 +118,7 @@ def _fit_ar_aic(x: FloatArray, max_ar: int) -> tuple[FloatArray, IntArray]:
         else:
             Zp = Z[:, :, :p]
             A = G[:, :p, :p] + np.eye(p) * 1e-12 * yy[:, None, None]
-            # pseudo-inverse: a constant (or all-zero) series gives A = 0 and coefficients 0, not an error
-            coef = (np.linalg.pinv(A, hermitian=True) @ cz[:, :p, None])[:, :, 0]
+            coef = _solve_normal(A, cz[:, :p])
             r = yv - (Zp @ coef[:, :, None])[:, :, 0]
             rss = np.einsum("mt,mt->m", r, r)
         with np.errstate(divide="ignore"):
@@ -131,6 +130,27 @@ def _fit_ar_aic(x: FloatArray, max_ar: int) -> tuple[FloatArray, IntArray]:
         padded[:, :p] = coef
         best = np.where(better[:, None], padded, best)
     return best, order
+
+
+def _solve_normal(A: FloatArray, c: FloatArray) -> FloatArray:
+    """(M, p) ``pinv(A[m]) @ c[m]`` for symmetric positive semi-definite (M, p, p) ``A``: a model whose
+    Cholesky factor is well conditioned (its smallest diagonal entry at least 1e-3 of its largest) by a
+    linear solve, the others by the pseudo-inverse (a constant or all-zero series gives A = 0 and
+    coefficients 0, not an error)."""
+    good = (np.diagonal(A, axis1=1, axis2=2) > 0).all(axis=1) & np.isfinite(A).all(axis=(1, 2))
+    coef = np.zeros(c.shape)
+    if good.any():
+        try:
+            d = np.diagonal(np.linalg.cholesky(A[good]), axis1=1, axis2=2)
+            good[good] = (d.min(axis=1) >= 1e-3 * d.max(axis=1)) & (d.min(axis=1) > 0)
+        except np.linalg.LinAlgError:  # one model not positive definite: every model by the pseudo-inverse
+            good[:] = False
+    if good.any():
+        coef[good] = np.linalg.solve(A[good], c[good][:, :, None])[:, :, 0]
+    bad = ~good
+    if bad.any():
+        coef[bad] = (np.linalg.pinv(A[bad], hermitian=True) @ c[bad][:, :, None])[:, :, 0]
+    return coef
 
 
 def _apply_ar(v: FloatArray, phi: FloatArray) -> FloatArray:
