@@ -329,10 +329,13 @@ def _lag_fill(started: list[tuple[_Ctx, np.ndarray]]) -> None:
     n_ref = [c.design.n_ref for c, _ in started]
     b_det = _ols_by_shape([(dets[i][: n_ref[i]], xv[: n_ref[i]], np.isfinite(xv[: n_ref[i]])) for i, _, xv in todo])
     items: list[list[tuple[Any, np.ndarray, np.ndarray]]] = [[] for _ in started]
+    fits: dict[int, np.ndarray] = {}  # each model's reference fit, shared by its drivers
     for (i, dr, xv), b in zip(todo, b_det):
         d = started[i][0].design
         j = d.driver_columns[dr.series]
-        fitted = d.X @ b_ref[i]
+        if i not in fits:
+            fits[i] = d.X @ b_ref[i]
+        fitted = fits[i]
         items[i].append((dr, d.y - fitted + d.X[:, j] * b_ref[i][j], xv - dets[i] @ b))
     for (c, _), skip, its in zip(started, skips, items):
         c.charts["lag_profile_skipped"].update(skip)
@@ -497,7 +500,8 @@ def _latest_by_series(frames: list[pd.DataFrame], series: list[list[str]],
 def _lag_profiles_batched(ctxs: list[_Ctx]) -> None:
     """The lag profiles of every model's lagged drivers, one engine call per window shape for the whole
     chunk instead of two per driver and model (the same numbers: each row of the batched call is computed
-    on its own). Kept in ``charts['_lag_profiles']``; a model whose inputs fail here, or a batch the engine
+    on its own). Kept in ``charts['_lag_profiles']`` (driver -> reference and recent profiles and their
+    payload lists); a model whose inputs fail here, or a batch the engine
     refuses (one series too short or constant), is left to :func:`_lag_drift`, which computes and reports
     it model by model."""
     jobs: dict[tuple[int, int, int], list[tuple[_Ctx, str, np.ndarray, np.ndarray]]] = {}
@@ -531,8 +535,17 @@ def _profile_group(group: list[tuple[_Ctx, str, np.ndarray, np.ndarray]], n_ref:
         _profile_group(group[:half], n_ref, recent_n, max_lag)
         _profile_group(group[half:], n_ref, recent_n, max_lag)
         return
+    ref_lists, rec_lists = _lists(lp_ref.ccf), _lists(lp_rec.ccf)  # the payload's figures, all rows at once
     for i, (c, s, _, _) in enumerate(group):
-        c.charts["_lag_profiles"][s] = (_row(lp_ref, i), _row(lp_rec, i))
+        c.charts["_lag_profiles"][s] = (_row(lp_ref, i), _row(lp_rec, i), ref_lists[i], rec_lists[i])
+
+
+def _lists(a: np.ndarray) -> list[list[float | None]]:
+    """:func:`drift.checking.context._list` of each row of ``a`` (rounded to 6 decimals, NaN/inf as None)."""
+    x = np.asarray(a, float)
+    out = np.round(x, 6).astype(object)
+    out[~np.isfinite(x)] = None
+    return out.tolist()  # type: ignore[no-any-return]
 
 
 def _row(lp: Any, i: int) -> Any:
@@ -555,11 +568,12 @@ def _lag_drift(c: _Ctx) -> None:
         s = dr.series
         try:
             if s in done:
-                lp_ref, lp_rec = done[s]
+                lp_ref, lp_rec, l_ref, l_rec = done[s]
             else:
                 with np.errstate(invalid="ignore", divide="ignore"):
                     lp_ref = engine.lag_profile(ry[: d.n_ref], rx[: d.n_ref], max_lag)
                     lp_rec = engine.lag_profile(ry[d.n - recent_n:], rx[d.n - recent_n:], max_lag)
+                l_ref, l_rec = None, None
         except (DriftError, np.linalg.LinAlgError) as exc:
             log.info("model %s: no lag profile for %s: %s", m.name, s, exc)
             skipped[s] = f"cannot be computed ({exc})"
@@ -568,8 +582,9 @@ def _lag_drift(c: _Ctx) -> None:
             skipped[s] = "constant: no cross-correlation"
             continue
         cur = d.lags.get(s, dr.lag)
-        profiles[s] = {"lags": list(range(max_lag + 1)), "reference": _list(lp_ref.ccf),
-                       "recent": _list(lp_rec.ccf), "band_reference": _num(lp_ref.band),
+        profiles[s] = {"lags": list(range(max_lag + 1)),
+                       "reference": _list(lp_ref.ccf) if l_ref is None else l_ref,
+                       "recent": _list(lp_rec.ccf) if l_rec is None else l_rec, "band_reference": _num(lp_ref.band),
                        "band_recent": _num(lp_rec.band), "current_lag": cur}
         new = int(lp_rec.peak_lag)
         # the peak must clear a band corrected for scanning max_lag + 1 lags (Bonferroni)
