@@ -187,10 +187,12 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
         sk = np.atleast_3d(roll.se).transpose(2, 0, 1)[used]
         pos = {j: p for p, j in enumerate(used)}
         roll_rows = (_rows(ck), _rows(ck - 1.96 * sk), _rows(ck + 1.96 * sk))
+    pers = [dates.of(c.design.periods) for c in group]
+    mon_charts = _monitor_charts(group, off, specs, mons, levels, mon_vals, pers)
     for i, c in enumerate(group):
         o, d = int(off[i]), c.design
         sl = slice(o, None)
-        per = dates.of(d.periods)
+        per = pers[i]
         c.charts["periods"] = list(per)
         c.charts["monitor_start_index"] = int(d.n_ref)
         fe = rf.forecast_error[i, sl]
@@ -230,7 +232,8 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
                                  "statistic": _num(round(wstat_l[i], 4)),
                                  "threshold": 1.0, "level": _num(round(wl, 6)), "warning": True,
                                  **({"beyond_horizon": True} if wi >= h_end else {})})
-        _monitor_chart(c, i, o, specs, mons, levels, vals=mon_vals, dates=per)
+        if mon_charts[i] is not None:
+            c.charts[mon_charts[i][0]] = mon_charts[i][1]
         if trigg is not None:
             last = trigg_last[i]
             fs = trigg_first[i] - o
@@ -313,6 +316,54 @@ def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
     except InsufficientDataError as exc:
         log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
         return None
+
+
+def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, str, int | None]],
+                    mons: list[Any], levels: list[tuple[float, float]], vals: list[Any],
+                    dates: list[list[str]]) -> list[tuple[str, Any] | None]:
+    """:func:`_monitor_chart` for every model of the batch: each model's (charts key, value), None when it
+    draws no monitor. The monitor is chosen per model as there; the paths and boundaries of the models
+    that draw the same monitor are rounded and turned into JSON values together (:func:`_rows`)."""
+    out: list[tuple[str, Any] | None] = [None] * len(group)
+    chosen: dict[int, list[int]] = {}
+    for i, c in enumerate(group):
+        n_d = len(c.design.driver_columns)
+        best: tuple[tuple[int, float], int] | None = None
+        for s, ((_name, _det, j), r) in enumerate(zip(specs, mons)):
+            if r is None or (j is not None and j >= n_d) or getattr(r, "path", None) is None:
+                continue
+            if vals[s] is not None:
+                ai, stat = vals[s][0][i], vals[s][2][i]
+            else:
+                ai = int(np.atleast_1d(r.alarm_index)[i])
+                stat = float(np.atleast_1d(r.statistic)[i])
+            key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
+            if best is None or key < best[0]:
+                best = (key, s)
+        if best is not None:
+            chosen.setdefault(best[1], []).append(i)
+    for s, idx in chosen.items():
+        (name, _det, j), r, (lv, _wl) = specs[s], mons[s], levels[s]
+        path = np.atleast_2d(np.asarray(r.path, float))
+        bound = np.atleast_2d(np.asarray(r.boundary, float))
+        ai_all = np.atleast_1d(r.alarm_index)
+        pr, br = _rows(path[idx]), _rows(bound[idx])
+        level = _num(round(float(lv), 6))
+        for p, i in enumerate(idx):
+            c, o = group[i], int(off[i])
+            drivers_i = list(c.design.driver_columns)
+            n = c.design.n
+            if path.shape[1] != o + n or bound.shape[1] != o + n:
+                out[i] = ("monitor_note", f"the {name} path does not line up with the periods; not drawn")
+                continue
+            ai = int(ai_all[i])
+            per = dates[i]
+            out[i] = ("monitor", {
+                "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
+                "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
+                "path": pr[p, o:].tolist(), "boundary": br[p, o:].tolist(), "level": level,
+                "alarm_date": per[ai - o] if ai >= o else None})
+    return out
 
 
 def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
