@@ -29,6 +29,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 from scipy import stats
 
 from drift.exceptions import InsufficientDataError
@@ -98,11 +99,15 @@ def _fit_ar_aic(x: FloatArray, max_ar: int) -> tuple[FloatArray, IntArray]:
     """AR(p) fits by least squares for p = 0..max_ar on a common sample; choose p by AIC per model."""
     M, T = x.shape
     xc = x - np.nanmean(x, axis=1, keepdims=True)
-    lags = np.stack([_lagged(xc, j) for j in range(1, max_ar + 1)], axis=2) if max_ar else np.zeros((M, T, 0))
-    ok = np.isfinite(xc) & np.all(np.isfinite(lags), axis=2)  # common sample for every order
+    # lags[m, t, j - 1] = xc[m, t - j] (NaN before the start): windows of the series padded by max_ar NaN
+    pad = np.concatenate([np.full((M, max_ar), np.nan), xc], axis=1)
+    Z = sliding_window_view(pad, max_ar, axis=1)[:, :T, ::-1].copy() if max_ar else np.zeros((M, T, 0))
+    # common sample for every order: x_t and its max_ar lags all known (no missing value among x_{t-max_ar..t})
+    missing = np.concatenate([np.zeros((M, 1), dtype=np.int64), np.cumsum(~np.isfinite(pad), axis=1)], axis=1)
+    ok = missing[:, max_ar + 1:] - missing[:, :T] == 0
     n = ok.sum(axis=1)
     yv = np.where(ok, xc, 0.0)
-    Z = np.where(ok[:, :, None], lags, 0.0)
+    Z[~ok] = 0.0
     best_aic = np.full(M, np.inf)
     best = np.zeros((M, max_ar))
     order = np.zeros(M, dtype=np.int64)
