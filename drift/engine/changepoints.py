@@ -189,6 +189,20 @@ def __getattr__(name: str) -> Any:
 #: Python's ``sum`` of floats adds left to right before 3.12 (compensated summation since): a partition's
 #: total is then its parent's total plus the new segment's cost, computed for all candidates at once
 _SEQUENTIAL_SUM = sys.version_info < (3, 12)
+#: most admissible starts for which _pelt_l2 forms the costs in Python floats (numpy beyond)
+_PELT_PY_MAX = 40
+
+
+def _first_min(tot: list[float]) -> int:
+    """Index of the first minimum by ``min()``'s own comparisons (NaN included); ValueError when empty
+    (every start pruned on NaN totals), as ``np.argmin`` of nothing raised."""
+    if not tot:
+        raise ValueError("attempt to get argmin of an empty sequence")
+    best = 0
+    for j in range(1, len(tot)):
+        if tot[j] < tot[best]:
+            best = j
+    return best
 
 
 def _pelt_l2(signal: FloatArray, pen: float, min_size: int) -> list[int]:
@@ -197,8 +211,8 @@ def _pelt_l2(signal: FloatArray, pen: float, min_size: int) -> list[int]:
 
     ruptures keeps, for every candidate end ``t``, the optimal partition of ``0..t`` as a dictionary of
     segment costs (each ``error + pen``, after a first entry 0) and compares partitions by the Python
-    ``sum`` of those values. Here the segment costs of all candidate starts are computed at once by
-    ``_CumL2``'s formula (elementwise: the same floating-point operations), a partition's total is formed as
+    ``sum`` of those values. Here the segment costs of the candidate starts are computed by ``_CumL2``'s
+    formula (the same floating-point operations), a partition's total is formed as
     ``sum`` forms it (its parent's total plus the new cost while ``sum`` adds left to right; the summed
     list of costs otherwise), the first minimum wins as in ``min`` and the admissible starts are pruned by
     the same test. A start ``t`` with no partition of ``0..t`` (``0 < t < min_size``) is skipped, as
@@ -207,42 +221,61 @@ def _pelt_l2(signal: FloatArray, pen: float, min_size: int) -> list[int]:
     n = int(signal.shape[0])
     if min_size > n:  # ruptures' sanity check for no change
         raise _ruptures()["rpt"].exceptions.BadSegmentationParameters
-    # _CumL2's running sums (its fit, the same operations)
+    # _CumL2's running sums (its fit, the same operations). While the admissible starts are few (the usual
+    # case after pruning) the costs are formed in Python floats, below numpy's per-call overhead; when many
+    # are left (long series without change) in numpy: the same IEEE operations either way
     sig = np.asarray(signal, dtype=float).reshape(len(signal), -1)
     v = sig[:, 0] - sig[:, 0].mean()
-    s1 = np.concatenate([[0.0], np.cumsum(v)])
-    s2 = np.concatenate([[0.0], np.cumsum(v * v)])
-    total = np.zeros(n + 1)  # total cost of the optimal partition of 0..t
+    s1a = np.concatenate([[0.0], np.cumsum(v)])
+    s2a = np.concatenate([[0.0], np.cumsum(v * v)])
+    s1, s2 = s1a.tolist(), s2a.tolist()
+    sequential = _SEQUENTIAL_SUM
+    total = [0.0] * (n + 1)  # total cost of the optimal partition of 0..t
+    total_a = np.zeros(n + 1)  # the same, for the numpy branch
     values: dict[int, list[float]] = {0: [0]}  # its segment costs in order (compensated sum only)
-    back = np.zeros(n + 1, dtype=np.int64)
-    adm = np.zeros(0, dtype=np.int64)
+    back = [0] * (n + 1)
+    adm: list[int] | IntArray = []  # a list while short, an array once long
     for bkp in [*range(min_size, n), n]:
         new = bkp - min_size
         if new == 0 or new >= min_size:
-            adm = np.append(adm, new)
-        d1 = s1[bkp] - s1[adm]
-        err = np.maximum(s2[bkp] - s2[adm] - d1 * d1 / (bkp - adm), 0.0) + pen
-        if _SEQUENTIAL_SUM:
-            tot = total[adm] + err
+            adm = adm + [new] if isinstance(adm, list) else np.append(adm, new)
+        if len(adm) > _PELT_PY_MAX:
+            ad = np.asarray(adm, dtype=np.int64)
+            d1a = s1a[bkp] - s1a[ad]
+            err_a = np.maximum(s2a[bkp] - s2a[ad] - d1a * d1a / (bkp - ad), 0.0) + pen
+            tot_a = (total_a[ad] + err_a if sequential
+                     else np.array([sum([*values[t], e]) for t, e in zip(ad.tolist(), err_a.tolist())]))
+            # the first minimum, as min() takes it (min()'s own comparisons when a total is NaN)
+            best = int(np.argmin(tot_a)) if np.isfinite(tot_a).all() else _first_min(tot_a.tolist())
+            total[bkp] = total_a[bkp] = float(tot_a[best])
+            err_best = float(err_a[best])
+            back[bkp] = int(ad[best])
+            adm = ad[tot_a <= total[bkp] + pen]
         else:
-            tot = np.array([sum([*values[t], e]) for t, e in zip(adm.tolist(), err.tolist())])
-        if np.isfinite(tot).all():
-            best = int(np.argmin(tot))  # the first minimum, as min() takes it
-        else:
-            best = 0
-            for j in range(1, tot.size):  # min()'s own comparisons when a total is NaN
-                if tot[j] < tot[best]:
-                    best = j
-        total[bkp] = tot[best]
-        back[bkp] = adm[best]
-        if not _SEQUENTIAL_SUM:
-            values[bkp] = [*values[int(adm[best])], float(err[best])]
-        adm = adm[tot <= total[bkp] + pen]
+            al = adm if isinstance(adm, list) else adm.tolist()
+            a1, a2 = s1[bkp], s2[bkp]
+            err = []
+            for t in al:
+                d1 = a1 - s1[t]
+                e = a2 - s2[t] - d1 * d1 / (bkp - t)
+                err.append((e if e >= 0.0 or math.isnan(e) else 0.0) + pen)  # np.maximum(e, 0.0)
+            if sequential:
+                tot = [total[t] + e for t, e in zip(al, err)]
+            else:
+                tot = [sum([*values[t], e]) for t, e in zip(al, err)]
+            best = _first_min(tot)
+            total[bkp] = total_a[bkp] = tot[best]
+            err_best = err[best]
+            back[bkp] = al[best]
+            bound = total[bkp] + pen
+            adm = [t for t, x in zip(al, tot) if x <= bound]
+        if not sequential:
+            values[bkp] = [*values[back[bkp]], err_best]
     bkps = []
     t = n
     while t > 0:
         bkps.append(t)
-        t = int(back[t])
+        t = back[t]
     return sorted(bkps)
 
 
