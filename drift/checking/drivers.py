@@ -443,7 +443,7 @@ def _latest_of_vintages(jobs: list[tuple[Any, np.ndarray, np.ndarray]]) -> None:
 def _utc_values(grid: Any) -> np.ndarray:
     """A grid of periods as datetime64 values, UTC for an aware one (what :func:`drift.panel.as_ns` reads)."""
     g = grid if isinstance(grid, pd.DatetimeIndex) else pd.DatetimeIndex(grid)
-    return (g.tz_convert(None) if g.tz is not None else g).to_numpy()
+    return (g.tz_convert(None) if g.tz is not None else g).values  # read-only use: to_numpy costs ~20 µs a call, .values ~2
 
 
 def _latest_by_series(frames: list[pd.DataFrame], series: list[list[str]],
