@@ -76,6 +76,25 @@ def test_runs_and_verdicts(store) -> None:
     assert r["status"] == "ok" and r["finished_at"] >= r["started_at"]
 
 
+def test_verdicts_all_or_nothing(store, monkeypatch) -> None:
+    """A failure in the encoding (a later batch) or in the insert rolls every verdict of the call back and is
+    raised to the caller."""
+    import drift.store as st
+
+    monkeypatch.setattr(st, "VERDICT_BATCH", 2)
+    rid = store.start_run("check", as_of=date(2025, 1, 1))
+    good = [{"name": f"m{i}", "verdict": "keep", "x": [1.5, 2.0]} for i in range(5)]
+    with pytest.raises(TypeError):
+        store.save_verdicts(rid, date(2025, 1, 1), [*good, {"name": "z", "verdict": "keep", "x": object()}])
+    assert store.latest_verdicts() == []
+    with pytest.raises((StoreError, sa.exc.DBAPIError)):
+        store.save_verdicts(rid, date(2025, 1, 1), [*good, {"name": "z", "verdict": None}])
+    assert store.latest_verdicts() == []
+    store.save_verdicts(rid, date(2025, 1, 1), good)
+    got = store.latest_verdicts()
+    assert [v["model"] for v in got] == [f"m{i}" for i in range(5)] and got[0]["payload"] == good[0]
+
+
 def test_naive_datetime_is_refused(sqlite_store) -> None:
     with pytest.raises(sa.exc.StatementError, match="naive datetime"):
         sqlite_store.start_run("check", scheduled_for=datetime(2025, 1, 1))
