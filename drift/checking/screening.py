@@ -318,6 +318,26 @@ def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
         return None
 
 
+def _chosen_monitor(specs: list[tuple[str, str, int | None]], mons: list[Any], vals: list[Any] | None, i: int,
+                    n_drivers: int) -> int | None:
+    """Which monitor model ``i`` of the batch draws: the first to cross (smallest alarm index), else the one
+    nearest its boundary (largest statistic); None when no monitor has a path for it. ``vals``: each
+    monitor's (alarm indices, horizon ends, statistics, ...) as Python lists, when the caller has them."""
+    best: tuple[tuple[int, float], int] | None = None
+    for s, ((_name, _det, j), r) in enumerate(zip(specs, mons)):
+        if r is None or (j is not None and j >= n_drivers) or getattr(r, "path", None) is None:
+            continue
+        if vals is not None and vals[s] is not None:
+            ai, stat = vals[s][0][i], vals[s][2][i]
+        else:
+            ai = int(np.atleast_1d(r.alarm_index)[i])
+            stat = float(np.atleast_1d(r.statistic)[i])
+        key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
+        if best is None or key < best[0]:
+            best = (key, s)
+    return None if best is None else best[1]
+
+
 def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, str, int | None]],
                     mons: list[Any], levels: list[tuple[float, float]], vals: list[Any],
                     dates: list[list[str]]) -> list[tuple[str, Any] | None]:
@@ -327,21 +347,9 @@ def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, s
     out: list[tuple[str, Any] | None] = [None] * len(group)
     chosen: dict[int, list[int]] = {}
     for i, c in enumerate(group):
-        n_d = len(c.design.driver_columns)
-        best: tuple[tuple[int, float], int] | None = None
-        for s, ((_name, _det, j), r) in enumerate(zip(specs, mons)):
-            if r is None or (j is not None and j >= n_d) or getattr(r, "path", None) is None:
-                continue
-            if vals[s] is not None:
-                ai, stat = vals[s][0][i], vals[s][2][i]
-            else:
-                ai = int(np.atleast_1d(r.alarm_index)[i])
-                stat = float(np.atleast_1d(r.statistic)[i])
-            key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
-            if best is None or key < best[0]:
-                best = (key, s)
-        if best is not None:
-            chosen.setdefault(best[1], []).append(i)
+        s = _chosen_monitor(specs, mons, vals, i, len(c.design.driver_columns))
+        if s is not None:
+            chosen.setdefault(s, []).append(i)
     for s, idx in chosen.items():
         (name, _det, j), r, (lv, _wl) = specs[s], mons[s], levels[s]
         path = np.atleast_2d(np.asarray(r.path, float))
@@ -376,21 +384,10 @@ def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | No
     ``vals``: each monitor's (alarm indices, horizon ends, statistics, ...) as Python lists, and ``dates``
     the model's periods as ISO dates, when the caller has them already (read from ``mons`` otherwise)."""
     drivers_i = list(c.design.driver_columns)
-    best: tuple[tuple[int, float], str, int | None, Any, float] | None = None
-    for s, ((name, _det, j), r, (lv, _wl)) in enumerate(zip(specs, mons, levels)):
-        if r is None or (j is not None and j >= len(drivers_i)) or getattr(r, "path", None) is None:
-            continue
-        if vals is not None and vals[s] is not None:
-            ai, stat = vals[s][0][i], vals[s][2][i]
-        else:
-            ai = int(np.atleast_1d(r.alarm_index)[i])
-            stat = float(np.atleast_1d(r.statistic)[i])
-        key = (0, float(ai)) if ai >= 0 else (1, -stat if math.isfinite(stat) else math.inf)
-        if best is None or key < best[0]:
-            best = (key, name, j, r, lv)
-    if best is None:
+    chosen = _chosen_monitor(specs, mons, vals, i, len(drivers_i))
+    if chosen is None:
         return
-    (_key, name, j, r, lv) = best
+    (name, _det, j), r, (lv, _wl) = specs[chosen], mons[chosen], levels[chosen]
     path = np.atleast_2d(np.asarray(r.path, float))[i]
     bound = np.atleast_2d(np.asarray(r.boundary, float))[i]
     n = c.design.n
