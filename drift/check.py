@@ -72,6 +72,7 @@ from drift.config import (
     period_start,
 )
 from drift.executor import run_chunks
+from drift.gcpause import fewer_collections
 from drift.panel import shift_periods, week_anchor
 from drift.progress import Progress
 from drift.verdicts import ERROR
@@ -124,6 +125,15 @@ class CheckOutcome:
 # ------------------------------------------------------------------------------------------------ analysis
 def analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime
             ) -> tuple[list[dict[str, Any]], dict[str, str]]:
+    """Payloads for a chunk of models, from the observations known at ``as_of`` (:func:`_analyse`), with
+    the garbage collector's passes made rare meanwhile (:mod:`drift.gcpause`; in process-pool and Dask
+    workers too)."""
+    with fewer_collections():
+        return _analyse(cfg, models, obs, as_of)
+
+
+def _analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime
+             ) -> tuple[list[dict[str, Any]], dict[str, str]]:
     """Payloads for a chunk of models, from the observations known at ``as_of``.
 
     Returns (payloads, errors): a model whose data cannot support the check gets an error entry
@@ -226,6 +236,13 @@ def run_check(cfg: Config, store: Any, *, as_of: date | None = None, models: lis
 
     ``record=False`` (``drift report``) only reads: no run row, no verdicts, no alerts (``run_id`` None).
     """
+    with fewer_collections():  # a check's payloads hold no cycles: rare collector passes (drift.gcpause)
+        return _run_check(cfg, store, as_of=as_of, models=models, deliver=deliver, record=record,
+                          progress=progress)
+
+
+def _run_check(cfg: Config, store: Any, *, as_of: date | None, models: list[str] | None, deliver: bool,
+               record: bool, progress: bool | None) -> CheckOutcome:
     day = as_of or datetime.now(timezone.utc).date()
     moment = as_of_moment(day)
     written = [cfg.model(n) for n in dict.fromkeys(models)] if models else list(cfg.models)

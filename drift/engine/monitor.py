@@ -325,7 +325,10 @@ def _csw(S: FloatArray, m: IntArray, horizon: Any, level: float, params: dict,
         params["calibration"] = "infinite horizon, monitored residuals only: P(alarm) = exp(-a^2/2)"
         params["scale_dof"] = None  # the closed form has no estimated-scale version
     else:
-        params["calibration"] = f"finite horizon {horizon} (simulated)"
+        # a per-model horizon array is described by its range (formatting 10^3 numbers costs milliseconds)
+        hs = np.atleast_1d(np.asarray(horizon, dtype=float))
+        span = f"{hs[0]:g}" if np.all(hs == hs[0]) else f"{hs.min():g} to {hs.max():g}"
+        params["calibration"] = f"finite horizon {span} (simulated)"
     with np.errstate(invalid="ignore"):
         boundary = np.where(mon, np.sqrt(n * (a2[:, None] + log_ratio)), np.nan)
     if not extend:
@@ -746,7 +749,8 @@ def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
     -----
     With ``G = X_ref' X_ref`` and ``P = G^+``: ``x~ = X P e_j / P_jj`` and
     ``(X_-j' X_-j)^{-1}``, embedded with a zero row and column j, is ``P - P e_j e_j' P / P_jj``
-    (Schur complement), so every driver is handled from the one inverse.
+    (Schur complement), so every driver is handled from the one inverse: the leverage of ``x_-j`` is
+    ``x'Px - P_jj x~^2``.
     """
     Xb = np.asarray(X, dtype=float)
     if Xb.ndim == 2:
@@ -770,9 +774,10 @@ def score_weights(X: Any, m: Any, columns: Any) -> FloatArray:
     with np.errstate(invalid="ignore", divide="ignore"):
         c = pj / pjj[:, :, None]
         xt = np.matmul(c, X0.transpose(0, 2, 1))  # (M, J, T)
-        B = P[:, None, :, :] - pj[:, :, :, None] * pj[:, :, None, :] / pjj[:, :, None, None]
-        XB = np.matmul(X0[:, None, :, :], B)  # (M, J, T, k)
-        h = np.sum(XB * X0[:, None, :, :], axis=3)  # leverage of x_-j at each row
+        # leverage of x_-j at each row, x' B x with B = P - P e_j e_j' P / P_jj: the full row's x' P x less
+        # (x' P e_j)^2 / P_jj = P_jj x~^2 (one (M, T) product for every driver, no (M, J, T, k) array)
+        q = np.sum(np.matmul(X0, P) * X0, axis=2)  # (M, T)
+        h = q[:, None, :] - pjj[:, :, None] * xt * xt
         n_ref = ref.sum(axis=1).astype(float)
         s2 = np.sum(np.where(ref[:, None, :], xt, 0.0) ** 2, axis=2) / np.maximum(n_ref - k + 1, 1.0)[:, None]
         monitored = ~(np.arange(T)[None, :] < mb[:, None])

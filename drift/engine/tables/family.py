@@ -64,10 +64,31 @@ def _interp_steps(rows: np.ndarray, steps: np.ndarray) -> np.ndarray:
     return (1.0 - w) * lo + w * hi
 
 
+#: the last few :func:`quantiles` looked up, by their arguments' bytes: a screening batch asks for the same
+#: (steps, dof) rows for each level, warning level and p-value of every member (read-only arrays)
+_RECENT: dict[tuple[Any, ...], np.ndarray] = {}
+_RECENT_MAX = 16
+
+
 def quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:
     """Quantiles (shape ``steps.shape + (len(TAIL_PROBS),)``) of the maximum of ``detector`` ("shift" or
     "variance") over ``steps`` monitored steps, for a known scale (``dof`` None) or one estimated with
-    ``dof`` degrees of freedom (interpolated linearly in 1/dof)."""
+    ``dof`` degrees of freedom (interpolated linearly in 1/dof). The result is read-only (it may be the
+    one returned for the same arguments a moment ago)."""
+    st = np.atleast_1d(np.asarray(steps, dtype=float))
+    nu = None if dof is None else np.asarray(dof, dtype=float)
+    key = (detector, st.shape, st.tobytes(), None if nu is None else (nu.shape, nu.tobytes()))
+    got = _RECENT.get(key)
+    if got is None:
+        got = _quantiles(detector, st, nu)
+        got.setflags(write=False)
+        if len(_RECENT) >= _RECENT_MAX:
+            _RECENT.pop(next(iter(_RECENT)), None)
+        _RECENT[key] = got
+    return got
+
+
+def _quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:
     if detector == "shift":
         known, by_dof = SHIFT, SHIFT_DOF
     elif detector == "variance":

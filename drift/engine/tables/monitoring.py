@@ -72,10 +72,31 @@ def _check_dof(dof: Any, shape: tuple[int, ...]) -> np.ndarray | None:
     return nu
 
 
+#: the last few :func:`quantiles` looked up, by their arguments' bytes: a screening batch asks for the same
+#: rows for each level, warning level and p-value of a monitor (read-only arrays)
+_RECENT: dict[tuple[Any, ...], np.ndarray] = {}
+_RECENT_MAX = 16
+
+
 def quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np.ndarray:
     """Tabulated quantiles at each horizon and scale dof (:func:`_quantiles`), looked up once per distinct
-    (horizon, dof) pair: the models of a screening batch mostly share one."""
+    (horizon, dof) pair: the models of a screening batch mostly share one. The result is read-only (it
+    may be the one returned for the same arguments a moment ago)."""
     h = np.atleast_1d(np.asarray(horizon, dtype=float))
+    nu = None if dof is None else np.asarray(dof, dtype=float)
+    key = (detector, float(param), h.shape, h.tobytes(), None if nu is None else (nu.shape, nu.tobytes()))
+    got = _RECENT.get(key)
+    if got is None:
+        got = _distinct_quantiles(detector, param, h, dof)
+        got.setflags(write=False)
+        if len(_RECENT) >= _RECENT_MAX:
+            _RECENT.pop(next(iter(_RECENT)), None)
+        _RECENT[key] = got
+    return got
+
+
+def _distinct_quantiles(detector: str, param: float, h: np.ndarray, dof: Any) -> np.ndarray:
+    """:func:`_quantiles` once per distinct (horizon, dof) pair."""
     if h.size > 1 and np.all(np.isfinite(h)):
         nu = None if dof is None else np.broadcast_to(np.asarray(dof, dtype=float), h.shape)
         pairs = np.stack([h.ravel(), np.zeros(h.size) if nu is None else nu.ravel()], axis=1)
