@@ -20,8 +20,10 @@ from drift.typing import FloatArray, IntArray
 
 __all__ = ["RollingFit", "rolling_coefficients"]
 
-# models processed together: keeps the (cross-product x model*window) work vectors cache-sized
-_CHUNK = 128
+# models processed together: keeps the (cross-product x model*window) work vectors cache-sized. Measured
+# (500 models x 261 weeks, window 52, CPU ms, 2026-12-04): k = 10 columns 115 / 104 / 106 / 111 / 131 at
+# 16 / 32 / 48 / 64 / 128 models; k = 4: 33.6 / 33.6 / 38.7 at 32 / 64 / 128
+_CHUNK = 32
 # relative tolerances: full-sample |R_jj| against column norm; window Cholesky pivot against A_jj
 _FULL_RANK_TOL = 1e-10
 _WINDOW_PIVOT_TOL = 1e-10
