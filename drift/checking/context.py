@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
@@ -35,7 +35,9 @@ class _Ctx:
     model: ModelConfig
     design: Design
     as_of: datetime
-    obs: pd.DataFrame
+    #: the model's observations: a frame, or a function that makes it on first use of :attr:`obs` (most
+    #: checks never read it: the stages work on ``vintages``)
+    obs_source: pd.DataFrame | Callable[[], pd.DataFrame] | None = None
     #: the model's observations as arrays, series -> Vintages (``c.obs`` converted once; what
     #: :func:`drift.panel.build_design`, :func:`~drift.panel.values_as_of` and :func:`~drift.panel.latest_values`
     #: take without converting a frame again)
@@ -54,6 +56,13 @@ class _Ctx:
     accuracy: dict[str, Any] = field(default_factory=dict)
     late: set[str] = field(default_factory=set)
     deployed: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def obs(self) -> pd.DataFrame:
+        """The model's observations (series, period, issued_at, value, available_at), made on first use."""
+        if callable(self.obs_source):
+            self.obs_source = self.obs_source()
+        return self.obs_source  # type: ignore[return-value]
 
 
 def _num(x: Any) -> float | None:

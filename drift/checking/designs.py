@@ -9,7 +9,8 @@ few reference rows, a constant target, collinear regressors), before it is batch
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping, Sequence
+import functools
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from datetime import date, datetime, timedelta
 
 import numpy as np
@@ -69,7 +70,8 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
             parts += rows
             at += n
         self._spans = spans
-        self._frames = obs.take(np.concatenate(parts)) if parts else obs.iloc[0:0]
+        self._parts = parts
+        self._frames_made: pd.DataFrame | None = None
 
     def design(self, cfg: Config, m: ModelConfig, as_of: datetime) -> Design | None:
         """The model's one-step design at ``as_of`` from the designs of the chunk's models, built together
@@ -119,6 +121,15 @@ class SeriesFrames(Mapping[str, pd.DataFrame]):
     def __len__(self) -> int:
         return len(self.groups if self.groups is not None else self.vintages)
 
+    @property
+    def _frames(self) -> pd.DataFrame:
+        """The frames of the chunk's models end to end (made in one take on first use)."""
+        if self._frames_made is None:
+            obs = self.obs
+            self._frames_made = obs.take(np.concatenate(self._parts)) if self._parts else obs.iloc[0:0]
+            self._parts = []
+        return self._frames_made
+
     def model_frame(self, names: list[str]) -> pd.DataFrame:
         """The rows of these series, series after series (stored order within each), index 0..n-1: the
         frame ``pd.concat([self[s] for s in names], ignore_index=True)`` would give."""
@@ -167,7 +178,7 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
     vint: Mapping[str, Vintages]
     if isinstance(by_series, SeriesFrames) and by_series.groups is None:
         names = by_series.model_series(m)
-        mobs = by_series.model_frame(names)
+        mobs: pd.DataFrame | Callable[[], pd.DataFrame] = functools.partial(by_series.model_frame, names)
         vint = by_series.model_vintages(names)
         built = by_series.design(cfg, m, as_of)
         d = built if built is not None else build_design(cfg, m, vint, pd.Timestamp(as_of))
@@ -176,7 +187,7 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
         mobs = pd.concat([by_series[s] for s in [*dict.fromkeys(m.series), *extra]], ignore_index=True)
         vint = SeriesVintages(mobs)  # raises for this model alone what cannot be converted
         d = build_design(cfg, m, vint, pd.Timestamp(as_of))
-    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs=mobs, vintages=vint)
+    c = _Ctx(cfg=cfg, model=m, design=d, as_of=as_of, obs_source=mobs, vintages=vint)
     c.y, c.X, c.error_model, c.scale_logvar = _prewhiten(m, d)
     c.n_ref_ok = int(np.sum(np.isfinite(c.y[: d.n_ref]) & np.isfinite(c.X[: d.n_ref]).all(axis=1)))
     c.horizon_n = _horizon_periods(cfg, m, d.n_ref)
