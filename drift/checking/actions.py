@@ -161,7 +161,8 @@ def _relag_explains_break(c: _Ctx) -> None:
     for a in relags:
         s, new = a.extra.get("driver"), a.extra.get("lag")
         try:
-            alt = build_design(c.cfg, c.model, c.obs, pd.Timestamp(c.as_of), lags={s: new})
+            alt = build_design(c.cfg, c.model, c.vintages if c.vintages is not None else c.obs, pd.Timestamp(c.as_of),
+                               lags={s: new})
             if not alt.periods.equals(d.periods) or alt.X.shape[1] != k:
                 continue
             y_alt, X_alt, _, _ = _prewhiten(c.model, alt)

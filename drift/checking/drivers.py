@@ -563,7 +563,6 @@ def _lag_drift(c: _Ctx) -> None:
     skipped = c.charts["lag_profile_skipped"]
     done = c.charts.get("_lag_profiles", {})
     profiles: dict[str, Any] = {}
-    obs = c.obs
     for dr, ry, rx in items:
         s = dr.series
         try:
@@ -594,7 +593,7 @@ def _lag_drift(c: _Ctx) -> None:
             continue
         # does the model at the new lag beat the current one out of sample (recent window)?
         try:
-            alt = build_design(c.cfg, m, obs, pd.Timestamp(c.as_of),
+            alt = build_design(c.cfg, m, c.vintages if c.vintages is not None else c.obs, pd.Timestamp(c.as_of),
                                lags={s: new})
         except DriftError:
             continue
