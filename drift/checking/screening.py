@@ -87,8 +87,9 @@ def _screen(group: list[_Ctx]) -> None:
             continue
         wj = None if j is None else weights[:, j]  # type: ignore[index]
         kw = {"horizon": hz, "detector": det, "weights": wj, "scale_dof": dof, "extend": True, "reference": ref_fit}
-        mons.append(_monitor(Y, Xs, m, level=lvl[0], **kw))
-        warns.append(_monitor(Y, Xs, m, level=lvl[1], **kw))
+        got = _monitor(Y, Xs, m, levels=lvl, **kw)  # the alarm level and the warning level, one process
+        mons.append(None if got is None else got[0])
+        warns.append(None if got is None else got[1])
     # Trigg's tracking signal on the as-deployed one-step errors of the monitored span (reported for the
     # demand planners who read it; it raises nothing: at a fixed time, not over the horizon)
     trigg = None
@@ -309,9 +310,12 @@ def _floats(a: Any) -> list[float]:
 
 
 def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
-    """engine.monitor, or None when no model of the batch can be monitored yet (e.g. no data after the
-    reference period): the batch then simply has no monitoring evidence."""
+    """engine.monitor (engine.monitor_levels when given ``levels``), or None when no model of the batch can
+    be monitored yet (e.g. no data after the reference period): the batch then simply has no monitoring
+    evidence."""
     try:
+        if "levels" in kw:
+            return engine.monitor_levels(Y, X, m, **kw)
         return engine.monitor(Y, X, m, **kw)
     except InsufficientDataError as exc:
         log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)

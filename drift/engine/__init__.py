@@ -34,6 +34,7 @@ _EXPORTS: dict[str, str] = {
     "change_points": "changepoints",
     # sequential monitoring
     "monitor": "monitor",
+    "monitor_levels": "monitor",
     "MonitorResult": "monitor",
     # tracking signals
     "tracking_signal": "tracking",

@@ -73,7 +73,7 @@ Page, E. S. (1954). Continuous inspection schemes. Biometrika 41(1/2), 100-115.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -596,14 +596,27 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     ----------
     See the module docstring.
     """
+    return monitor_levels(y, X, m, levels=(level,), horizon=horizon, detector=detector, window=window,
+                          gamma=gamma, error_model=error_model, scale_dof=scale_dof, weights=weights,
+                          extend=extend, reference=reference)[0]
+
+
+def monitor_levels(y: Any, X: Any, m: Any, *, levels: Sequence[float], horizon: float | None = None,
+                   detector: str = "csw", window: float = 0.25, gamma: float = 0.0,
+                   error_model: ErrorModel | None = None, scale_dof: Any = "auto", weights: Any = None,
+                   extend: bool = False, reference: ReferenceFit | None = None) -> list[MonitorResult]:
+    """:func:`monitor` at several levels of the same process: one result per level, each equal to
+    ``monitor(..., level=level)`` (the same operations), the partial sums, weights and information time
+    computed once (a check asks for its alarm level and its warning level)."""
     if not isinstance(detector, str) or detector not in DETECTORS:
         raise ValueError(f"detector must be one of {sorted(DETECTORS)}, got {detector!r}")
-    if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
-        raise ValueError(f"level must be in (0, 1), got {level!r}")
     lo_p, hi_p = min(mon_table.TAIL_PROBS), max(mon_table.TAIL_PROBS)
-    if (detector != "csw" or horizon is not None) and not lo_p - 1e-12 <= level <= hi_p + 1e-12:
-        raise ValueError(f"level must be in [{lo_p}, {hi_p}] for this detector (the simulated table's range), "
-                         f"got {level!r}")
+    for level in levels:
+        if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
+            raise ValueError(f"level must be in (0, 1), got {level!r}")
+        if (detector != "csw" or horizon is not None) and not lo_p - 1e-12 <= level <= hi_p + 1e-12:
+            raise ValueError(f"level must be in [{lo_p}, {hi_p}] for this detector (the simulated table's "
+                             f"range), got {level!r}")
     if detector == "mosum" and not any(abs(window - h) < 1e-12 for h in mon_table.MOSUM):
         raise ValueError(f"window must be one of {sorted(mon_table.MOSUM)}, got {window!r}")
     if detector == "page" and not any(abs(gamma - g) < 1e-12 for g in mon_table.PAGE):
@@ -652,8 +665,8 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
         info = np.cumsum(np.where(mon_rows & np.isfinite(z), v0 * v0, 0.0), axis=1)
     S = np.cumsum(np.where(np.isfinite(z), z, 0.0), axis=1)
     det = DETECTORS[detector]
-    params: dict[str, Any] = {"detector": detector, "level": level, "horizon": horizon,
-                              "m": int(mb[0]) if np.all(mb == mb[0]) else mb}
+    params0: dict[str, Any] = {"detector": detector, "level": None, "horizon": horizon,
+                               "m": int(mb[0]) if np.all(mb == mb[0]) else mb}
     extra: dict[str, Any] = ({"window": window} if detector == "mosum"
                              else {"gamma": gamma} if detector == "page"
                              else {"kappa": fam_table.SHIFT_KAPPA, "count": np.cumsum(
@@ -663,21 +676,10 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
     extra["extend"] = bool(extend)
     nu = _scale_dof(scale_dof, error_model, fit, Xb.shape[2])
     if nu is not None:
-        params["scale_dof"] = float(nu[0]) if squeeze else nu
+        params0["scale_dof"] = float(nu[0]) if squeeze else nu
     if weights is not None:
         extra["info"] = info
-        params["time"] = "information (sum of squared weights)"
-    path, boundary, cv, pval, cvs, params = det.run(S, mb, horizon, level, params, dof=nu, **extra)
-
-    bad = ~fit.ok
-    path = np.where(bad[:, None], np.nan, path)
-    boundary = np.where(bad[:, None], np.nan, boundary)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.abs(path) / boundary
-    statistic = _nanmax(ratio)
-    hit = np.where(np.isfinite(ratio), ratio >= 1.0, False)
-    alarm = np.where(hit.any(axis=1), hit.argmax(axis=1), -1).astype(np.int64)
-    pval = np.where(bad, np.nan, np.asarray(pval, dtype=float))
+        params0["time"] = "information (sum of squared weights)"
     nobs = np.isfinite(fit.w).sum(axis=1)
     # first row beyond the horizon (T: the horizon covers the data), in steps or in information time
     if horizon is None:
@@ -689,7 +691,7 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
             h_end = np.where(past.any(axis=1), past.argmax(axis=1), T).astype(np.int64)
         else:
             h_end = np.minimum(mb + np.ceil(hz_arr * mb - 1e-9).astype(np.int64), T)
-    params["degenerate_models"] = int(bad.sum())
+    bad = ~fit.ok
 
     def sq(a: Any) -> Any:
         a = np.asarray(a)
@@ -697,6 +699,27 @@ def monitor(y: Any, X: Any, m: Any, *, horizon: float | None = None, detector: s
             return a[0].item() if a.ndim == 1 else a[0]
         return a
 
+    return [_at_level(det, S, mb, horizon, level, {**params0, "level": level}, nu, extra, bad, nobs, h_end, fit,
+                      sq, squeeze)
+            for level in levels]
+
+
+def _at_level(det: _Detector, S: FloatArray, mb: IntArray, horizon: Any, level: float, params: dict,
+              nu: FloatArray | None, extra: dict[str, Any], bad: Any, nobs: Any, h_end: Any, fit: ReferenceFit,
+              sq: Callable[[Any], Any], squeeze: bool) -> MonitorResult:
+    """One level's boundary, alarms and p-values on the partial sums :func:`monitor_levels` prepared."""
+    M = S.shape[0]
+    path, boundary, cv, pval, cvs, params = det.run(S, mb, horizon, level, params, dof=nu, **extra)
+
+    path = np.where(bad[:, None], np.nan, path)
+    boundary = np.where(bad[:, None], np.nan, boundary)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.abs(path) / boundary
+    statistic = _nanmax(ratio)
+    hit = np.where(np.isfinite(ratio), ratio >= 1.0, False)
+    alarm = np.where(hit.any(axis=1), hit.argmax(axis=1), -1).astype(np.int64)
+    pval = np.where(bad, np.nan, np.asarray(pval, dtype=float))
+    params["degenerate_models"] = int(bad.sum())
     cv_arr = np.broadcast_to(np.asarray(cv, dtype=float), (M,))
     cvs_out = {lvl: (sq(np.broadcast_to(np.asarray(v, dtype=float), (M,))) if squeeze or np.ndim(v) else v)
                for lvl, v in cvs.items()}
