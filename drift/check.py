@@ -91,7 +91,9 @@ class CheckOutcome:
 
     ``models`` holds the payloads of the models that were checked; ``errors`` maps each model that could
     not be checked to its reason, and ``failed`` holds their entries in the JSON contract (verdict
-    ``error``, see :func:`error_entry`). ``order`` is the order of the models asked for.
+    ``error``, see :func:`error_entry`). ``order`` is the order of the models asked for. A payload's
+    ``charts`` block is kept as its JSON text (:class:`drift.jsontext.JSONText`: a read-only mapping,
+    decoded on first read; encode it with ``drift.jsontext.json_default`` or copy its ``decoded()``).
     """
 
     run_id: int | None

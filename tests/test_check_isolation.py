@@ -19,6 +19,7 @@ import pytest
 import drift.check
 from drift.check import CheckOutcome, analyse
 from drift.config import Config, load_config
+from drift.jsontext import json_default
 from tests.check_scenarios import Scenario, end_moment, known_by, observations, simulate
 
 PERIODS, VALUES = simulate(Scenario(seed=3, n_mon=52))
@@ -56,7 +57,7 @@ def healthy_oracle(cfg: Config, obs: pd.DataFrame) -> str:
     ok = [m for m in cfg.models if m.name != "bad"]
     payloads, errors = analyse(cfg, ok, obs, MOMENT)
     assert errors == {}
-    return json.dumps(payloads, sort_keys=True, default=str)
+    return json.dumps(payloads, sort_keys=True, default=json_default)
 
 
 def run_chunk(cfg: Config, obs: pd.DataFrame) -> tuple[list[dict[str, Any]], dict[str, str]]:
@@ -90,7 +91,7 @@ def test_bad_model_is_its_own_entry(tmp_path: Path, case: str) -> None:
     for w in words:
         assert w in errors["bad"], errors["bad"]
     assert "LinAlgError" not in errors["bad"]
-    assert json.dumps(payloads, sort_keys=True, default=str) == healthy_oracle(cfg, obs)
+    assert json.dumps(payloads, sort_keys=True, default=json_default) == healthy_oracle(cfg, obs)
 
 
 def test_reference_end_after_the_check_date(tmp_path: Path) -> None:
@@ -101,7 +102,7 @@ def test_reference_end_after_the_check_date(tmp_path: Path) -> None:
     assert list(errors) == ["bad"]
     assert "reference period ends 2027-12-27, after the check date" in errors["bad"]
     assert [p["name"] for p in payloads] == ["ok1", "ok2"]
-    assert json.dumps(payloads, sort_keys=True, default=str) == healthy_oracle(cfg, obs)
+    assert json.dumps(payloads, sort_keys=True, default=json_default) == healthy_oracle(cfg, obs)
 
 
 def test_nothing_to_monitor_yet_is_batched_apart(tmp_path: Path) -> None:
@@ -117,7 +118,7 @@ def test_nothing_to_monitor_yet_is_batched_apart(tmp_path: Path) -> None:
     assert errors == {}
     bad = next(p for p in payloads if p["name"] == "bad")
     assert bad["monitor_start"] is None and bad["reference"]["end"] == end
-    assert json.dumps([p for p in payloads if p["name"] != "bad"], sort_keys=True, default=str) \
+    assert json.dumps([p for p in payloads if p["name"] != "bad"], sort_keys=True, default=json_default) \
         == healthy_oracle(cfg, obs)
 
 
@@ -140,7 +141,7 @@ def test_a_batch_that_fails_is_split_until_the_model_is_alone(tmp_path: Path,
     assert list(errors) == ["bad"]
     assert "LinAlgError: Singular matrix" in errors["bad"] and "unexpected" in errors["bad"]
     assert calls[0] == ["ok1", "bad", "ok2"] and ["bad"] in calls
-    assert json.dumps(payloads, sort_keys=True, default=str) == oracle
+    assert json.dumps(payloads, sort_keys=True, default=json_default) == oracle
 
 
 @pytest.mark.parametrize("stage", ["_freshness", "_drivers_and_worth", "_lag_drift", "_payload"])
@@ -161,7 +162,7 @@ def test_a_later_stage_fails_only_its_model(tmp_path: Path, monkeypatch: pytest.
         payloads, errors = run_chunk(cfg, obs)
     assert list(errors) == ["bad"]
     assert "unexpected error" in errors["bad"] and "KeyError" in errors["bad"]
-    assert json.dumps(payloads, sort_keys=True, default=str) == oracle
+    assert json.dumps(payloads, sort_keys=True, default=json_default) == oracle
     # one warning line for the operator; the traceback only at debug level
     warned = [r for r in caplog.records if r.levelno == logging.WARNING and "bad" in r.getMessage()]
     assert len(warned) == 1 and warned[0].exc_info is None
@@ -213,7 +214,7 @@ def test_batched_lag_profiles_equal_the_per_model_ones(tmp_path: Path, monkeypat
     monkeypatch.setattr(drift.check, "_lag_profiles_batched", lambda ctxs: None)
     single, errors_single = run_chunk(cfg, obs)
     assert errors == errors_single == {}
-    assert json.dumps(batched, sort_keys=True, default=str) == json.dumps(single, sort_keys=True, default=str)
+    assert json.dumps(batched, sort_keys=True, default=json_default) == json.dumps(single, sort_keys=True, default=json_default)
     assert set(calls) == {1} and n_batched < len(calls)
 
 
@@ -244,6 +245,6 @@ def test_batched_worth_equals_the_per_model_one(tmp_path: Path, monkeypatch: pyt
     monkeypatch.setattr(drift.check, "_worth_batched", lambda ctxs: None)
     single, errors_single = run_chunk(cfg, obs)
     assert errors == errors_single == {}
-    assert json.dumps(batched, sort_keys=True, default=str) == json.dumps(single, sort_keys=True, default=str)
+    assert json.dumps(batched, sort_keys=True, default=json_default) == json.dumps(single, sort_keys=True, default=json_default)
     assert calls == [2, 2, 2]
     assert all("worth" in dr for p in batched for dr in p["drivers"])

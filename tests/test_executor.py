@@ -22,6 +22,7 @@ import pytest
 from drift.check import analyse
 from drift.config import Config, ModelConfig, load_config
 from drift.executor import chunk_models, chunk_observations, run_chunks
+from drift.jsontext import json_default
 
 SEED = 20260311
 START = pd.Timestamp("2021-01-04")  # a Monday
@@ -97,7 +98,7 @@ def with_executor(cfg: Config, executor: str, chunk_size: int = 2, workers: int 
 
 
 def dump(payloads: list[dict[str, Any]]) -> str:
-    return json.dumps(payloads, sort_keys=True)
+    return json.dumps(payloads, sort_keys=True, default=json_default)  # charts: their JSON, not their str()
 
 
 def failing_analyse(cfg: Config, models: Sequence[ModelConfig], obs: pd.DataFrame, as_of: datetime

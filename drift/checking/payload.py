@@ -3,7 +3,9 @@
 Takes the context after every stage; gives the model's entry: verdict (the most urgent of its actions,
 :func:`drift.verdicts.overall`), actions sorted by priority, alarms, tests, drivers, accuracy, the
 ``deployed`` block when there is one, and the charts for the digest (keys starting with ``_`` are the
-stages' working figures and are left out). :func:`error_entry` is the entry of a model that could not be
+stages' working figures and are left out), kept as their JSON text (:class:`drift.jsontext.JSONText`, a
+read-only mapping that decodes on first read: a third of the memory of the float lists, shipped from a
+worker process and written to the verdict row as that text). :func:`error_entry` is the entry of a model that could not be
 checked: the same keys, verdict ``error`` and its reason.
 """
 
@@ -14,6 +16,7 @@ from typing import Any
 
 from drift.checking.context import _Ctx
 from drift.config import ModelConfig
+from drift.jsontext import as_json_text
 from drift.verdicts import ERROR, overall, sort_actions
 
 
@@ -38,7 +41,7 @@ def _payload(c: _Ctx) -> dict[str, Any]:
         "drivers": c.drivers,
         "accuracy": c.accuracy,
         **({"deployed": c.deployed} if c.deployed else {}),
-        "charts": charts,
+        "charts": as_json_text(charts),
     }
 
 

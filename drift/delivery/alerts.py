@@ -65,6 +65,7 @@ import sqlalchemy as sa
 from drift.config import Config
 from drift.delivery import outbox as _outbox
 from drift.exceptions import DecisionError
+from drift.jsontext import JSONText, json_default
 from drift.store import Store, alert_snoozes, alerts, model_epochs, utcnow
 
 log = logging.getLogger(__name__)
@@ -195,7 +196,7 @@ def _current_conditions(actions: Iterable[Any]) -> dict[str, dict[str, Any]]:
 
 
 def _jsonable(obj: Any) -> Any:
-    return json.loads(json.dumps(obj, default=str))
+    return json.loads(json.dumps(obj, default=json_default))
 
 
 def _dict(value: Any) -> dict[str, Any]:
@@ -212,14 +213,26 @@ def _state(row: Any) -> dict[str, Any]:
 
 def _notice(payload: Mapping[str, Any], *, event: str, alert_id: int, condition: str, action: Mapping[str, Any],
             severity: str, as_of: date | None, run_id: Any, previous: Mapping[str, Any] | None) -> dict[str, Any]:
-    return _jsonable({
+    notice = _jsonable({
         "version": 1, "event": event, "alert_id": alert_id, "model": payload.get("name"),
         "condition": condition, "action": action.get("action"), "severity": severity,
         "as_of": as_of.isoformat() if as_of else None, "run_id": run_id,
         "detail": dict(action), "previous": dict(previous) if previous else None,
         "context": {k: payload.get(k) for k in CONTEXT_KEYS if payload.get(k) is not None},
-        "charts": payload.get("charts") if isinstance(payload.get("charts"), Mapping) else None,
     })
+    notice["charts"] = _charts_copy(payload.get("charts"))
+    return notice
+
+
+def _charts_copy(charts: Any) -> dict[str, Any] | None:
+    """The notice's own copy of a payload's chart data, as JSON values: a block the check kept as its JSON
+    text (:class:`drift.jsontext.JSONText`) decoded afresh (the payload goes on holding only its text), a
+    plain mapping through the same JSON round trip as the rest of the notice; None when there is none."""
+    if isinstance(charts, JSONText):
+        return charts.decoded()
+    if isinstance(charts, Mapping):
+        return _jsonable(charts)  # type: ignore[no-any-return]
+    return None
 
 
 # --------------------------------------------------------------------------------------------- main

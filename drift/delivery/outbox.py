@@ -83,6 +83,7 @@ import sqlalchemy as sa
 
 from drift.config import Config
 from drift.exceptions import DeliveryError
+from drift.jsontext import json_default
 from drift.store import Store, outbox, utcnow
 
 log = logging.getLogger(__name__)
@@ -243,7 +244,9 @@ def enqueue(conn: Any, channels: Sequence[tuple[str, Any]], notice: Mapping[str,
     """Write one pending row per channel in the caller's transaction; return their keys.
 
     ``seq`` numbers the notices of one alert (1 for the first, 2 for the first "worse" ...), so every
-    notice gets its own keys. Chart data is kept only on e-mail rows (the only channel that shows charts).
+    notice gets its own keys. Chart data is kept only on e-mail rows (the only channel that shows charts), as
+    JSON: a block kept as its JSON text (:class:`drift.jsontext.JSONText`) is written decoded, anything else
+    the standard encoder does not know as its ``str()``.
     """
     from drift.delivery.messages import subject_for
 
@@ -257,7 +260,7 @@ def enqueue(conn: Any, channels: Sequence[tuple[str, Any]], notice: Mapping[str,
             doc["charts"] = None
         doc["subject"] = subject_for(doc)
         rows.append({"alert": alert_id, "channel": name, "idempotency_key": key, "subject": doc["subject"],
-                     "payload": json.dumps(doc, default=str), "status": "pending", "attempts": 0,
+                     "payload": json.dumps(doc, default=json_default), "status": "pending", "attempts": 0,
                      "next_attempt_at": now, "created_at": now})
         keys.append(key)
     if rows:

@@ -170,3 +170,36 @@ def test_cli_resend_and_accept_uncertain_rows(tmp_path: Path) -> None:
         assert res.exit_code == 2 and "row 2 is sent" in res.output
     finally:
         st.dispose()
+
+
+def test_email_row_carries_the_chart_json(tmp_path: Path, store: Any) -> None:
+    """A check payload keeps its charts as JSON text (drift.jsontext.JSONText); its e-mail notice row holds
+    them as a JSON object (never the wrapper's str()), the other channels' rows none."""
+    import json
+
+    from drift.delivery.email import EmailSender
+    from drift.jsontext import JSONText, as_json_text
+    from tests.delivery.conftest import PNG_1PX, fake_renderer
+
+    cfg = make_cfg(tmp_path, [{"kind": "email", "name": "mail", "host": "127.0.0.1", "sender": "d@x.test",
+                               "to": "o@x.test"}, {"kind": "folder", "path": "o"}])
+    p = payload("k000", [action("refit")])
+    plain = p["charts"]
+    p["charts"] = as_json_text(plain)
+    assert isinstance(p["charts"], JSONText)
+    process_alerts(cfg, store, outcome(p), now=T0)
+    assert not p["charts"].is_decoded  # the notice decoded its own copy; the payload still holds text
+    with store.connect() as conn:
+        rows = {r.channel: json.loads(r.payload) for r in conn.execute(sa.select(outbox_t))}
+    assert rows["mail"]["charts"] == plain and isinstance(rows["mail"]["charts"], dict)
+    assert rows["folder"]["charts"] is None
+    spec = dict(configured_channels(cfg))["mail"]
+    pngs, notes = EmailSender(cfg, spec, "mail", chart_renderer=fake_renderer)._charts(rows["mail"])
+    assert pngs == {"cusum": PNG_1PX, "forecast": PNG_1PX} and notes == []
+    # a notice handed to enqueue with the block still as text is written as that JSON object too
+    with store.begin() as conn:
+        ob.enqueue(conn, configured_channels(cfg), {"model": "k000", "charts": p["charts"]}, alert_id=1,
+                   condition="refit", severity="act", as_of="2025-12-29", seq=9, now=T0)
+    with store.connect() as conn:
+        docs = [json.loads(r.payload) for r in conn.execute(sa.select(outbox_t).where(outbox_t.c.channel == "mail"))]
+    assert [d["charts"] for d in docs] == [plain, plain]
