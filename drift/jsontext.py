@@ -1,15 +1,17 @@
 """A JSON object kept as its compact text: :class:`JSONText`, a read-only mapping that decodes on first read.
 
 A check's coordinator holds every model's payload until its verdicts are saved, and the ``charts`` block
-(~3,000 floats a model) is most of a payload: ~85 KB as Python float lists, about 30 KB as JSON text. The
-worker that builds a payload encodes that block once (:func:`as_json_text`); the coordinator then holds
-bytes, a process pool or Dask ships bytes (a :class:`JSONText` pickles as its text), and the store writes
-the text verbatim into the verdict row (``drift.store._strict_json`` splices it, so the row is the text the
-whole payload would have given). Whoever reads ``payload["charts"][...]`` gets the decoded values, as before.
+(~3,000 floats a model) is most of a payload: ~85 KB as Python float lists, ~33 KB as JSON text, ~8 KB as
+that text compressed (zstd level 1 through pyarrow, a dependency: ~75 us to compress a block, ~45 us to
+expand it). The worker that builds a payload encodes that block once (:func:`as_json_text`); the
+coordinator then holds the compressed text, a process pool or Dask ships it (a :class:`JSONText` pickles as
+those bytes), and the store writes the text verbatim into the verdict row (``drift.store._strict_json``
+splices it, so the row is the text the whole payload would have given). Whoever reads
+``payload["charts"][...]`` gets the decoded values, as before.
 
 The text is orjson's with :data:`ORJSON_OPTIONS`, the options of the verdict rows, so spliced or encoded
 whole the stored JSON is the same. Without orjson (or for a block orjson refuses) the block stays a plain
-dict: nothing changes but the memory.
+dict; without pyarrow's zstd codec the text is held uncompressed.
 
 The standard :mod:`json` encoder does not know this type (``json.dumps(..., default=str)`` would write its
 ``str()``); encode with :func:`json_default` as ``default=``, or copy :meth:`JSONText.decoded` first.
@@ -31,25 +33,65 @@ except ImportError:  # pragma: no cover - orjson is a dependency
 ORJSON_OPTIONS = (_orjson.OPT_SERIALIZE_NUMPY | _orjson.OPT_NON_STR_KEYS) if _orjson is not None else 0
 
 
-class JSONText(Mapping[str, Any]):
-    """A JSON object held as its UTF-8 text; decoded on the first read and kept decoded from then on.
+def _zstd() -> Any:
+    try:
+        import pyarrow as pa
 
-    Compares equal to a mapping with the same decoded items; pickles (and deep-copies) as its text only.
-    ``text`` is the encoded object, ``decoded()`` a fresh decoded copy that is not kept.
+        return pa.Codec("zstd", compression_level=ZSTD_LEVEL) if pa.Codec.is_available("zstd") else None
+    except Exception:  # noqa: BLE001 - no codec: the text is held as it is
+        return None
+
+
+#: zstd level of the held text (1: the fastest; higher levels barely shrink chart JSON further)
+ZSTD_LEVEL = 1
+#: the codec of the held text, None when pyarrow has no zstd (the text is then held uncompressed)
+_CODEC = _zstd()
+
+
+class JSONText(Mapping[str, Any]):
+    """A JSON object held as its UTF-8 text (zstd-compressed when the codec is there); decoded on the first
+    read and kept decoded from then on.
+
+    Compares equal to a mapping with the same decoded items; pickles (and deep-copies) as its held bytes
+    only. ``text`` is the JSON text, ``decoded()`` a fresh decoded copy that is not kept, ``held_bytes`` the
+    size of what is held before any read.
     """
 
-    __slots__ = ("_text", "_value")
+    __slots__ = ("_blob", "_size", "_value")
 
     def __init__(self, text: bytes) -> None:
         if not isinstance(text, bytes):
             raise TypeError(f"JSONText needs the JSON text as bytes, got {type(text).__name__}")
-        self._text = text
+        if _CODEC is not None:
+            self._blob: bytes = _CODEC.compress(text, asbytes=True)
+            self._size: int | None = len(text)
+        else:
+            self._blob, self._size = text, None
         self._value: dict[str, Any] | None = None
+
+    @classmethod
+    def _held(cls, blob: bytes, size: int | None) -> JSONText:
+        """Rebuilt from its held bytes (unpickling): ``size`` is the text's length when ``blob`` is zstd."""
+        self = cls.__new__(cls)
+        self._blob, self._size, self._value = blob, size, None
+        return self
 
     @property
     def text(self) -> bytes:
-        """The JSON text (UTF-8)."""
-        return self._text
+        """The JSON text (UTF-8), expanded afresh from what is held."""
+        if self._size is None:
+            return self._blob
+        codec = _CODEC
+        if codec is None:  # held compressed by a process that had the codec: one is needed to read it
+            import pyarrow as pa
+
+            codec = pa.Codec("zstd")
+        return codec.decompress(self._blob, decompressed_size=self._size, asbytes=True)  # type: ignore[no-any-return]
+
+    @property
+    def held_bytes(self) -> int:
+        """Bytes held for the text (compressed or not), before any read decodes it."""
+        return len(self._blob)
 
     @property
     def is_decoded(self) -> bool:
@@ -58,7 +100,8 @@ class JSONText(Mapping[str, Any]):
 
     def decoded(self) -> dict[str, Any]:
         """A new decoded copy (not kept: the object stays as small as its text)."""
-        value = _orjson.loads(self._text) if _orjson is not None else json.loads(self._text)
+        text = self.text
+        value = _orjson.loads(text) if _orjson is not None else json.loads(text)
         if not isinstance(value, dict):
             raise TypeError(f"JSONText holds a JSON object, not {type(value).__name__}")
         return value
@@ -82,7 +125,7 @@ class JSONText(Mapping[str, Any]):
 
     def __eq__(self, other: object) -> bool:
         if isinstance(other, JSONText):
-            return self._text == other._text or self._data() == other._data()
+            return (self._blob == other._blob and self._size == other._size) or self._data() == other._data()
         if isinstance(other, dict):
             return self._data() == other
         if isinstance(other, Mapping):
@@ -91,11 +134,11 @@ class JSONText(Mapping[str, Any]):
 
     __hash__ = None  # type: ignore[assignment]  # a mapping: unhashable, like dict
 
-    def __reduce__(self) -> tuple[Any, tuple[bytes]]:
-        return (type(self), (self._text,))
+    def __reduce__(self) -> tuple[Any, tuple[bytes, int | None]]:
+        return (type(self)._held, (self._blob, self._size))
 
     def __repr__(self) -> str:
-        return f"{type(self).__name__}({self._text.decode()})"
+        return f"{type(self).__name__}({self.text.decode()})"
 
 
 def as_json_text(obj: Mapping[str, Any]) -> Mapping[str, Any]:
