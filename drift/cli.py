@@ -239,7 +239,11 @@ def check(config: str, models: tuple[str, ...], as_of: str | None, as_json: bool
             outcome = run_check(cfg, store, as_of=day, models=list(models) or None, deliver=not no_deliver,
                                 progress=False if as_json else None)  # a bar on a terminal, never with --json
         if as_json:
-            click.echo(json.dumps(_strict(outcome.as_json()), allow_nan=False))
+            # the verdict rows' encoder (orjson when installed; strict JSON, NaN as null): at 10,000 models the
+            # standard encoder spent ~1.5 s CPU on this 36 MB object, orjson ~0.05 s
+            from drift.store import _strict_json
+
+            click.echo(_strict_json(outcome.as_json()))
         else:
             click.echo(format_table(outcome))
         if outcome.errors:
