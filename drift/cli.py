@@ -451,7 +451,9 @@ def refit(config: str, model: str, since: str | None, as_of: str | None, as_json
 @click.option("--action", required=True, type=click.Choice(["refit", "relag", "drop-driver"]),
               help="What was decided.")
 @click.option("--note", default=None, help="Why (kept with the decision).")
-@click.option("--since", default=None, help="Fit the new epoch on data from this day.")
+@click.option("--since", default=None,
+              help="Fit the new epoch on data from this day (default: refit, the refit verdict's date; relag, "
+                   "the break the relag explains, else the recent window; drop-driver, the recent window).")
 @click.option("--lag", type=int, default=None, help="relag: the driver's new lag (default: the verdict's).")
 @click.option("--driver", default=None, help="relag / drop-driver: the driver (default: the verdict's).")
 @click.option("--by", default=None, callback=lambda ctx, param, v: _name(v),

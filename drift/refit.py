@@ -18,8 +18,8 @@ open alerts as acted on:
 - ``refit``: the new reference period runs from the start date (``--since``, by default the date of the
   refit verdict) to the last period with a target value at the check date;
 - ``relag``: the driver (``--driver``, by default the one the relag verdict names) moves to ``--lag`` (by
-  default the verdict's lag), refitted on the recent window (``check.recent_window`` periods) or
-  ``--since``;
+  default the verdict's lag), refitted from ``--since``, by default from the break the relag explains
+  (the relag's ``since``) when it carries one, else on the recent window (``check.recent_window`` periods);
 - ``drop-driver``: the driver is left out, refitted on the recent window or ``--since``.
 
 The proposal the decision was based on is stored with the epoch.
@@ -145,7 +145,9 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
     ----------
     name : the model.
     since : first day of the data the proposal is fitted on; default: for ``refit`` the date of the model's
-        refit verdict, else the start of the recent window (``check.recent_window`` periods).
+        refit verdict; for ``relag`` the date of the break the relag explains (its ``since``, when the
+        verdict's relag to that lag carries one); else the start of the recent window
+        (``check.recent_window`` periods).
     as_of : the check date (data as known at the end of that day); default the model's newest verdict's.
     action : ``refit`` (same model, new data), ``relag`` (with ``lags``) or ``drop-driver`` (with ``drop``).
 
@@ -172,6 +174,13 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
                 f"model '{name}': no refit verdict in epoch {epoch.number} as of {day.isoformat()} to take the "
                 "start date from; give --since DATE (the first day of the data to fit on)")
         since = date.fromisoformat(str(found[0]["since"])[:10])
+    if since is None and action == "relag" and lags:
+        # a relag that explains the monitors' break carries its date: the new lag holds from there on (the
+        # rows before it follow the old lag), so the proposal is fitted from it; else the recent window
+        dated = [a for s in sorted(lags) for a in _verdict_action(latest, epoch, "relag", s)
+                 if a.get("since") and a.get("lag") == lags[s]]
+        if dated:
+            since = date.fromisoformat(str(dated[0]["since"])[:10])
     new_model = model
     if lags or drop:
         drivers = [d.model_copy(update={"lag": int(lags[d.series])}) if lags and d.series in lags else d

@@ -196,3 +196,35 @@ def test_the_proposal_is_the_least_squares_fit_since_the_date(tmp_path: Path) ->
         assert got[term]["proposed_se"] == pytest.approx(fit.bse[j], abs=1e-6)
         assert got[term]["proposed_ci"] == pytest.approx(list(ci[j]), abs=1e-6)
     assert p["fit"]["rows"] == int(use.sum()) and p["until"] == "2024-12-23"
+
+
+def test_a_relag_that_explains_a_break_is_fitted_from_the_break(tmp_path: Path, monkeypatch) -> None:
+    """``accept --action relag`` without --since: from the break the relag explains (its ``since``) when the
+    verdict's relag carries one, else on the recent window (``check.recent_window`` = 52 weeks by default).
+    The verdict is given here (what the check writes for such a relag: drift.checking.actions)."""
+    from drift import refit
+    from drift.config import load_config
+    from drift.pipeline import run_ingest
+    from drift.store import open_store
+
+    scenario().to_csv(tmp_path / "data.csv", index=False)
+    (tmp_path / "drift.yaml").write_text(CONFIG, encoding="utf-8")
+    cfg = load_config(tmp_path / "drift.yaml")
+    store = open_store(cfg.store_url())
+    day = date(2024, 12, 31)
+    relag = {"action": "relag", "driver": "x1", "lag": 2}
+    try:
+        run_ingest(cfg, store)
+        for action, want in (({**relag, "since": BREAK}, BREAK), (relag, "2024-01-01")):
+            verdict = {"as_of": day.isoformat(), "epoch": {"number": 1}, "actions": [action]}
+            monkeypatch.setattr(refit, "_latest_verdict", lambda *a, v=verdict, **k: v)
+            p = refit.propose(cfg, store, "sim", as_of=day, action="relag", lags={"x1": 2})
+            # the recent window: the last 52 of the weeks with a target known by the check date (to 2024-12-23)
+            assert p["since"] == want and p["until"] == "2024-12-23"
+            assert p["reference"]["start"] == want
+        # a relag to another lag than the one proposed does not lend its date
+        verdict = {"as_of": day.isoformat(), "epoch": {"number": 1}, "actions": [{**relag, "since": BREAK, "lag": 3}]}
+        monkeypatch.setattr(refit, "_latest_verdict", lambda *a, v=verdict, **k: v)
+        assert refit.propose(cfg, store, "sim", as_of=day, action="relag", lags={"x1": 2})["since"] == "2024-01-01"
+    finally:
+        store.dispose()
