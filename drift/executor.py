@@ -53,6 +53,7 @@ import concurrent.futures as cf
 import logging
 import multiprocessing
 import os
+import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from datetime import datetime
@@ -82,8 +83,11 @@ THREAD_ENV = {
 }
 #: workers of a LocalCluster started for the run when ``check.workers`` is unset
 DEFAULT_DASK_WORKERS = 2
-#: how long a check waits for the first worker of an existing cluster that has none yet
+#: how long a check waits for the first worker of an existing cluster that has none yet, and for a worker to
+#: come back when every worker left during the check
 WORKER_WAIT_SECONDS = 60
+#: how often a chunk's result is waited for before the cluster's workers are counted again (seconds)
+RESULT_POLL_SECONDS = 5.0
 
 
 # ------------------------------------------------------------------------------------------------ splitting
@@ -399,13 +403,55 @@ def _run_dask(func: ChunkFunc, cfg: Config, chunks: list[list[ModelConfig]],
             def submit(i: int) -> Any:
                 return client.submit(_dask_chunk, func, chunks[i], load(i), as_of, cfg=cfg_f, pure=False)
 
-            return _bounded(submit, lambda f: f.result(), len(chunks), 2 * slots, chunks, done)
+            watch = _ClusterWatch(client, address or "the local cluster")
+            return _bounded(submit, watch.result, len(chunks), 2 * slots, chunks, done)
     finally:
         if cluster is not None:
             cluster.close()
 
 
 _KEY = "check.executor.address (check.dask_scheduler)"
+
+
+class _ClusterWatch:
+    """Waits for a chunk's result while the cluster has workers, and says in the trade's words when the
+    cluster lost it. Workers that leave take the configuration scattered to them along: the scheduler then
+    cancels the chunks ("lost dependencies"), which become a :class:`ClusterError` naming the key. A task
+    with nothing lost would wait for a new worker for ever: when the cluster has had no worker for
+    :data:`WORKER_WAIT_SECONDS`, the chunk fails with a :class:`ClusterError` too, and so does every later
+    chunk, at once. Either way the chunk's models get error entries and the run is recorded partial."""
+
+    def __init__(self, client: Any, where: str) -> None:
+        self.client, self.where = client, where
+        self.none_since: float | None = None
+        self.lost: ClusterError | None = None
+
+    def result(self, fut: Any) -> tuple[Payloads, Errors]:
+        while self.lost is None:
+            try:
+                return fut.result(timeout=RESULT_POLL_SECONDS)  # type: ignore[no-any-return]
+            except TimeoutError:
+                pass
+            except cf.CancelledError as exc:  # distributed's FutureCancelledError: "lost dependencies" and the like
+                raise ClusterError(
+                    f"{_KEY}: the Dask cluster at {self.where} dropped this chunk during the check ({exc}): its "
+                    "workers left or restarted, and the configuration sent to them with it; the models not "
+                    "checked get error entries: check the workers and check again") from exc
+            if len(self.client.scheduler_info().get("workers", {})):
+                self.none_since = None
+                continue
+            now = time.monotonic()
+            if self.none_since is None:
+                self.none_since = now
+                log.warning("the Dask cluster at %s has no worker left; waiting up to %s s for one", self.where,
+                            WORKER_WAIT_SECONDS)
+            elif now - self.none_since >= WORKER_WAIT_SECONDS:
+                self.lost = ClusterError(
+                    f"{_KEY}: every worker of the Dask cluster at {self.where} left during the check (none came "
+                    f"back within {WORKER_WAIT_SECONDS} s); the models not checked get error entries: restart the "
+                    "workers (`dask worker <address>`) and check again")
+        fut.cancel()
+        raise self.lost
 
 
 def _connect(client_cls: Any, target: Any) -> Any:

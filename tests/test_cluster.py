@@ -216,3 +216,90 @@ def test_a_scheduler_without_workers_is_an_error_not_a_hang(monkeypatch: pytest.
         cfg = with_address(lc.scheduler_address)
         with pytest.raises(ClusterError, match=r"no worker.*dask worker"):
             run_chunks(cfg, cfg.models, make_obs(1), as_of(), func=analyse)
+
+
+def _slow_chunk(cfg, models, obs, as_of_):  # a chunk function for the next test
+    time.sleep(0.4)
+    return [{"name": m.name, "verdict": "keep"} for m in models], {}
+
+
+def test_workers_that_all_leave_mid_check_fail_their_chunks_not_hang(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every worker of the cluster leaves during the check and none comes back: the chunks not computed fail
+    with a ClusterError naming the key (their models get error entries), not a bare "cancelled: lost
+    dependencies" and never a wait for ever; what was computed before is kept."""
+    pytest.importorskip("distributed")
+    from distributed import LocalCluster
+
+    from drift.config import ModelConfig
+
+    monkeypatch.setattr(executor, "WORKER_WAIT_SECONDS", 1)
+    monkeypatch.setattr(executor, "RESULT_POLL_SECONDS", 0.2)
+    models = [ModelConfig.model_validate({"name": f"m{i}", "target": f"y{i}", "frequency": "W",
+                                          "drivers": [{"series": f"a{i}", "lag": 1}],
+                                          "reference": {"start": "2021-01-04", "end": "2023-12-25"}})
+              for i in range(8)]
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=":0") as lc:
+        cfg = Config.model_validate({"models": [m.model_dump() for m in models]})
+        chk = cfg.check.model_validate({**cfg.check.model_dump(), "chunk_size": 1,
+                                        "executor": {"kind": "dask", "address": lc.scheduler_address}})
+        cfg = cfg.model_copy(update={"check": chk})
+        seen: list[int] = []
+
+        def done(n: int) -> None:
+            seen.append(n)
+            if len(seen) == 1:  # after the first chunk, every worker leaves
+                lc.scale(0)
+
+        t0 = time.monotonic()
+        payloads, errors = run_chunks(cfg, cfg.models, make_obs(8), as_of(), func=_slow_chunk, on_done=done)
+        took = time.monotonic() - t0
+    assert took < 60, took
+    assert payloads and payloads[0]["name"] == "m0"  # computed before the workers left: kept
+    assert errors, "the chunks after the workers left must fail"
+    assert len(payloads) + len(errors) == 8
+    assert all("ClusterError" in r and "check.executor.address" in r and "during the check" in r
+               for r in errors.values()), errors
+
+
+def test_a_chunk_waiting_on_a_cluster_without_workers_fails_after_the_wait(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The other way a cluster can lose a check: a task with nothing lost waits for a worker for ever. The
+    watch counts the workers between waits; none for WORKER_WAIT_SECONDS fails the chunk, and every later
+    chunk at once; while workers are there it keeps waiting (a fake future and client)."""
+    monkeypatch.setattr(executor, "WORKER_WAIT_SECONDS", 0.3)
+    monkeypatch.setattr(executor, "RESULT_POLL_SECONDS", 0.05)
+
+    class Future:
+        def __init__(self, ready_after: int | None) -> None:
+            self.calls, self.ready_after, self.cancelled = 0, ready_after, False
+
+        def result(self, timeout: float) -> tuple[list, dict]:
+            self.calls += 1
+            if self.ready_after is not None and self.calls > self.ready_after:
+                return [{"name": "m0"}], {}
+            time.sleep(timeout)
+            raise TimeoutError
+
+        def cancel(self) -> None:
+            self.cancelled = True
+
+    class Client:
+        def __init__(self) -> None:
+            self.workers: dict = {"w1": {}}
+
+        def scheduler_info(self) -> dict:
+            return {"workers": self.workers}
+
+    client = Client()
+    watch = executor._ClusterWatch(client, "tcp://127.0.0.1:1")
+    assert watch.result(Future(ready_after=5)) == ([{"name": "m0"}], {})  # slow but the workers are there
+    client.workers = {}
+    t0 = time.monotonic()
+    stuck = Future(ready_after=None)
+    with pytest.raises(ClusterError, match=r"check.executor.address.*every worker.*left during the check"):
+        watch.result(stuck)
+    assert 0.3 <= time.monotonic() - t0 < 5 and stuck.cancelled
+    later = Future(ready_after=None)
+    t0 = time.monotonic()
+    with pytest.raises(ClusterError, match="left during the check"):
+        watch.result(later)
+    assert time.monotonic() - t0 < 0.05 and later.cancelled and later.calls == 0
