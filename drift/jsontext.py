@@ -5,13 +5,20 @@ A check's coordinator holds every model's payload until its verdicts are saved, 
 that text compressed (zstd level 1 through pyarrow, a dependency: ~75 us to compress a block, ~45 us to
 expand it). The worker that builds a payload encodes that block once (:func:`as_json_text`); the
 coordinator then holds the compressed text, a process pool or Dask ships it (a :class:`JSONText` pickles as
-those bytes), and the store writes the text verbatim into the verdict row (``drift.store._strict_json``
-splices it, so the row is the text the whole payload would have given). Whoever reads
-``payload["charts"][...]`` gets the decoded values, as before.
+those bytes), and the store writes those bytes as they are into the verdict row's ``charts`` column (below),
+neither expanded nor encoded again. Whoever reads ``payload["charts"][...]`` gets the decoded values, as
+before. A JSONText elsewhere in a payload is spliced into the row's JSON text verbatim
+(``drift.store._strict_json``), which is what encoding the decoded block would give.
 
 The text is orjson's with :data:`ORJSON_OPTIONS`, the options of the verdict rows, so spliced or encoded
 whole the stored JSON is the same. Without orjson (or for a block orjson refuses) the block stays a plain
 dict; without pyarrow's zstd codec the text is held uncompressed.
+
+The store keeps the block in the verdict row's own ``charts`` column as :attr:`JSONText.stored`: the held
+bytes behind a header that names how they are held (:data:`STORED_MAGIC`, then ``z`` with the text's length
+and the zstd frame, or ``n`` and the text itself); :meth:`JSONText.from_stored` gives them back as a
+JSONText that decodes nothing until read, and refuses bytes without that header. :func:`stored_text` is the
+one way in for a block that is not a JSONText yet.
 
 The standard :mod:`json` encoder does not know this type (``json.dumps(..., default=str)`` would write its
 ``str()``); encode with :func:`json_default` as ``default=``, or copy :meth:`JSONText.decoded` first.
@@ -20,7 +27,7 @@ The standard :mod:`json` encoder does not know this type (``json.dumps(..., defa
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from typing import Any
 
 try:
@@ -46,6 +53,14 @@ def _zstd() -> Any:
 ZSTD_LEVEL = 1
 #: the codec of the held text, None when pyarrow has no zstd (the text is then held uncompressed)
 _CODEC = _zstd()
+
+#: first bytes of :attr:`JSONText.stored` (format 1); the next byte names the codec, :data:`STORED_ZSTD` or
+#: :data:`STORED_PLAIN`
+STORED_MAGIC = b"DJT1"
+#: codec byte: the text's length as 8 bytes little-endian, then one zstd frame of the text
+STORED_ZSTD = b"z"
+#: codec byte: the text itself
+STORED_PLAIN = b"n"
 
 
 class JSONText(Mapping[str, Any]):
@@ -87,6 +102,35 @@ class JSONText(Mapping[str, Any]):
 
             codec = pa.Codec("zstd")
         return codec.decompress(self._blob, decompressed_size=self._size, asbytes=True)  # type: ignore[no-any-return]
+
+    @property
+    def stored(self) -> bytes:
+        """The held bytes as the store keeps them, with a header saying how they are held (module docstring):
+        nothing is expanded or encoded again."""
+        if self._size is None:
+            return STORED_MAGIC + STORED_PLAIN + self._blob
+        return STORED_MAGIC + STORED_ZSTD + self._size.to_bytes(8, "little") + self._blob
+
+    @classmethod
+    def from_stored(cls, data: bytes | bytearray | memoryview) -> JSONText:
+        """The JSONText whose :attr:`stored` bytes are ``data``, decoded only when read.
+
+        Raises
+        ------
+        ValueError
+            when ``data`` does not start with :data:`STORED_MAGIC` and a known codec byte.
+        """
+        data = bytes(data)
+        head = len(STORED_MAGIC)
+        codec = data[head:head + 1]
+        if data[:head] != STORED_MAGIC or codec not in (STORED_ZSTD, STORED_PLAIN):
+            raise ValueError(f"not a stored JSON text: starts {data[:head + 1]!r}, expected {STORED_MAGIC!r} and "
+                             f"{STORED_ZSTD!r} or {STORED_PLAIN!r} (written by a newer drift?)")
+        if codec == STORED_PLAIN:
+            return cls._held(data[head + 1:], None)
+        if len(data) < head + 9:
+            raise ValueError(f"stored JSON text cut short: {len(data)} bytes, its header alone takes {head + 9}")
+        return cls._held(data[head + 9:], int.from_bytes(data[head + 1:head + 9], "little"))
 
     @property
     def held_bytes(self) -> int:
@@ -150,6 +194,16 @@ def as_json_text(obj: Mapping[str, Any]) -> Mapping[str, Any]:
         return JSONText(_orjson.dumps(obj, option=ORJSON_OPTIONS))
     except TypeError:  # orjson.JSONEncodeError is a TypeError
         return obj
+
+
+def stored_text(obj: Mapping[str, Any], fallback: Callable[[Mapping[str, Any]], str]) -> bytes:
+    """:attr:`JSONText.stored` of ``obj``: its own held bytes when it is a JSONText, else those of
+    :func:`as_json_text`; when orjson refuses ``obj`` (or is missing), of the text ``fallback(obj)`` gives
+    (the caller's strict encoder)."""
+    held = obj if isinstance(obj, JSONText) else as_json_text(obj)
+    if not isinstance(held, JSONText):
+        held = JSONText(fallback(obj).encode())
+    return held.stored
 
 
 def json_default(obj: Any) -> Any:

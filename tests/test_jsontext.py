@@ -129,3 +129,36 @@ def test_needs_bytes() -> None:
         JSONText('{"a": 1}')  # type: ignore[arg-type]
     with pytest.raises(TypeError, match="JSON object"):
         JSONText(b"[1, 2]").decoded()
+
+
+def test_stored_bytes_name_their_codec_and_read_back_lazily(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The verdict row's charts column: the held bytes as they are behind a header naming the codec."""
+    got = as_json_text(charts())
+    assert isinstance(got, JSONText)
+    stored = got.stored
+    assert stored.startswith(jt.STORED_MAGIC + jt.STORED_ZSTD) and stored.endswith(got._blob)
+    assert len(stored) == got.held_bytes + len(jt.STORED_MAGIC) + 9
+    back = JSONText.from_stored(memoryview(stored))  # a driver may hand a memoryview (psycopg's bytea)
+    assert not back.is_decoded and back.text == got.text and back == charts() and back.stored == stored
+    # held uncompressed (no codec in the writing process): said so, and read by a process with the codec
+    monkeypatch.setattr(jt, "_CODEC", None)
+    raw = as_json_text(charts())
+    assert raw.stored == jt.STORED_MAGIC + jt.STORED_PLAIN + raw.text
+    monkeypatch.undo()
+    assert JSONText.from_stored(raw.stored) == charts() and JSONText.from_stored(stored) == charts()
+    # bytes without the header are refused, never misread
+    for bad in (got.text, got._blob, b"", jt.STORED_MAGIC + b"x" + got._blob, jt.STORED_MAGIC + jt.STORED_ZSTD):
+        with pytest.raises(ValueError, match="stored JSON text"):
+            JSONText.from_stored(bad)
+
+
+def test_stored_text_of_a_plain_dict_is_that_of_its_json_text(monkeypatch: pytest.MonkeyPatch) -> None:
+    plain = charts()
+    assert jt.stored_text(plain, st._strict_json) == as_json_text(plain).stored
+    held = as_json_text(plain)
+    monkeypatch.setattr(JSONText, "text", property(lambda self: pytest.fail("expanded")))
+    assert jt.stored_text(held, st._strict_json) == held.stored  # a JSONText's bytes: nothing expanded
+    monkeypatch.undo()
+    # a block orjson refuses goes through the caller's encoder and reads back the same
+    big = {"big": 2 ** 70, "x": [float("nan"), 1.5]}
+    assert JSONText.from_stored(jt.stored_text(big, st._strict_json)) == {"big": 2 ** 70, "x": [None, 1.5]}
