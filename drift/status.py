@@ -151,7 +151,7 @@ def _outbox(store: Store) -> dict[str, Any]:
 
 def _stale_feeds(store: Store) -> list[dict[str, Any]]:
     out = []
-    for v in store.latest_verdicts():
+    for v in store.latest_verdicts(charts=False):  # the drivers only: the charts are not read
         drivers = v["payload"].get("drivers") or []
         items = ([{"driver": k, **d} for k, d in drivers.items() if isinstance(d, dict)]
                  if isinstance(drivers, dict) else [d for d in drivers if isinstance(d, dict)])

@@ -25,7 +25,7 @@ import os
 import socket
 import threading
 import time
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from contextvars import ContextVar
 from dataclasses import dataclass, field
@@ -38,7 +38,7 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
 from drift.exceptions import SchemaVersionError, StoreError
-from drift.jsontext import ORJSON_OPTIONS, JSONText
+from drift.jsontext import ORJSON_OPTIONS, JSONText, stored_text
 from drift.procs import START_MAX_LEN, process_start, this_host, why_dead
 
 log = logging.getLogger(__name__)
@@ -49,7 +49,7 @@ except ImportError:  # pragma: no cover - a dependency; kept working without it
     _orjson = None  # type: ignore[assignment]
 
 #: bump when the schema changes (and add the step to :data:`MIGRATIONS`); older code refuses a newer store
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 7
 #: stands for "no issue time" in the unique key of observations (NULLs never conflict in an index)
 NO_ISSUE_KEY = "0001-01-01 00:00:00"
 
@@ -190,6 +190,10 @@ verdicts = sa.Table(
     sa.Column("verdict", sa.String(20), nullable=False),
     sa.Column("payload", sa.Text, nullable=False),
     sa.Column("created_at", UTCDateTime, nullable=False),
+    # the payload's charts block (JSONText.stored: compressed JSON text behind a header naming its codec),
+    # kept out of ``payload``; NULL for a payload without charts and for rows of schema 6 and earlier, whose
+    # charts are inside ``payload``
+    sa.Column("charts", sa.LargeBinary, nullable=True),
 )
 sa.Index("ix_verdicts_model", verdicts.c.model, verdicts.c.created_at)
 
@@ -1061,30 +1065,55 @@ class Store:
 
     # ---------------------------------------------------------------- verdicts
     def save_verdicts(self, run_id: int, as_of: date, items: Sequence[dict[str, Any]]) -> None:
-        """One verdict row per payload (its strict JSON, charts included), all in one transaction, encoded and
-        inserted :data:`VERDICT_BATCH` at a time (the texts of a 10,000-model check would hold ~0.4 GB)."""
+        """One verdict row per payload, all in one transaction, encoded and inserted :data:`VERDICT_BATCH` at a
+        time.
+
+        A payload's ``charts`` mapping (~33 KB of the ~36 KB of JSON a model) goes to the row's ``charts``
+        column as :attr:`drift.jsontext.JSONText.stored`: a JSONText's compressed bytes as they are (~8 KB),
+        a plain dict encoded and compressed the same way first (:func:`drift.jsontext.stored_text`); the rest
+        of the payload is ``payload``, its strict JSON (:func:`_strict_json`). A payload without a charts
+        mapping (an error entry) is stored whole, ``charts`` NULL."""
         if not items:
             return
         now = utcnow()
         with self.begin() as conn:
             for part in _chunks(list(items), VERDICT_BATCH):
-                conn.execute(verdicts.insert(), [
-                    {"run": run_id, "model": it["name"], "as_of": as_of, "verdict": it["verdict"],
-                     "payload": _strict_json(it), "created_at": now} for it in part])
+                rows = []
+                for it in part:
+                    charts = _stored_charts(it.get("charts"))
+                    body = it if charts is None else {k: val for k, val in it.items() if k != "charts"}
+                    rows.append({"run": run_id, "model": it["name"], "as_of": as_of, "verdict": it["verdict"],
+                                 "payload": _strict_json(body), "charts": charts, "created_at": now})
+                conn.execute(verdicts.insert(), rows)
 
-    def latest_verdicts(self, since: datetime | None = None) -> list[dict[str, Any]]:
-        """The newest verdict row per model (optionally only those created since a time)."""
+    def latest_verdicts(self, since: datetime | None = None, *, charts: bool = True) -> list[dict[str, Any]]:
+        """The newest verdict row per model (optionally only those created since a time), ``payload`` decoded.
+
+        ``charts=True``: a row written with its charts in their own column gets them back as
+        ``payload["charts"]``, a :class:`drift.jsontext.JSONText` that decodes nothing until read (a digest
+        draws a few models of thousands); a row of schema 6 or earlier has them inside its payload, read as
+        they always were. ``charts=False``: the column is not read, and no payload carries ``charts``.
+        """
         v = verdicts
         newest = sa.select(v.c.model, sa.func.max(v.c.id).label("mid")).group_by(v.c.model)
         if since is not None:
             newest = newest.where(v.c.created_at >= since)
         sub = newest.subquery()
-        q = sa.select(v).join(sub, v.c.id == sub.c.mid).order_by(v.c.model)
+        cols = [c for c in v.c if c.name != "charts"]
+        q = (sa.select(*cols, *([v.c.charts.label("_charts")] if charts else []))
+             .join(sub, v.c.id == sub.c.mid).order_by(v.c.model))
         with self.connect() as conn:
             out = []
             for r in conn.execute(q):
                 d = dict(r._mapping)
-                d["payload"] = json.loads(d["payload"])
+                blob = d.pop("_charts", None)
+                payload = json.loads(d["payload"])
+                if isinstance(payload, dict):
+                    if not charts:
+                        payload.pop("charts", None)
+                    elif blob is not None:
+                        payload["charts"] = JSONText.from_stored(blob)
+                d["payload"] = payload
                 out.append(d)
             return out
 
@@ -1208,12 +1237,12 @@ def _strict_json(obj: Any) -> str:
     """Strict JSON of a payload: NaN/inf as null (walked only when present: the walk costs more than the
     encoding, and payloads already carry None for missing values).
 
-    With orjson installed (a dependency) it writes the text: the chart arrays' floats are most of a payload
-    and the standard encoder spends ~1.4 ms a payload on them (1.4 s of a 1,000-model check's verdict
-    write), orjson a tenth of that. Its text differs only in spacing and exponent style (``1e-5`` for
-    ``1e-05``), and NaN/inf are null as well: the payload reads back identical. A block kept as its JSON
-    text (:class:`drift.jsontext.JSONText`, the charts) is spliced in verbatim: that text was written by
-    orjson with the same options, so the row is what encoding the decoded block would give. Anything orjson
+    With orjson installed (a dependency) it writes the text: float arrays (a chart block has ~3,000) cost
+    the standard encoder ~1.4 ms a payload, orjson a tenth of that. Its text differs only in spacing and
+    exponent style (``1e-5`` for ``1e-05``), and NaN/inf are null as well: the payload reads back
+    identical. A block kept as its JSON text (:class:`drift.jsontext.JSONText`; a verdict's charts go to
+    their own column instead, :meth:`Store.save_verdicts`) is spliced in verbatim: that text was written by
+    orjson with the same options, so the JSON is what encoding the decoded block would give. Anything orjson
     refuses (an integer beyond 64 bits, an unknown type) goes through the standard encoder as before, which
     decodes such a block."""
     if _orjson is not None:
@@ -1225,6 +1254,14 @@ def _strict_json(obj: Any) -> str:
         return json.dumps(obj, allow_nan=False, default=_decoded)
     except ValueError:
         return json.dumps(_jsonable(obj), allow_nan=False, default=_decoded)
+
+
+def _stored_charts(charts: Any) -> bytes | None:
+    """The ``verdicts.charts`` bytes of a payload's charts block; None when it is not a mapping (absent or
+    null: the payload is stored whole)."""
+    if not isinstance(charts, Mapping):
+        return None
+    return stored_text(charts, _strict_json)
 
 
 def _fragment(obj: Any) -> Any:
@@ -1483,10 +1520,18 @@ def _migrate_5_to_6(conn: Connection, url: str) -> None:
         _add_column(conn, locks, "proc_start")
 
 
+def _migrate_6_to_7(conn: Connection, url: str) -> None:
+    """Schema 6 -> 7: ``verdicts.charts``, each new row's charts block compressed in its own column and out of
+    ``payload`` (NULL on old rows: their charts stay inside ``payload`` and read as before)."""
+    inspector = sa.inspect(conn)
+    if inspector.has_table("verdicts") and "charts" not in {c["name"] for c in inspector.get_columns("verdicts")}:
+        _add_column(conn, verdicts, "charts")
+
+
 #: schema migrations: from version -> step (each runs in the transaction of :func:`migrate`)
 MIGRATIONS: dict[int, Callable[[Connection, str], None]] = {1: _migrate_1_to_2, 2: _migrate_2_to_3,
                                                             3: _migrate_3_to_4, 4: _migrate_4_to_5,
-                                                            5: _migrate_5_to_6}
+                                                            5: _migrate_5_to_6, 6: _migrate_6_to_7}
 
 
 def migrate(conn: Connection, url: str) -> int:

@@ -155,7 +155,7 @@ def check(d: Path, day: str, store: str, check_yaml: str) -> tuple[dict, list[tu
     assert r.returncode == 0, r.stderr
     eng = sa.create_engine(f"sqlite:///{d / store}")
     with eng.connect() as conn:
-        rows = [tuple(r) for r in conn.execute(sa.text("select model, verdict, payload from verdicts order by id"))]
+        rows = [tuple(r) for r in conn.execute(sa.text("select model, verdict, payload, charts from verdicts order by id"))]
     eng.dispose()
     return json.loads(r.stdout), rows, r.stderr
 

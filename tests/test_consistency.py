@@ -244,12 +244,14 @@ def test_demo_every_chart_is_drawn_or_says_why(demo: Any) -> None:
     import sqlite3
 
     from drift.config import load_config  # noqa: F401 - the payload is read from the store below
+    from drift.jsontext import JSONText
 
     con = sqlite3.connect(str(demo.out / "drift.db"))
-    payload = json.loads(con.execute("select payload from verdicts where model = 'north' order by id desc")
-                         .fetchone()[0])
+    payload, stored = con.execute("select payload, charts from verdicts where model = 'north' order by id desc"
+                                  ).fetchone()
     con.close()
-    feed = payload["charts"]["feeds"]["campaign_north"]
+    assert "charts" not in json.loads(payload)  # the charts are in their own column
+    feed = JSONText.from_stored(stored)["feeds"]["campaign_north"]
     assert feed["form"] == "known" and len(feed["periods"]) > 20 and len(feed["available_at"]) == len(feed["periods"])
 
 

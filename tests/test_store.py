@@ -95,6 +95,48 @@ def test_verdicts_all_or_nothing(store, monkeypatch) -> None:
     assert [v["model"] for v in got] == [f"m{i}" for i in range(5)] and got[0]["payload"] == good[0]
 
 
+def _chart_block(k: float = 0.0) -> dict:
+    """A chart block in the payload's shape (ISO periods, float lists with None gaps, nested blocks)."""
+    return {"periods": ["2025-12-01", "2025-12-08", "2025-12-15"], "monitor_start_index": 1,
+            "cusum": {"path": [None, 0.123456 + k, -1.5e-07], "bounds": {"0.05": [1.0, 1.25, 1.5]}},
+            "monitor": {"title": "CUSUM — über", "alarm_date": None, "level": 0.05}}
+
+
+def _payload(name: str, charts) -> dict:
+    return {"name": name, "verdict": "keep", "as_of": "2025-12-31", "actions": [{"action": "keep"}],
+            "drivers": [{"series": "x", "late": False}], "charts": charts}
+
+
+def test_verdict_charts_go_to_their_own_column_and_read_back_lazily(store) -> None:
+    """A JSONText's held bytes are written as they are, a plain dict the same way after encoding; the payload
+    text has no charts; reading them back decodes nothing until read; an error entry has no charts."""
+    from drift.jsontext import JSONText, as_json_text
+    from drift.store import verdicts
+
+    held = as_json_text(_chart_block())
+    assert isinstance(held, JSONText)
+    items = [_payload("a", held), _payload("b", _chart_block(1.0)),
+             {"name": "c", "verdict": "error", "reason": "no data", "charts": None},
+             {"name": "d", "verdict": "error", "reason": "no data"}]
+    rid = store.start_run("check", as_of=date(2025, 12, 31))
+    store.save_verdicts(rid, date(2025, 12, 31), items)
+    with store.connect() as conn:
+        rows = {r.model: r for r in conn.execute(sa.select(verdicts.c.model, verdicts.c.payload,
+                                                           verdicts.c.charts))}
+    assert bytes(rows["a"].charts) == held.stored  # the compressed bytes, neither expanded nor re-encoded
+    assert bytes(rows["b"].charts) == as_json_text(_chart_block(1.0)).stored  # one code path for a dict
+    assert rows["c"].charts is None and rows["d"].charts is None
+    assert all('"charts"' not in rows[m].payload for m in "abd") and '"charts":null' in rows["c"].payload
+    got = {v["model"]: v["payload"] for v in store.latest_verdicts()}
+    for m in "ab":
+        assert isinstance(got[m]["charts"], JSONText) and not got[m]["charts"].is_decoded
+    assert got == {it["name"]: it for it in items}  # what the check produced (charts compared decoded)
+    assert got["a"]["charts"].text == held.text and got["b"]["charts"] == _chart_block(1.0)
+    plain = {v["model"]: v["payload"] for v in store.latest_verdicts(charts=False)}
+    assert plain == {it["name"]: {k: x for k, x in it.items() if k != "charts"} for it in items}
+    assert list(store.latest_verdicts()[0]) == ["id", "run", "model", "as_of", "verdict", "payload", "created_at"]
+
+
 def test_naive_datetime_is_refused(sqlite_store) -> None:
     with pytest.raises(sa.exc.StatementError, match="naive datetime"):
         sqlite_store.start_run("check", scheduled_for=datetime(2025, 1, 1))
@@ -353,6 +395,55 @@ def test_a_schema_5_store_gets_run_owners_and_the_lock_holders_start(empty_url) 
         assert old.heartbeat_at == old.started_at and old.pid is None
         (closed,) = store.close_stale_runs()
         assert closed["id"] == old.id and "no heartbeat" in closed["why"]
+    finally:
+        store.dispose()
+
+
+@pytest.mark.parametrize("empty_url", ["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)],
+                         indirect=True)
+def test_a_schema_6_store_keeps_its_verdicts_charts_in_the_payload(empty_url) -> None:
+    """Rows of schema 6 hold their charts inside ``payload`` (the text main wrote): after the migration they
+    read exactly as before, and the rows written next carry theirs in ``verdicts.charts``."""
+    import json
+
+    import drift.store as st
+    from drift.jsontext import JSONText, as_json_text
+    from drift.store import verdicts
+
+    old_items = [_payload("a", as_json_text(_chart_block())),
+                 {"name": "b", "verdict": "error", "reason": "no data"}]
+    store = open_store(empty_url)
+    day = date(2025, 12, 24)
+    rid = store.start_run("check", as_of=day)
+    with store.begin() as conn:
+        conn.exec_driver_sql("ALTER TABLE verdicts DROP COLUMN charts")
+        for it in old_items:  # as schema 6 wrote them: the whole payload's strict JSON, charts spliced in
+            conn.execute(sa.text("INSERT INTO verdicts (run, model, as_of, verdict, payload, created_at) "
+                                 "VALUES (:run, :model, :as_of, :verdict, :payload, :created_at)"),
+                         {"run": rid, "model": it["name"], "as_of": day, "verdict": it["verdict"],
+                          "payload": st._strict_json(it), "created_at": datetime(2025, 12, 24, 6)})
+        conn.execute(meta.update().where(meta.c.key == "schema_version").values(value="6"))
+        texts = dict(conn.exec_driver_sql("SELECT model, payload FROM verdicts").fetchall())
+    store.dispose()
+    store = open_store(empty_url)
+    try:
+        with store.connect() as conn:
+            version = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).scalar()
+            rows = conn.execute(sa.select(verdicts.c.model, verdicts.c.payload, verdicts.c.charts)).fetchall()
+        assert version == str(SCHEMA_VERSION)
+        assert {r.model: (r.payload, r.charts) for r in rows} == {m: (t, None) for m, t in texts.items()}
+        before = {v["model"]: v["payload"] for v in store.latest_verdicts()}
+        assert before == {m: json.loads(t) for m, t in texts.items()}  # read exactly as before
+        assert type(before["a"]["charts"]) is dict and before["a"]["charts"] == _chart_block()
+        assert "charts" not in store.latest_verdicts(charts=False)[0]["payload"]
+        # the next check's rows: charts in their own column, newest row per model wins as before
+        rid = store.start_run("check", as_of=date(2025, 12, 31))
+        store.save_verdicts(rid, date(2025, 12, 31), [_payload("a", as_json_text(_chart_block(2.0)))])
+        after = {v["model"]: v["payload"] for v in store.latest_verdicts()}
+        assert isinstance(after["a"]["charts"], JSONText) and after["a"]["charts"] == _chart_block(2.0)
+        assert after["b"] == before["b"]
+        again = open_store(empty_url)  # opening it again is harmless
+        again.dispose()
     finally:
         store.dispose()
 

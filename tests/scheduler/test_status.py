@@ -81,3 +81,30 @@ def test_status_of_an_empty_store(store: Store) -> None:
     assert st["lock"] is None and st["open_alerts"] == {} and st["stale_feeds"] == []
     assert st["outbox"]["pending"] == 0 and st["jobs"]["retry"]["schedule"] == "every 10m"
     assert "not running" in format_status(st)
+
+
+def test_status_never_reads_the_verdict_charts(store: Store) -> None:
+    """Status needs each newest verdict's drivers only: the charts column is never selected (at 10,000 models
+    it is most of the verdict bytes)."""
+    import sqlalchemy as sa
+
+    from drift.jsontext import as_json_text
+
+    _fill(store)
+    rid = store.start_run("check", as_of=date(2026, 3, 9))
+    store.save_verdicts(rid, date(2026, 3, 9), [{
+        "name": "sales_south", "verdict": "keep", "drivers": [{"series": "price", "late": True}],
+        "charts": as_json_text({"periods": ["2026-03-02"], "cusum": {"path": [0.5]}})}])
+    seen: list[str] = []
+
+    def record(conn, cursor, statement, parameters, context, executemany):
+        seen.append(statement)
+
+    sa.event.listen(store.engine, "before_cursor_execute", record)
+    try:
+        st = collect_status(Config(store=store.url), store, now=_utc(2026, 3, 10))
+    finally:
+        sa.event.remove(store.engine, "before_cursor_execute", record)
+    verdict_reads = [s for s in seen if "FROM verdicts" in s]
+    assert verdict_reads and not any("charts" in s for s in verdict_reads), verdict_reads
+    assert [f["model"] for f in st["stale_feeds"]] == ["sales_north", "sales_south"]
