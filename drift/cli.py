@@ -23,7 +23,7 @@ from drift.exceptions import ConfigError, DecisionError, DriftError, LockError
 
 log = logging.getLogger("drift")
 
-EXIT_RUNTIME, EXIT_CONFIG, EXIT_LOCKED, EXIT_UNCHECKED = 1, 2, 3, 4
+EXIT_RUNTIME, EXIT_CONFIG, EXIT_LOCKED, EXIT_UNCHECKED, EXIT_UNDELIVERED = 1, 2, 3, 4, 5
 
 
 def _fail(code: int, msg: str) -> NoReturn:
@@ -267,7 +267,8 @@ def _strict(obj: Any) -> Any:
               help="Record this uncertain outbox row as delivered (repeatable).")
 def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> None:
     """Send whatever is pending in the outbox now, without waiting for retry backoffs (failed sends stay
-    pending and are retried later)."""
+    pending and are retried later). Exit status 5 when a notice was not delivered (failed and kept for a
+    retry, uncertain, given up or deferred)."""
     def go() -> None:
         from drift.delivery.outbox import resolve_uncertain, row_statuses
         from drift.pipeline import run_deliver
@@ -295,6 +296,8 @@ def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> No
                                "arrived the first time: the recipients may receive it twice")
             report = run_deliver(cfg, store)
         click.echo(report.describe() if hasattr(report, "describe") else str(report))
+        if not getattr(report, "ok", True):  # a cron job or a unit file sees that something is still owed
+            sys.exit(EXIT_UNDELIVERED)
 
     _run(go)
 

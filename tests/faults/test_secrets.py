@@ -97,8 +97,8 @@ def test_smtp_password_never_leaks(tmp_path: Path, caplog: pytest.LogCaptureFixt
         import time
 
         time.sleep(1.1)  # past the one-second backoff
-        res = run("deliver", "--config", c)
-        assert res.returncode == 0 and b"login" in res.stdout and b"DRIFT_T_SMTP_PASSWORD" in res.stdout, res.stdout
+        res = run("deliver", "--config", c)  # exit 5: notices still owed
+        assert res.returncode == 5 and b"login" in res.stdout and b"DRIFT_T_SMTP_PASSWORD" in res.stdout, res.stdout
         assert srv.messages == []
         # accepting it: everything goes
         gate.accepts = MARKER
