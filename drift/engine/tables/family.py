@@ -30,6 +30,7 @@ from drift.engine.tables.family_data import (  # noqa: F401 - the data, re-expor
     VARIANCE_DOF,
     VARIANCE_KAPPA,
 )
+from drift.engine.tables.recent import Recent, array_key
 
 
 def _dof_stack(known: Any, by_dof: dict, dof: Any, shape: tuple[int, ...]) -> np.ndarray:
@@ -64,10 +65,8 @@ def _interp_steps(rows: np.ndarray, steps: np.ndarray) -> np.ndarray:
     return (1.0 - w) * lo + w * hi
 
 
-#: the last few :func:`quantiles` looked up, by their arguments' bytes: a screening batch asks for the same
-#: (steps, dof) rows for each level, warning level and p-value of every member (read-only arrays)
-_RECENT: dict[tuple[Any, ...], np.ndarray] = {}
-_RECENT_MAX = 16
+#: the last few :func:`quantiles` looked up (:mod:`drift.engine.tables.recent`)
+_RECENT = Recent()
 
 
 def quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:
@@ -77,15 +76,7 @@ def quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:
     one returned for the same arguments a moment ago)."""
     st = np.atleast_1d(np.asarray(steps, dtype=float))
     nu = None if dof is None else np.asarray(dof, dtype=float)
-    key = (detector, st.shape, st.tobytes(), None if nu is None else (nu.shape, nu.tobytes()))
-    got = _RECENT.get(key)
-    if got is None:
-        got = _quantiles(detector, st, nu)
-        got.setflags(write=False)
-        if len(_RECENT) >= _RECENT_MAX:
-            _RECENT.pop(next(iter(_RECENT)), None)
-        _RECENT[key] = got
-    return got
+    return _RECENT.get((detector, array_key(st), array_key(nu)), lambda: _quantiles(detector, st, nu))
 
 
 def _quantiles(detector: str, steps: Any, dof: Any = None) -> np.ndarray:

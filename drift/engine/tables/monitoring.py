@@ -28,6 +28,7 @@ from drift.engine.tables.monitoring_data import (  # noqa: F401 - the data, re-e
     TAIL_PROBS,
     TRIGG,
 )
+from drift.engine.tables.recent import Recent, array_key
 
 
 def _row(table: dict, key: float, name: str) -> Any:
@@ -72,10 +73,8 @@ def _check_dof(dof: Any, shape: tuple[int, ...]) -> np.ndarray | None:
     return nu
 
 
-#: the last few :func:`quantiles` looked up, by their arguments' bytes: a screening batch asks for the same
-#: rows for each level, warning level and p-value of a monitor (read-only arrays)
-_RECENT: dict[tuple[Any, ...], np.ndarray] = {}
-_RECENT_MAX = 16
+#: the last few :func:`quantiles` looked up (:mod:`drift.engine.tables.recent`)
+_RECENT = Recent()
 
 
 def quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np.ndarray:
@@ -84,15 +83,8 @@ def quantiles(detector: str, param: float, horizon: Any, dof: Any = None) -> np.
     may be the one returned for the same arguments a moment ago)."""
     h = np.atleast_1d(np.asarray(horizon, dtype=float))
     nu = None if dof is None else np.asarray(dof, dtype=float)
-    key = (detector, float(param), h.shape, h.tobytes(), None if nu is None else (nu.shape, nu.tobytes()))
-    got = _RECENT.get(key)
-    if got is None:
-        got = _distinct_quantiles(detector, param, h, dof)
-        got.setflags(write=False)
-        if len(_RECENT) >= _RECENT_MAX:
-            _RECENT.pop(next(iter(_RECENT)), None)
-        _RECENT[key] = got
-    return got
+    return _RECENT.get((detector, float(param), array_key(h), array_key(nu)),
+                       lambda: _distinct_quantiles(detector, param, h, dof))
 
 
 def _distinct_quantiles(detector: str, param: float, h: np.ndarray, dof: Any) -> np.ndarray:
