@@ -265,25 +265,35 @@ def _strict(obj: Any) -> Any:
                    "status). An uncertain notice may then arrive twice.")
 @click.option("--accept", "accept", multiple=True, type=int, metavar="ID",
               help="Record this uncertain outbox row as delivered (repeatable).")
-def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...]) -> None:
+@click.option("--dismiss", "dismiss", multiple=True, type=int, metavar="ID",
+              help="Stop listing this given-up outbox row (handled another way; kept in the store, never sent; "
+                   "repeatable).")
+def deliver(config: str, resend: tuple[int, ...], accept: tuple[int, ...], dismiss: tuple[int, ...]) -> None:
     """Send whatever is pending in the outbox now, without waiting for retry backoffs (failed sends stay
     pending and are retried later). Exit status 5 when a notice was not delivered (failed and kept for a
     retry, uncertain, given up or deferred)."""
     def go() -> None:
-        from drift.delivery.outbox import resolve_uncertain, row_statuses
+        from drift.delivery.outbox import dismiss_given_up, resolve_uncertain, row_statuses
         from drift.pipeline import run_deliver
 
         with _opened(config) as (cfg, store):
-            both = sorted(set(resend) & set(accept))
+            given = [*map(set, (resend, accept, dismiss))]
+            both = sorted((given[0] & given[1]) | (given[0] & given[2]) | (given[1] & given[2]))
             if both:
-                _fail(EXIT_CONFIG, f"outbox row {', '.join(map(str, both))}: give each row to --resend or "
-                                   "--accept, not both")
-            found = row_statuses(store, [*resend, *accept])
+                _fail(EXIT_CONFIG, f"outbox row {', '.join(map(str, both))}: give each row to one of --resend, "
+                                   "--accept or --dismiss")
+            found = row_statuses(store, [*resend, *accept, *dismiss])
             wrong = {i: found[i] for i in resend if found[i] not in ("uncertain", "dead")}
             wrong.update({i: found[i] for i in accept if found[i] != "uncertain"})
+            wrong.update({i: found[i] for i in dismiss if found[i] != "dead"})
             if wrong:
-                _fail(EXIT_CONFIG, "only uncertain outbox rows can be accepted, and only uncertain or given-up "
-                      "(dead) ones resent; " + "; ".join(f"row {i} is {st}" for i, st in sorted(wrong.items())))
+                _fail(EXIT_CONFIG, "only uncertain outbox rows can be accepted, only given-up (dead) ones dismissed, "
+                      "and only uncertain or given-up ones resent; "
+                      + "; ".join(f"row {i} is {st}" for i, st in sorted(wrong.items())))
+            if dismiss:
+                n = dismiss_given_up(store, list(dismiss))
+                click.echo(f"{n} given-up notice{'s' if n != 1 else ''} dismissed (kept in the store, no longer "
+                           "listed)")
             if accept:
                 n = resolve_uncertain(store, list(accept), resend=False)
                 click.echo(f"{n} uncertain notice{'s' if n != 1 else ''} recorded as delivered")

@@ -204,6 +204,10 @@ def _outbox_lines(ob: dict[str, Any]) -> list[str]:
         lines.append(f"  {n_unc} notice{'s' if n_unc != 1 else ''} may have been delivered or not (the connection "
                      "failed after the message went out): never re-sent automatically; ask the recipients, then "
                      "`drift deliver --resend ID` or `--accept ID`")
+    if ob["dead"]:
+        n_dead = len(ob["dead"])
+        lines.append(f"  {n_dead} notice{'s' if n_dead != 1 else ''} given up: fix the cause, then `drift deliver "
+                     "--resend ID`, or `--dismiss ID` once handled another way")
     for st in _OPERATOR_STATUSES:
         for r in ob[st]:
             lines.append(f"  {st}: #{r['id']} via {r['channel']}: {r['subject']} ({r['attempts']} attempts)"

@@ -96,7 +96,7 @@ _MAX_DOUBLINGS = 30
 #: built-in channel kinds and the modules that register them (imported on first use)
 _BUILTIN = {"email": "drift.delivery.email", "folder": "drift.delivery.folder", "webhook": "drift.delivery.webhook"}
 #: statuses of an outbox row
-STATUSES = ("pending", "sending", "delivering", "sent", "uncertain", "dead")
+STATUSES = ("pending", "sending", "delivering", "sent", "uncertain", "dead", "dismissed")
 #: statuses of a row claimed by a process (its claim lease in next_attempt_at)
 _CLAIMED = ("sending", "delivering")
 
@@ -641,6 +641,16 @@ def row_statuses(store: Store, ids: Sequence[int]) -> dict[int, str]:
 def not_uncertain(store: Store, ids: Sequence[int], allowed: Sequence[str] = ("uncertain",)) -> dict[int, str]:
     """Of the given outbox row ids, those whose status is not in ``allowed``, with their status."""
     return {i: st for i, st in row_statuses(store, ids).items() if st not in allowed}
+
+
+def dismiss_given_up(store: Store, ids: Sequence[int]) -> int:
+    """An operator's decision on given-up rows (status ``dead``): handled another way, no longer listed by
+    ``drift status`` or the digest. The row is kept (status ``dismissed``, its last error as it was) and
+    never sent. Returns the number of rows changed."""
+    with store.begin() as conn:
+        res = conn.execute(outbox.update().where(outbox.c.id.in_([int(i) for i in ids]), outbox.c.status == "dead")
+                           .values(status="dismissed"))
+        return int(res.rowcount)
 
 
 def resolve_uncertain(store: Store, ids: Sequence[int], *, resend: bool, now: datetime | None = None) -> int:

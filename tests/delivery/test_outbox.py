@@ -172,6 +172,55 @@ def test_cli_resend_and_accept_uncertain_rows(tmp_path: Path) -> None:
         st.dispose()
 
 
+def test_cli_dismiss_given_up_rows(tmp_path: Path) -> None:
+    """`drift deliver --dismiss ID`: a given-up (dead) notice handled another way is kept (status dismissed,
+    its last error as it was), never sent, and no longer listed by `drift status` or the digest; rows in
+    another status are refused (exit 2, nothing changed), and a row given to two decisions too."""
+    from click.testing import CliRunner
+
+    from drift.cli import cli
+    from drift.config import load_config
+    from drift.delivery.digest import _undelivered
+    from drift.status import collect_status, format_status
+    from drift.store import open_store
+
+    (tmp_path / "drift.yaml").write_text(
+        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
+        encoding="utf-8")
+    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
+    try:
+        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
+        process_alerts(cfg, st, outcome(payload("k000", [action("refit")]), payload("k001", [action("refit")])),
+                       now=T0)
+        with st.begin() as conn:
+            conn.execute(outbox_t.update().values(status="dead", last_error="550 no such mailbox"))
+        run = CliRunner().invoke
+        cfg_file = str(tmp_path / "drift.yaml")
+        full = load_config(tmp_path / "drift.yaml")
+        assert "2 notices given up" in format_status(collect_status(full, st))
+        res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1", "--resend", "1"])
+        assert res.exit_code == 2 and "give each row to one of" in res.output
+        res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1", "--dismiss", "9"])
+        assert res.exit_code == 2 and "row 9 is no such row" in res.output
+        assert outbox_summary(st).counts["dead"] == 2  # nothing changed
+        res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1"])
+        assert res.exit_code == 0, res.output
+        assert "1 given-up notice dismissed" in res.output
+        counts = outbox_summary(st).counts
+        assert (counts["dead"], counts["dismissed"], counts["sent"]) == (1, 1, 0)
+        with st.connect() as conn:
+            row = conn.execute(sa.select(outbox_t.c.status, outbox_t.c.last_error).where(outbox_t.c.id == 1)).one()
+        assert tuple(row) == ("dismissed", "550 no such mailbox")
+        assert not (tmp_path / "out" / "alerts.jsonl").exists()  # never sent
+        assert [u.id for u in _undelivered(st)] == [2]
+        text = format_status(collect_status(full, st))
+        assert "#2 via" in text and "#1 via" not in text and "1 notice given up" in text
+        res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1"])
+        assert res.exit_code == 2 and "row 1 is dismissed" in res.output
+    finally:
+        st.dispose()
+
+
 def test_email_row_carries_the_chart_json(tmp_path: Path, store: Any) -> None:
     """A check payload keeps its charts as JSON text (drift.jsontext.JSONText); its e-mail notice row holds
     them as a JSON object (never the wrapper's str()), the other channels' rows none."""
