@@ -12,6 +12,7 @@ import socket
 import ssl
 import threading
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -92,6 +93,29 @@ def outcome(*models: dict[str, Any], run_id: int = 1, as_of: str = AS_OF) -> Sim
 PNG_1PX = bytes.fromhex(
     "89504e470d0a1a0a0000000d4948445200000001000000010806000000"
     "1f15c4890000000d49444154789c6360000002000154a24f5d0000000049454e44ae426082")
+
+
+@contextmanager
+def folder_outbox(tmp_path: Path, models: tuple[str, ...], status: str, last_error: str) -> Iterator[tuple[Any, str]]:
+    """A store whose outbox holds one refit notice per model for a folder channel ``x`` (``out/``), every row
+    set to ``status`` with ``last_error``, and a ``drift.yaml`` naming that store and channel: yields
+    (store, config file) for a test of an operator's ``drift deliver`` decisions."""
+    from drift.delivery.alerts import process_alerts
+
+    (tmp_path / "drift.yaml").write_text(
+        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
+        encoding="utf-8")
+    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
+    try:
+        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
+        process_alerts(cfg, st, outcome(*(payload(m, [action("refit")]) for m in models)), now=T0)
+        from drift.store import outbox
+
+        with st.begin() as conn:
+            conn.execute(outbox.update().values(status=status, last_error=last_error))
+        yield st, str(tmp_path / "drift.yaml")
+    finally:
+        st.dispose()
 
 
 def fake_renderer(model_payload: dict[str, Any], kinds: Any = None) -> dict[str, bytes]:

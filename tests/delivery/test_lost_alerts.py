@@ -37,6 +37,7 @@ from tests.delivery.conftest import (
     SmtpServer,
     action,
     fake_renderer,
+    folder_outbox,
     make_cfg,
     outcome,
     payload,
@@ -155,22 +156,11 @@ def test_resend_says_it_may_duplicate(tmp_path: Path) -> None:
     from click.testing import CliRunner
 
     from drift.cli import cli
-    from drift.store import open_store
 
-    (tmp_path / "drift.yaml").write_text(
-        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
-        encoding="utf-8")
-    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
-    try:
-        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
-        process_alerts(cfg, st, outcome(payload("k000", [action("refit")])), now=T0)
-        with st.begin() as conn:
-            conn.execute(outbox_t.update().values(status="uncertain", last_error="may have been delivered"))
-        res = CliRunner().invoke(cli, ["deliver", "--config", str(tmp_path / "drift.yaml"), "--resend", "1"])
+    with folder_outbox(tmp_path, ("k000",), "uncertain", "may have been delivered") as (_, cfg_file):
+        res = CliRunner().invoke(cli, ["deliver", "--config", cfg_file, "--resend", "1"])
         assert res.exit_code == 0, res.output
         assert "may receive it twice" in res.output
-    finally:
-        st.dispose()
 
 
 # ------------------------------------------------------------------------ partial recipients

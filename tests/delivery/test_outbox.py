@@ -23,7 +23,7 @@ from drift.delivery.outbox import (
     register_channel,
 )
 from drift.store import outbox as outbox_t
-from tests.delivery.conftest import T0, action, make_cfg, outcome, payload
+from tests.delivery.conftest import T0, action, folder_outbox, make_cfg, outcome, payload
 
 
 def test_backoff_doubles_and_caps(tmp_path: Path) -> None:
@@ -142,20 +142,9 @@ def test_cli_resend_and_accept_uncertain_rows(tmp_path: Path) -> None:
     from click.testing import CliRunner
 
     from drift.cli import cli
-    from drift.store import open_store
 
-    (tmp_path / "drift.yaml").write_text(
-        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
-        encoding="utf-8")
-    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
-    try:
-        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
-        process_alerts(cfg, st, outcome(payload("k000", [action("refit")]), payload("k001", [action("refit")])),
-                       now=T0)
-        with st.begin() as conn:
-            conn.execute(outbox_t.update().values(status="uncertain", last_error="may have been delivered"))
+    with folder_outbox(tmp_path, ("k000", "k001"), "uncertain", "may have been delivered") as (st, cfg_file):
         run = CliRunner().invoke
-        cfg_file = str(tmp_path / "drift.yaml")
         res = run(cli, ["deliver", "--config", cfg_file, "--resend", "1", "--accept", "7"])
         assert res.exit_code == 2 and "row 7 is no such row" in res.output
         assert outbox_summary(st).counts["uncertain"] == 2  # nothing changed
@@ -168,8 +157,6 @@ def test_cli_resend_and_accept_uncertain_rows(tmp_path: Path) -> None:
         assert len(lines) == 1  # only the resent row was written; the accepted one was not sent again
         res = run(cli, ["deliver", "--config", cfg_file, "--accept", "2"])
         assert res.exit_code == 2 and "row 2 is sent" in res.output
-    finally:
-        st.dispose()
 
 
 def test_cli_dismiss_given_up_rows(tmp_path: Path) -> None:
@@ -182,20 +169,9 @@ def test_cli_dismiss_given_up_rows(tmp_path: Path) -> None:
     from drift.config import load_config
     from drift.delivery.digest import _undelivered
     from drift.status import collect_status, format_status
-    from drift.store import open_store
 
-    (tmp_path / "drift.yaml").write_text(
-        f"store: sqlite:///{tmp_path / 'd.db'}\nalerts:\n  channels:\n    - {{kind: folder, path: out, name: x}}\n",
-        encoding="utf-8")
-    st = open_store(f"sqlite:///{tmp_path / 'd.db'}")
-    try:
-        cfg = make_cfg(tmp_path, [{"kind": "folder", "path": "out", "name": "x"}])
-        process_alerts(cfg, st, outcome(payload("k000", [action("refit")]), payload("k001", [action("refit")])),
-                       now=T0)
-        with st.begin() as conn:
-            conn.execute(outbox_t.update().values(status="dead", last_error="550 no such mailbox"))
+    with folder_outbox(tmp_path, ("k000", "k001"), "dead", "550 no such mailbox") as (st, cfg_file):
         run = CliRunner().invoke
-        cfg_file = str(tmp_path / "drift.yaml")
         full = load_config(tmp_path / "drift.yaml")
         assert "2 notices given up" in format_status(collect_status(full, st))
         res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1", "--resend", "1"])
@@ -217,8 +193,6 @@ def test_cli_dismiss_given_up_rows(tmp_path: Path) -> None:
         assert "#2 via" in text and "#1 via" not in text and "1 notice given up" in text
         res = run(cli, ["deliver", "--config", cfg_file, "--dismiss", "1"])
         assert res.exit_code == 2 and "row 1 is dismissed" in res.output
-    finally:
-        st.dispose()
 
 
 def test_email_row_carries_the_chart_json(tmp_path: Path, store: Any) -> None:
