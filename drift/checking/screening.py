@@ -310,13 +310,11 @@ def _floats(a: Any) -> list[float]:
 
 
 def _monitor(Y: np.ndarray, X: np.ndarray, m: np.ndarray, **kw: Any) -> Any:
-    """engine.monitor (engine.monitor_levels when given ``levels``), or None when no model of the batch can
+    """engine.monitor_levels (one result per level of ``levels``), or None when no model of the batch can
     be monitored yet (e.g. no data after the reference period): the batch then simply has no monitoring
     evidence."""
     try:
-        if "levels" in kw:
-            return engine.monitor_levels(Y, X, m, **kw)
-        return engine.monitor(Y, X, m, **kw)
+        return engine.monitor_levels(Y, X, m, **kw)
     except InsufficientDataError as exc:
         log.info("monitoring skipped for a batch of %d model(s): %s", Y.shape[0], exc)
         return None
