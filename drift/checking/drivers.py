@@ -175,7 +175,7 @@ def _drivers_and_worth(c: _Ctx) -> None:
                 # without it would cost (the same figures as the driver's worth entry)
                 cost = (f"without it the one-step MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
                         f"{c.model.unit} over {window_words(n_both, chk.recent_window)} "
-                        f"(Clark–West p = {fmt_p(cw_p)})")
+                        f"({_refitted(window)}; Clark–West p = {fmt_p(cw_p)})")
                 late_action.reason += (
                     f" It still helps the forecasts, so restore the feed: {cost}." if helps else
                     f" It no longer helps the forecasts much: {cost}. Restore the feed or run without it.")
@@ -188,10 +188,16 @@ def _drivers_and_worth(c: _Ctx) -> None:
                           f"{window_words(n_both, chk.recent_window)} it no "
                           f"longer improves the forecasts (Clark–West p = {fmt_p(cw_p)}) and its recent "
                           f"coefficient interval [{fmt_num((ci or [None])[0])}, {fmt_num((ci or [None, None])[1])}] "
-                          f"covers zero; MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
-                          f"{c.model.unit} without it.")
+                          f"covers zero; without it the one-step MAE would go from {fmt_num(mae_with)} to "
+                          f"{fmt_num(mae_without)} {c.model.unit} ({_refitted(window)}).")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
+
+
+def _refitted(window: int) -> str:
+    """What the worth figures are, said beside them: both models re-estimated on a rolling window, so their
+    MAE is not the as-deployed MAE of the accuracy line (which forecasts with the deployed coefficients)."""
+    return f"both models refitted on each rolling {window}-period window, not the deployed coefficients"
 
 
 def _days(periods: pd.DatetimeIndex, a: int, b: int) -> tuple[str, str]:
