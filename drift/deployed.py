@@ -241,8 +241,8 @@ def monitor_forecast_errors(E: np.ndarray, first: np.ndarray, m: np.ndarray, h: 
     Returns
     -------
     one dict per model: ``bias`` (recent window), ``monitors`` (mean and scale: statistic, pvalue,
-    ``alarm_row`` in E's columns or -1, level, nobs), ``tracking`` (Trigg: last value, ``first_row`` beyond
-    the limit or -1, limit), ``baseline_mean``, ``baseline_mad``, ``used`` (words on the rows monitored).
+    ``alarm_row`` in E's columns or -1, level, nobs), ``tracking`` (Trigg: last value, ``first_row`` where
+    its standing crossing began or -1, limit), ``baseline_mean``, ``baseline_mad``, ``used`` (words on the rows monitored).
     """
     from drift import engine
 
@@ -290,7 +290,7 @@ def monitor_forecast_errors(E: np.ndarray, first: np.ndarray, m: np.ndarray, h: 
         k = np.flatnonzero(usable)
         tr = engine.trigg_signal(mon_e[k], 0.1, level=0.01, mad0=mad0[k])
         sig = np.atleast_2d(tr.signal)
-        fs = np.atleast_1d(tr.first_signal)
+        fs = np.atleast_1d(tr.standing_since())
         for j, i in enumerate(k):
             last = np.flatnonzero(np.isfinite(sig[j]))
             out[i]["tracking"] = {"statistic": float(sig[j, last[-1]]) if last.size else None,

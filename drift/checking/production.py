@@ -75,7 +75,7 @@ def _deployed_replay(c: _Ctx) -> None:
             tr = engine.trigg_signal(fe_mon[None], 0.1, level=0.01, mad0=np.array([ref_abs.mean()]))
             sig = np.atleast_2d(tr.signal)[0]
             last_i = np.flatnonzero(np.isfinite(sig))
-            fs = int(np.atleast_1d(tr.first_signal)[0])
+            fs = int(np.atleast_1d(tr.standing_since())[0])
             if last_i.size:
                 c.tests.append({"test": "tracking-trigg", "statistic": _num(round(float(sig[last_i[-1]]), 4)),
                                 "pvalue": None, "threshold": _num(tr.limit), "level": 0.01,

@@ -171,7 +171,7 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
         trigg_sig = np.atleast_2d(trigg.signal)
         fin = np.isfinite(trigg_sig)  # the last finite value of each row: the signal as of the check
         trigg_last = np.where(fin.any(axis=1), T - 1 - np.argmax(fin[:, ::-1], axis=1), -1).tolist()
-        trigg_first = _ints(trigg.first_signal)
+        trigg_first = _ints(np.atleast_1d(trigg.standing_since()))  # the first check of today's crossing
     retro = None
     if cus is not None and cusq is not None:
         retro = []

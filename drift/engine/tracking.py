@@ -52,6 +52,27 @@ class TrackingResult:
     method: str
     params: dict
 
+    def standing_since(self) -> Any:
+        """Where the crossing that stands at the last non-missing time began: the first index of the run of
+        times, ending with the last non-missing one, at which ``|signal| > limit`` (missing times neither
+        break nor start the run); -1 when the signal is within its limit at its last non-missing time.
+
+        The signal at a time is what a check run then would have seen, so this is the first check of the
+        standing signal. ``first_signal`` is the first crossing ever, which for a per-time limit (a
+        stationary quantile, not a horizon's) is bound to come, on a long enough stable stream, long before
+        any crossing that stands today."""
+        sig = np.atleast_2d(self.signal)
+        fired = np.atleast_2d(self.signals)
+        M, T = sig.shape
+        ok = np.isfinite(sig)
+        cols = np.broadcast_to(np.arange(T), (M, T))
+        last_ok = np.where(ok, cols, -1).max(axis=1)
+        last_calm = np.where(ok & ~fired, cols, -1).max(axis=1)
+        start = np.where(ok & (cols > last_calm[:, None]), cols, T).min(axis=1)
+        standing = (last_ok >= 0) & fired[np.arange(M), np.maximum(last_ok, 0)]
+        out = np.where(standing, start, -1).astype(np.int64)
+        return int(out[0]) if np.ndim(self.signal) == 1 else out
+
 
 def _as_errors(errors: Any) -> tuple[FloatArray, bool]:
     e = np.asarray(errors, dtype=float)

@@ -105,3 +105,32 @@ def test_robustness() -> None:
         tracking_signal(np.ones(10), limit=-1.0)
     with pytest.raises(ValueError, match="infinit"):
         tracking_signal(np.array([[1.0, np.inf]]))
+
+
+def test_trigg_standing_since_against_a_replay() -> None:
+    """``standing_since`` is the first check of the crossing that stands at the last time: replayed here as
+    of every time with a plain loop (common practice, no source: the definition itself), on streams with a
+    crossing that ended, one that stands, missing times inside a run, and none at all."""
+    rng = np.random.default_rng(4)
+    e = rng.normal(0, 1, (40, 120))
+    e[::3, 70:] += 2.5  # a shift that stands at the end in every third stream
+    e[1::5, 20:30] -= 4.0  # an early burst that ends
+    e[rng.random(e.shape) < 0.05] = np.nan
+    e[7, -1] = np.nan  # the last time missing: the run is judged at the last non-missing one
+    tr = trigg_signal(e, 0.1, level=0.01, mad0=np.full(40, 0.8))
+    got = tr.standing_since()
+    for i in range(e.shape[0]):
+        sig = tr.signal[i]
+        times = np.flatnonzero(np.isfinite(sig))
+        want = -1
+        if abs(sig[times[-1]]) > tr.limit:  # standing now: walk back to the first of the run
+            want = int(times[-1])
+            for t in times[::-1]:
+                if abs(sig[t]) <= tr.limit:
+                    break
+                want = int(t)
+        assert got[i] == want
+    assert (got[::3] >= 70).all()  # the shift's run stands, dated at or after the shift
+    assert (tr.first_signal[1::5][got[1::5] >= 0] <= got[1::5][got[1::5] >= 0]).all()
+    one = trigg_signal(e[0], 0.1, level=0.01, mad0=0.8)
+    assert one.standing_since() == got[0]
