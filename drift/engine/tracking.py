@@ -162,7 +162,7 @@ def tracking_signal(errors: Any, *, alpha: float = 0.1, window: int | None = Non
     if not isinstance(limit, (int, float)) or not limit > 0:
         raise ValueError(f"limit must be positive, got {limit!r}")
     if warmup is None:
-        warmup = int(window) if window is not None else max(1, int(round(2.0 / alpha - 1.0)))
+        warmup = int(window) if window is not None else max(1, round(2.0 / alpha - 1.0))
     elif not isinstance(warmup, (int, np.integer)) or warmup < 1:
         raise ValueError(f"warmup must be a positive integer, got {warmup!r}")
     mad = _initial_mad(e, mad0, warmup, "tracking signal")
