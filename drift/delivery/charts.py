@@ -383,8 +383,12 @@ def coefficient_chart(
                     ax.fill_between([x0, x1], v - 1.96 * float(se), v + 1.96 * float(se), color=VERMILION,
                                     alpha=0.12, linewidth=0)
             ax.axvline(at, color=VERMILION, linewidth=1.0, linestyle=":")  # type: ignore[arg-type]
-            ax.annotate(f"{_num_label(before)} → {_num_label(after)}", xy=(at, after), xytext=(4, -10),
-                        textcoords="offset points", ha="left", va="top",
+            # on the side the effect moved to (away from the before line), on a light box: the rolling line,
+            # its band and the reference line run through this corner
+            up = after >= before
+            ax.annotate(f"{_num_label(before)} → {_num_label(after)}", xy=(at, after), xytext=(4, 6 if up else -6),
+                        textcoords="offset points", ha="left", va="bottom" if up else "top",
+                        bbox={"boxstyle": "round,pad=0.2", "facecolor": "white", "edgecolor": "none", "alpha": 0.8},
                         **{**_text_kw(FONT - 0.5), "color": VERMILION})
             handles.append(Line2D([], [], color=VERMILION, linewidth=2.0,
                                   label=f"before / since break {_fmt_day(at)}"))
