@@ -593,6 +593,10 @@ def _parse_values(values: np.ndarray, decimal: str) -> tuple[np.ndarray, np.ndar
                 reason[i] = "blank"
             elif text.lower() in _NAN_SPELLINGS:
                 reason[i] = f"value '{text}' is not a finite number"
+            elif decimal == "." and "," in text:
+                reason[i] = (f"value '{text}' is not a number: it has a ',' (a thousands separator, or a decimal "
+                             "comma? drift does not guess: remove the separator, or set the source's "
+                             "'decimal: \",\"')")
             else:
                 reason[i] = f"value '{text}' is not a number"
     with np.errstate(invalid="ignore"):

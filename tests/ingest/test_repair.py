@@ -137,7 +137,8 @@ def test_commands_show_quarantine_and_batches_and_retract(backend, request, tmp_
     rows = json.loads(r.output)["rows"]
     assert [(Path(x["file"]).name, x["row"], x["column"], x["raw_value"]) for x in rows] == [
         ("data.csv", 2, "a", "1,5"), ("data.csv", 3, "a", "2,5")]
-    assert all(x["reason"] == f"value '{x['raw_value']}' is not a number" for x in rows)
+    assert all(x["reason"].startswith(f"value '{x['raw_value']}' is not a number: it has a ','") for x in rows)
+    assert all("'decimal: \",\"'" in x["reason"] for x in rows)  # says what setting reads it
     r = _run("quarantine", "--config", cfg, "--source", "src")
     assert "data.csv" in r.output and "row 3" in r.output and "'2,5'" in r.output
     r = _run("batches", "--config", cfg, "--json")
