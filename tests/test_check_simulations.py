@@ -80,6 +80,24 @@ def test_vanished_driver_evidence_is_in_the_reason(tmp_path):
     assert abs(x1["coef_reference"] - 2.0) < 0.1
 
 
+@pytest.mark.parametrize("seed, dropped", [(7, False), (9, False), (11, True)])
+def test_a_driver_whose_effect_since_the_break_is_clear_is_not_dropped(tmp_path, seed, dropped):
+    # invented scenario (simulation): x1's effect falls from 2.0 to 0.35 at monitored week 50 (errors sd 3).
+    # The recent 52-week window straddles the break, so its coefficient interval and the Clark-West test mix
+    # the old and the new effect. Seeds 7 and 9: both say "no gain, covers zero" but the refit's effect since
+    # the break is 2.6 standard errors from zero: refit, and x1 kept. Seed 11: the effect since the break is
+    # 1.3 standard errors from zero, so the drop stands beside the refit (seeds found with a probe script)
+    cfg = config(tmp_path)
+    p = _check(cfg, Scenario(seed=seed, n_mon=104, b1_after=0.35, change_at=N_REF + 50, sigma=3.0))
+    assert p["verdict"] == "refit"
+    x1 = next(d for d in p["drivers"] if d["series"] == "x1")
+    lo, hi = x1["ci_recent"]
+    assert lo <= 0.0 <= hi and x1["worth"]["pvalue"] >= cfg.check.level  # what the drop rule reads first
+    since = abs(x1["break"]["after"]) / x1["break"]["se_after"]
+    assert (since <= 1.96) == dropped
+    assert bool([a for a in _acts(p, "drop-driver") if a["driver"] == "x1"]) == dropped
+
+
 # --------------------------------------------------------------------------------------- (b) relag
 def test_lag_moving_from_1_to_3_gives_relag_3(tmp_path):
     # invented scenario (simulation): from the first monitored week y depends on x1 three weeks back

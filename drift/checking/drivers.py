@@ -182,8 +182,13 @@ def _drivers_and_worth(c: _Ctx) -> None:
                 late_action.extra["without"] = {"mae_with": info["worth"]["mae_with"],
                                                 "mae_without": info["worth"]["mae_without"],
                                                 "n": n_both, "pvalue": _num(cw_p)}
-            # a driver that still helps the forecasts is never proposed for dropping
-            if not helps and covers_zero:
+            # a driver that still helps the forecasts is never proposed for dropping; nor one whose effect since
+            # a dated break (the refit's figures) is clearly not zero: the recent window then mixes the old and
+            # the new effect, and the refit is the advice
+            brk = effects.get(s) or {}
+            after, se_after = _num(brk.get("after")), _num(brk.get("se_after"))
+            since_break = after is not None and se_after is not None and abs(after) > _Z95 * se_after
+            if not helps and covers_zero and not since_break:
                 reason = (f"Driver '{s}' is not earning its place: over "
                           f"{window_words(n_both, chk.recent_window)} it no "
                           f"longer improves the forecasts (Clark–West p = {fmt_p(cw_p)}) and its recent "
@@ -192,6 +197,11 @@ def _drivers_and_worth(c: _Ctx) -> None:
                           f"{fmt_num(mae_without)} {c.model.unit} ({_refitted(window)}).")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
+
+
+#: the half-width, in standard errors, of the 95% intervals the report shows (recent coefficients, the
+#: refit's before/after effects)
+_Z95 = 1.96
 
 
 def _refitted(window: int) -> str:
