@@ -546,6 +546,23 @@ def _calendar(freq: str, anchor: int, label: str) -> str:
             "Q": "quarters end on 31 March, 30 June, 30 September and 31 December"}[freq]
 
 
+def _label_hint(p: pd.Timestamp, freq: str, anchor: int, label: str) -> str:
+    """What setting would read a period that is off the calendar: the other ``period_label`` when the day is
+    on the calendar that way; for weeks, also the weekday the models' weeks start on."""
+    other = "end" if label == "start" else "start"
+    hint = ""
+    if _align(p, freq, anchor, other)[2]:
+        which = "last" if other == "end" else "first"
+        hint = (f" (it is the {which} day of a {freq} period: if the file names each period by its {which} day, "
+                f"set 'period_label: {other}' on the source")
+    if freq == "W":
+        day = _WEEKDAYS[p.weekday()]
+        hint += ("; if" if hint else " (if") + (
+            f" the weeks start on {day}, give the models' reference.start on a {day}: a week starts on the "
+            "weekday of reference.start")
+    return hint + (")" if hint else "")
+
+
 def _off_frequency_records(rows: np.ndarray, g_codes: np.ndarray, series: np.ndarray, raw_period: np.ndarray,
                            period: np.ndarray, g_uniq: pd.Index, pc: str, source: SourceConfig
                            ) -> pd.DataFrame:
@@ -562,7 +579,7 @@ def _off_frequency_records(rows: np.ndarray, g_codes: np.ndarray, series: np.nda
         else:
             which = "first" if source.period_label == "start" else "last"
             reason = (f"period {day} is not the {which} day of a {freq} period ({_calendar(freq, anchor, source.period_label)}) "
-                      f"for series {names}; the value was not stored")
+                      f"for series {names}; the value was not stored{_label_hint(pd.Timestamp(period[pos]), freq, anchor, source.period_label)}")
         out.append((int(row), pc, _text(raw_period[pos]), reason))
     return pd.DataFrame(out, columns=QUARANTINE_COLUMNS)
 

@@ -371,6 +371,30 @@ def test_quarantine_off_frequency_weekly_and_monthly(store, tmp_path):
     assert len(obs(store)) == 2
 
 
+def test_off_frequency_reason_says_which_setting_reads_the_file(store, tmp_path):
+    # month ends and Sunday week ends under the default period_label: start. The reason names the setting
+    # that reads them; a mid-week day gets only the weekday hint, a mid-month day none
+    write(tmp_path / "data.csv", "week,a\n2024-03-10,1\n2024-03-06,2\n")
+    write(tmp_path / "m.csv", "month,y\n2024-02-29,1\n2024-03-15,2\n")
+    model_m = {"name": "mm", "target": "y", "frequency": "M",
+               "reference": {"start": "2020-01-01", "end": "2023-12-01"}}
+    cfg = make_config(tmp_path, [csv_source(), {"name": "m", "kind": "csv", "path": "m.csv",
+                                                "period_column": "month"}],
+                      [weekly_model("a"), model_m])
+    ingest_all(cfg, store, now=NOW)
+    q = quar(store).sort_values(["source", "row"])
+    w = q[q["source"] == "src"]["reason"].tolist()
+    assert "(it is the last day of a W period: if the file names each period by its last day, set " \
+           "'period_label: end' on the source; if the weeks start on Sunday, give the models' " \
+           "reference.start on a Sunday" in w[0]
+    assert "period_label" not in w[1] and "(if the weeks start on Wednesday, give the models' " \
+           "reference.start on a Wednesday" in w[1]
+    m = q[q["source"] == "m"]["reason"].tolist()
+    assert m[0].endswith("(it is the last day of a M period: if the file names each period by its last day, "
+                         "set 'period_label: end' on the source)")
+    assert m[1].endswith("the value was not stored")
+
+
 def test_quarantine_empty_period_and_bad_available(store, tmp_path):
     s, q = _one_quarantine(store, tmp_path, "week,pub,a\n,2024-01-02,1\n2024-01-08,soon,2\n2024-01-15,,3\n"
                                             ",,\n", available_column="pub")
