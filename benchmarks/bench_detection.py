@@ -370,10 +370,15 @@ def drift_figures(entries: list[dict[str, Any]], freq: Frequency, change: int | 
     verdicts: dict[str, int] = {}
     hard = refit = 0
     rows: dict[str, list[list[int]]] = {"any": [[] for _ in range(n)]}
+    dated: list[int] = []  # the break's date (a refit's or relag's ``since``) minus the change, in periods
     for i, e in enumerate(entries):
         verdicts[e["verdict"]] = verdicts.get(e["verdict"], 0) + 1
         hard += any(a["action"] in HARD for a in e["actions"])
         refit += any(a["action"] == "refit" for a in e["actions"])
+        since = next((a["since"] for a in e["actions"] if a["action"] in ("refit", "relag") and a.get("since")),
+                     None)
+        if since is not None and change is not None:
+            dated.append(index[since] - change)
         for a in e["alarms"]:
             if a.get("warning") or not a.get("date"):
                 continue
@@ -381,7 +386,13 @@ def drift_figures(entries: list[dict[str, Any]], freq: Frequency, change: int | 
             rows.setdefault(key, [[] for _ in range(n)])[i].append(index[a["date"]])
             rows["any"][i].append(index[a["date"]])
     figures = {k: _row(rows[k], change) for k in ["any", *sorted(k for k in rows if k != "any")]}
-    return {"hard": hard / max(n, 1), "refit": refit / max(n, 1), "verdicts": verdicts, "n": n}, figures
+    dating = None
+    if dated:
+        err = np.array(dated)
+        dating = {"n": int(err.size), "median": float(np.median(err)), "p10": float(np.quantile(err, 0.1)),
+                  "p90": float(np.quantile(err, 0.9)), "mean_abs": float(np.mean(np.abs(err)))}
+    return {"hard": hard / max(n, 1), "refit": refit / max(n, 1), "verdicts": verdicts, "n": n,
+            "dating": dating}, figures
 
 
 #: issue 9's targets: (scenario, figure, bound, "max" or "min"), judged on the point estimate (its 95 %
@@ -635,6 +646,12 @@ def main(argv: list[str] | None = None) -> None:
         print(f"target {what}: {'met' if ok else 'NOT met'}, {shown}")
     for s, r in res["scenarios"].items():
         print(f"{s}: verdicts {r['drift']['verdicts']}")
+    unit = "weeks" if res["frequency"] == "weekly" else "months"
+    for s, r in res["scenarios"].items():
+        dt = r["drift"].get("dating")
+        if dt:  # how far the date of the break quoted in a refit or relag ("changed around", "since") is off
+            print(f"{s}: break dated (since - change, {unit}) median {_num(dt['median'])}, p10 {_num(dt['p10'])}, "
+                  f"p90 {_num(dt['p90'])}, mean |error| {dt['mean_abs']:.1f}, over {dt['n']} models")
     print(f"ingest {res['timing']['ingest_s']:.1f} s, check {res['timing']['check_s']:.1f} s, "
           f"total {res['wall_s']:.1f} s; {res['machine']}", file=sys.stderr)
     if args.json:
