@@ -46,7 +46,8 @@ def collect_status(cfg: Config, store: Store, *, now: datetime | None = None) ->
       pending row), ``counts`` (per status), ``uncertain`` and ``dead`` (rows: id, channel, subject,
       attempts, last_error, created_at)}
     - ``stale_feeds``: [{``model``, ``driver``, plus the driver's own fields}] from the latest verdicts'
-      drivers marked ``late: true``
+      drivers marked ``late: true``, then each late target feed (from its ``data-late`` action: ``series``,
+      ``last_period``, ``next_due``, ``role: "target"``; ``driver`` is its series name too)
     - ``open_alerts``: model -> [{``condition``, ``action``, ``severity``, ``first_seen``, ``last_seen``}]
     - ``lock``: None, or the daemon lock row with ``stale`` (a reason or None)
     - ``epochs``: model -> its newest monitoring epoch (:meth:`drift.epochs.Epoch.as_json`), for every
@@ -155,10 +156,18 @@ def _stale_feeds(store: Store) -> list[dict[str, Any]]:
         drivers = v["payload"].get("drivers") or []
         items = ([{"driver": k, **d} for k, d in drivers.items() if isinstance(d, dict)]
                  if isinstance(drivers, dict) else [d for d in drivers if isinstance(d, dict)])
+        named = set()
         for d in items:
+            name = d.get("driver") or d.get("series") or d.get("name")
+            named.add(name)
             if d.get("late") is True:
-                name = d.get("driver") or d.get("series") or d.get("name")
                 out.append({**d, "model": v["model"], "driver": name})
+        # the target's own feed is no driver: its data-late action says it
+        for a in v["payload"].get("actions") or []:
+            if isinstance(a, dict) and a.get("action") == "data-late" and a.get("driver") not in named:
+                out.append({"series": a.get("driver"), "late": True, "last_period": a.get("last_period"),
+                            "next_due": a.get("next_due"), "role": a.get("role", "target"),
+                            "model": v["model"], "driver": a.get("driver")})
     return out
 
 
@@ -245,7 +254,8 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append("")
     lines.append(f"late feeds: {len(feeds)}" if feeds else "late feeds: none")
     for f in feeds:
-        lines.append(f"  {f['model']}: {f['driver']}: last period {f.get('last_period') or '?'}, "
+        role = " (target)" if f.get("role") == "target" else ""
+        lines.append(f"  {f['model']}: {f['driver']}{role}: last period {f.get('last_period') or '?'}, "
                      f"next value was due {str(f.get('next_due') or '?').replace('T', ' ')[:16]} UTC")
     al = status["open_alerts"]
     lines.append("")

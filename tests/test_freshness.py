@@ -57,6 +57,25 @@ def test_plan_that_stops_is_late(tmp_path) -> None:
     assert [a["driver"] for a in late] == ["x2"]
     assert late[0]["last_period"] == periods[-3].date().isoformat()
     assert "plan" in late[0]["reason"]
+    # it should have covered the two weeks after its last one (the second is the one the forecast needs)
+    assert late[0]["missing_periods"] == 2 and "(2 periods missing)" in late[0]["reason"]
+    assert (late[0]["role"], late[0]["next_due"]) == ("driver", p["charts"]["feeds"]["x2"]["next_due"])
+    assert "feed_limit" not in late[0]
+
+
+def test_plan_gone_for_long_counts_its_missing_periods_and_says_what_it_costs(tmp_path) -> None:
+    # the plan stops ten weeks before the last actual: more than check.feed_limit (4) periods are missing, so
+    # the action carries the limit and the cost of running without it, as a lagged feed's does
+    cfg = _cfg(tmp_path)
+    periods, values = simulate(Scenario(seed=802))
+    moment = end_moment(periods)
+    obs = _plan(periods, values, 0)
+    obs = obs[~((obs["series"] == "x2") & (obs["period"] >= periods[-10]))]
+    (p,), _ = analyse(cfg, cfg.models, known_by(obs, moment), moment)
+    (late,) = _late(p)
+    assert late["missing_periods"] == 10 and late["feed_limit"] == cfg.check.feed_limit
+    assert "It has been missing for more than 4 periods." in late["reason"]
+    assert late["without"]["n"] >= 10 and "restore the feed" in late["reason"].lower()
 
 
 def test_plan_loaded_after_the_fact_is_not_late_when_its_period_is_in_the_file(tmp_path, sqlite_store) -> None:

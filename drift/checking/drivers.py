@@ -168,6 +168,11 @@ def _drivers_and_worth(c: _Ctx) -> None:
             ci = info.get("ci_recent")
             covers_zero = ci is not None and ci[0] is not None and ci[0] <= 0 <= ci[1]
             helps = _num(cw_p) is not None and cw_p < chk.level
+            # the effect since a dated break (the refit's figures): clearly not zero means the driver still acts,
+            # whatever a recent window that straddles the break says
+            brk = effects.get(s) or {}
+            after, se_after = _num(brk.get("after")), _num(brk.get("se_after"))
+            since_break = after is not None and se_after is not None and abs(after) > _Z95 * se_after
             late_action = next((a for a in c.actions if a.action == "data-late" and a.extra.get("driver") == s),
                                None)
             if late_action is not None and late_action.extra.get("missing_periods", 0) > chk.feed_limit:
@@ -176,18 +181,22 @@ def _drivers_and_worth(c: _Ctx) -> None:
                 cost = (f"without it the one-step MAE would go from {fmt_num(mae_with)} to {fmt_num(mae_without)} "
                         f"{c.model.unit} over {window_words(n_both, chk.recent_window)} "
                         f"({_refitted(window)}; Clark–West p = {fmt_p(cw_p)})")
-                late_action.reason += (
-                    f" It still helps the forecasts, so restore the feed: {cost}." if helps else
-                    f" It no longer helps the forecasts much: {cost}. Restore the feed or run without it.")
+                if helps:
+                    late_action.reason += f" It still helps the forecasts, so restore the feed: {cost}."
+                elif since_break:
+                    late_action.reason += (
+                        f" It still acts since the break of {brk.get('after_window', {}).get('start')} (effect "
+                        f"{fmt_num(after)}, standard error {fmt_num(se_after)}: not zero), so restore the feed; "
+                        f"over a recent window that straddles the break the refits do not show it: {cost}.")
+                else:
+                    late_action.reason += (f" It no longer helps the forecasts much: {cost}. Restore the feed or "
+                                           "run without it.")
                 late_action.extra["without"] = {"mae_with": info["worth"]["mae_with"],
                                                 "mae_without": info["worth"]["mae_without"],
                                                 "n": n_both, "pvalue": _num(cw_p)}
             # a driver that still helps the forecasts is never proposed for dropping; nor one whose effect since
-            # a dated break (the refit's figures) is clearly not zero: the recent window then mixes the old and
-            # the new effect, and the refit is the advice
-            brk = effects.get(s) or {}
-            after, se_after = _num(brk.get("after")), _num(brk.get("se_after"))
-            since_break = after is not None and se_after is not None and abs(after) > _Z95 * se_after
+            # a dated break is clearly not zero: the recent window then mixes the old and the new effect, and
+            # the refit is the advice
             if not helps and covers_zero and not since_break:
                 reason = (f"Driver '{s}' is not earning its place: over "
                           f"{window_words(n_both, chk.recent_window)} it no "

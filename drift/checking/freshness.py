@@ -60,7 +60,7 @@ def _freshness(c: _Ctx) -> None:
                 reason += f" It has been missing for more than {limit} periods."
             c.actions.append(Action("data-late", reason=reason,
                                     extra={"driver": s, "last_period": lp_day,
-                                           "missing_periods": int(missing),
+                                           "missing_periods": int(missing), "next_due": due_iso, "role": role,
                                            **({"feed_limit": limit} if missing > limit else {})}))
     c.charts["feeds"] = _feed_charts(feeds)
 
@@ -181,12 +181,18 @@ def _forward_feed(c: _Ctx, dr: Any, per: np.ndarray, at: np.ndarray
         c.late.add(dr.series)
         covers = f"its latest {kind} covers the period starting {last.date().isoformat()}" if last is not None \
             else f"no {kind} of it is stored at all"
+        # the periods it should have covered by now and does not: after its last one up to the one needed
+        missing = _periods_after(last, need, m.frequency) if last is not None and last < need else 1
+        limit = c.cfg.check.feed_limit
+        what = "that same period" if need == cur else f"the period starting {need.date().isoformat()}"
         c.actions.append(Action("data-late", extra={
             "driver": dr.series, "last_period": last.date().isoformat() if last is not None else None,
-            "missing_periods": 1}, reason=(
-                f"The {kind} feed '{dr.series}' is late: the forecast for the period starting "
-                f"{cur.date().isoformat()} needed its {kind} for the period starting {need.date().isoformat()}, "
-                f"and none had arrived; {covers}.")))
+            "missing_periods": int(missing), "next_due": cur.tz_localize("UTC").isoformat(), "role": "driver",
+            **({"feed_limit": limit} if missing > limit else {})}, reason=(
+                f"The {kind} feed '{dr.series}' is late: the forecast of the period starting "
+                f"{cur.date().isoformat()} needed a {kind} of '{dr.series}' for {what}, and none had arrived; "
+                f"{covers} ({missing} period{'s' if missing != 1 else ''} missing)."
+                + (f" It has been missing for more than {limit} periods." if missing > limit else ""))))
     # the timeline of the chart: the periods of the last half year and when their first plan (forecast)
     # was stored, as for a lagged feed
     first = _first_arrivals(per, at, start_ns)
@@ -206,6 +212,15 @@ def _forward_periods(as_of: pd.Timestamp, freq: str, anchor: int, lag: int
     need_ns = int(as_ns(pd.DatetimeIndex([need]))[0])
     start_ns = int(as_ns(shift_periods(pd.DatetimeIndex([cur]), freq, 26))[0])
     return cur, need, need_ns, start_ns
+
+
+def _periods_after(last: pd.Timestamp, upto: pd.Timestamp, freq: str) -> int:
+    """How many periods follow ``last`` up to and including ``upto`` (both period starts)."""
+    n, p = 0, last
+    while p < upto and n <= 10000:
+        p = next_period(p, freq)
+        n += 1
+    return n
 
 
 def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:

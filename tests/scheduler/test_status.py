@@ -108,3 +108,24 @@ def test_status_never_reads_the_verdict_charts(store: Store) -> None:
     verdict_reads = [s for s in seen if "FROM verdicts" in s]
     assert verdict_reads and not any("charts" in s for s in verdict_reads), verdict_reads
     assert [f["model"] for f in st["stale_feeds"]] == ["sales_north", "sales_south"]
+
+
+def test_status_lists_a_late_target_feed_as_the_digest_does(store: Store) -> None:
+    """The target is no driver: its late feed comes from its data-late action, beside the late drivers (the
+    digest's late feeds read the same actions)."""
+    rid = store.start_run("check", as_of=date(2026, 3, 9))
+    store.save_verdicts(rid, date(2026, 3, 9), [{
+        "name": "sales_east", "verdict": "data-late",
+        "drivers": [{"series": "temp", "late": True, "last_period": "2026-02-16"}],
+        "actions": [
+            {"action": "data-late", "driver": "sales_east_units", "role": "target", "last_period": "2026-02-23",
+             "next_due": "2026-03-09T00:00:00+00:00", "missing_periods": 1, "reason": "The target feed ..."},
+            {"action": "data-late", "driver": "temp", "role": "driver", "last_period": "2026-02-16",
+             "next_due": "2026-03-02T00:00:00+00:00", "missing_periods": 2, "reason": "The driver feed ..."}]}])
+    st = collect_status(Config(store=store.url), store, now=_utc(2026, 3, 10))
+    assert [(f["model"], f["driver"], f.get("role")) for f in st["stale_feeds"]] == [
+        ("sales_east", "temp", None), ("sales_east", "sales_east_units", "target")]
+    text = format_status(st)
+    assert "late feeds: 2" in text
+    assert ("sales_east: sales_east_units (target): last period 2026-02-23, next value was due 2026-03-09 00:00 UTC"
+            in text)
