@@ -133,7 +133,8 @@ def format_table(outcome: CheckOutcome) -> str:
             rw = d.get("recent_window") or {}
             brk = d.get("break") or {}
             lines.append(f"    {d['series']:<28} lag {d['lag']}  coef reference fit {_n(d.get('coef_reference')):>8}  "
-                         f"last {rw.get('n', '?')} periods {_n(d.get('coef_recent')):>8}"
+                         + (f"last {rw['n']} periods {_n(d.get('coef_recent')):>8}" if rw.get("n") else
+                            f"{'no rolling estimate':>24}")
                          + (f"  before/since {brk.get('after_window', {}).get('start')} {_n(brk.get('before'))} / "
                             f"{_n(brk.get('after'))}" if brk else ""))
         if accuracy_text(m):
@@ -141,7 +142,8 @@ def format_table(outcome: CheckOutcome) -> str:
         for t in m["tests"]:
             name = str(t["test"]) + (f" ({t['driver']})" if t.get("driver") else "")
             lines.append(f"    {name:<34} stat {_n(t.get('statistic')):>8}  p {fmt_p(t.get('pvalue'), t.get('test')):>8}"
-                         + (f"  signalled {t['date']}" if t.get("date") else ""))
+                         + (f"  signalled {t['date']}" if t.get("date") else "")
+                         + (" (after the horizon)" if t.get("beyond_horizon") else ""))
     for name, err in outcome.errors.items():
         lines.append("")
         lines.append(f"{name}  →  {label(ERROR)}: {err}")

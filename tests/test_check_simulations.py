@@ -480,3 +480,27 @@ def test_alarm_after_the_horizon_says_the_guarantee_lapsed(tmp_path) -> None:
     assert "without the false-alarm guarantee" in r["reason"]
     first = min((a for a in p["alarms"] if not a.get("warning")), key=lambda a: a["date"])
     assert first["beyond_horizon"] is True and _row(first["date"]) >= N_REF + 60
+
+
+def test_a_crossing_after_the_horizon_has_no_p_value_and_its_chart_marks_the_horizon(tmp_path):
+    # invented scenario (simulation): x1's effect falls 2.0 -> 0.5 at monitored week 110, after the default
+    # two-year horizon (104 weeks). The monitors keep watching but their false-alarm guarantee has lapsed:
+    # a crossing then is reported without a p-value (the monitor's p-value measures its path within the
+    # horizon, which did not cross) and the chart marks where the horizon ended
+    cfg = config(tmp_path)
+    sc = Scenario(seed=17, n_mon=130, b1_after=0.5, change_at=N_REF + 110)
+    p = _check(cfg, sc)
+    assert p["verdict"] == "refit"
+    # the residual stream's horizon is counted in periods: all three crossed after it (the driver monitors
+    # count it in their information, which may run on past the 104th week)
+    resid = [t for t in p["tests"] if t["test"] in ("monitor-cusum", "monitor-shift", "monitor-variance")]
+    assert len(resid) == 3 and all(t["date"] and t.get("beyond_horizon") for t in resid)
+    beyond = {(a["test"], a.get("driver")) for a in p["alarms"] if a.get("beyond_horizon") and not a.get("warning")}
+    for t in p["tests"]:
+        if t["test"].startswith("monitor-"):
+            after = (t["test"], t.get("driver")) in beyond
+            assert bool(t.get("beyond_horizon")) == after and (t["pvalue"] is None) == after, t
+    last_within = (START + pd.Timedelta(weeks=N_REF + 104 - 1)).date().isoformat()
+    assert p["charts"]["monitor"]["horizon_end"] == last_within
+    (refit,) = _acts(p, "refit")
+    assert "after the monitoring horizon" in refit["reason"]

@@ -217,11 +217,13 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
             ai_l, hend_l, stat_l, pv_l, wi_l, wstat_l = vals
             extra = {} if j is None else {"driver": drivers_i[j]}
             ai, h_end, stat = ai_l[i], hend_l[i], stat_l[i]
-            pv = _num(pv_l[i])
+            beyond = {"beyond_horizon": True} if ai >= h_end else {}
+            # a crossing after the horizon has no calibrated p-value: the monitor's p-value measures its path
+            # within the horizon (which did not cross), the statistic its whole path (which did)
+            pv = None if beyond else _num(pv_l[i])
             date_ = per[ai - o] if ai >= 0 else None
             c.tests.append({"test": name, **extra, "statistic": _num(stat), "pvalue": pv, "threshold": 1.0,
-                            "level": _num(round(lv, 6)), "date": date_})
-            beyond = {"beyond_horizon": True} if ai >= h_end else {}
+                            "level": _num(round(lv, 6)), "date": date_, **beyond})
             if ai >= 0:
                 c.alarms.append({"test": name, **extra, "date": date_, "statistic": _num(round(stat, 4)),
                                  "threshold": 1.0, "level": _num(round(lv, 6)), **beyond})
@@ -357,6 +359,7 @@ def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, s
         path = np.atleast_2d(np.asarray(r.path, float))
         bound = np.atleast_2d(np.asarray(r.boundary, float))
         ai_all = np.atleast_1d(r.alarm_index)
+        he_all = np.atleast_1d(r.horizon_end)
         pr, br = _rows(path[idx]), _rows(bound[idx])
         level = _num(round(float(lv), 6))
         for p, i in enumerate(idx):
@@ -372,7 +375,7 @@ def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, s
                 "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
                 "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
                 "path": pr[p, o:].tolist(), "boundary": br[p, o:].tolist(), "level": level,
-                "alarm_date": per[ai - o] if ai >= o else None})
+                "alarm_date": per[ai - o] if ai >= o else None, "horizon_end": _horizon_end(he_all[i], o, per)})
     return out
 
 
@@ -402,4 +405,13 @@ def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | No
         "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
         "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
         "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
-        "alarm_date": per[ai - o] if ai >= o else None}
+        "alarm_date": per[ai - o] if ai >= o else None,
+        "horizon_end": _horizon_end(np.atleast_1d(r.horizon_end)[i], o, per)}
+
+
+def _horizon_end(end: Any, o: int, per: list[str]) -> str | None:
+    """The last period within the monitoring horizon (``end``: the first column of the monitor's input
+    beyond it, ``o`` the model's offset in it), or None when the horizon covers the model's data: the date
+    a lapsed horizon's ``watch`` says it "ended on"."""
+    k = int(end) - o
+    return per[k - 1] if 1 <= k < len(per) else None

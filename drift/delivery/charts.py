@@ -255,6 +255,7 @@ def cusum_chart(
     unit: str = "standardised units",
     path_label: str = "CUSUM path",
     alarm_label: str = "alarm",
+    horizon_end: Any = None,
 ) -> bytes:
     """A monitoring path against its own boundaries, with the crossing marked and dated.
 
@@ -269,6 +270,8 @@ def cusum_chart(
     monitor_start : index into ``periods`` or date of the first monitoring period (shades the reference).
     title, unit : chart title and the y-axis unit.
     path_label, alarm_label : legend entries of the path and the crossing.
+    horizon_end : last period within the monitoring horizon (beyond it the boundary goes on, its false-alarm
+        guarantee does not), or None when the horizon covers the chart; marked with a dotted line.
 
     Returns
     -------
@@ -303,6 +306,12 @@ def cusum_chart(
             ax.plot([t[idx]], [y[idx]], marker="o", markersize=7, color=VERMILION, zorder=4)
         _flag(ax, t, a, f"{alarm_label} {_fmt_day(a)}", bold=True)
         handles.append(Line2D([], [], color=VERMILION, marker="o", linewidth=1.2, label=alarm_label))
+    if horizon_end is not None:
+        h = _to_datetime64(horizon_end)
+        ax.axvline(h, color=GREY, linewidth=1.1, linestyle=":", zorder=2)  # type: ignore[arg-type]
+        _flag(ax, t, h, f"horizon ends {_fmt_day(h)}", row=1)
+        handles.append(Line2D([], [], color=GREY, linewidth=1.1, linestyle=":",
+                              label="end of the monitoring horizon"))
     ax.axhline(0.0, color=GREY, linewidth=0.6)
     # a path far beyond its boundaries would squeeze the crossing into a few pixels: show the boundaries
     # and the crossing, and say where the path goes off the chart
@@ -754,6 +763,7 @@ def render_model_chart_set(model_payload: Mapping[str, Any], kinds: Sequence[str
                 return cusum_chart(
                     periods, mon["path"], {_boundary_label(lvl): mon["boundary"]}, crossed,
                     monitor_start=mstart, path_label="monitor path", alarm_label="crossed",
+                    horizon_end=mon.get("horizon_end"),
                     title=f"{name}: {_lower_first(str(mon.get('title') or mon.get('test')))}"
                           + (" crossed its boundary" if crossed else ", nearest its boundary (no alarm)"))
             if not isinstance(block, Mapping) or not _nonempty(block.get("path")) or not periods:

@@ -81,7 +81,8 @@ def tests_table(payload: Mapping[str, Any], limit: int = 12) -> Table | None:
         name = str(t.get("test")) + (f" ({t['driver']})" if t.get("driver") else "")
         rows.append((name, num(t.get("statistic")),
                      fmt_p(t.get("pvalue"), t.get("test")) if t.get("pvalue") is not None else "—",
-                     num(t.get("threshold")), str(t.get("date") or "—")))
+                     num(t.get("threshold")),
+                     str(t.get("date") or "—") + (" (after the horizon)" if t.get("beyond_horizon") else "")))
     return Table(caption="", headers=("test", "statistic", "p-value", "threshold", "signalled"), rows=tuple(rows))
 
 

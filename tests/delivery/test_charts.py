@@ -153,3 +153,17 @@ def test_plain_arrays_with_numpy_and_dates() -> None:
     path = np.linspace(0, 2, t.size)
     png = charts.cusum_chart(t, path, {0.05: np.full(t.size, 1.5)}, alarm_date=str(t[40]), monitor_start=5)
     assert _image(png).size == (800, 400)
+
+
+def test_monitor_chart_marks_the_end_of_the_horizon() -> None:
+    """A monitor payload's ``horizon_end`` (the last period within the monitoring horizon) is drawn: a
+    crossing after it reads as one without the false-alarm guarantee."""
+    t = np.arange("2024-01-01", "2024-03-01", dtype="datetime64[D]")
+    path = np.linspace(0, 2, t.size)
+    plain = charts.cusum_chart(t, path, {0.05: np.full(t.size, 1.5)}, alarm_date=str(t[40]), monitor_start=5)
+    marked = charts.cusum_chart(t, path, {0.05: np.full(t.size, 1.5)}, alarm_date=str(t[40]), monitor_start=5,
+                                horizon_end=str(t[30]))
+    assert _image(marked).size == (800, 400) and marked != plain
+    p = make_payload()
+    p["charts"]["monitor"]["horizon_end"] = p["charts"]["periods"][-5]
+    assert charts.render_model_charts(p, ["cusum"])["cusum"] != charts.render_model_charts(make_payload(), ["cusum"])["cusum"]
