@@ -287,6 +287,7 @@ def _evidence(payload: Mapping[str, Any]) -> str:
         kind = "warning" if a.get("warning") else "alarm"
         return (f"{a.get('test', 'test')}{' (' + str(a['driver']) + ')' if a.get('driver') else ''} {kind}{at}"
                 + (f" on {a['date']}" if a.get("date") else "")
+                + (" after the horizon" if a.get("beyond_horizon") else "")
                 + (f" ({_num(a.get('statistic'))} > {_num(a.get('threshold'))})"
                    if a.get("statistic") is not None and a.get("threshold") is not None else ""))
     tests = [t for t in payload.get("tests") or []
