@@ -13,6 +13,7 @@ and the like still takes effect).
 
 from __future__ import annotations
 
+import difflib
 import logging
 from collections.abc import Sequence
 from dataclasses import MISSING, dataclass, field, fields
@@ -322,11 +323,21 @@ def _quarantine_hint(store: Any, models: Sequence[ModelConfig], moment: datetime
     if not absent:
         return
     held = store.quarantined_columns(absent)
+    unheld = [s for s in absent if s not in held]
+    names = store.series_names() if unheld else []
+    stored = set(names)
     for m in failed:
         notes = [f"'{s}' has {n} value(s) in quarantine, the first in row {row}: {why}"
                  for s, (n, row, why) in ((s, held[s]) for s in dict.fromkeys(m.series) if s in held)]
         if notes:
             errors[m.name] += ". Ingest refused them: " + "; ".join(notes) + " (drift quarantine lists them)"
+        # a misspelt series name: the store's nearest names (never a name the model already uses)
+        near = [(s, [n for n in difflib.get_close_matches(s, names, n=4, cutoff=0.75) if n not in m.series][:2])
+                for s in dict.fromkeys(m.series) if s in unheld and s not in stored]
+        hints = [f"'{s}' is not in the store; did you mean {' or '.join(repr(n) for n in close)}?"
+                 for s, close in near if close]
+        if hints:
+            errors[m.name] += ". " + " ".join(hints)
 
 
 def _plans_loaded_after_the_fact(cfg: Config, models: Sequence[ModelConfig], store: Any,

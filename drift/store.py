@@ -768,6 +768,13 @@ class Store:
                     out[s] = p if isinstance(p, date) else date.fromisoformat(str(p))
         return out
 
+    def series_names(self) -> list[str]:
+        """Every series name with a stored value (sorted): for the did-you-mean of a series a model names but
+        the store does not hold (one pass over the observations' key index; the error path only)."""
+        o = observations
+        with self.connect() as conn:
+            return sorted(str(r[0]) for r in conn.execute(sa.select(o.c.series).distinct()))
+
     def insert_observations(self, conn: Connection, data: dict[str, np.ndarray],
                             on_chunk: Callable[[int], None] = lambda n: None) -> int:
         """Insert observation rows (columns :data:`OBS_COLUMNS`), skipping any whose key and vintage is

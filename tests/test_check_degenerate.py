@@ -25,6 +25,10 @@ from tests.test_config import MINIMUM
 Edit = Callable[[pd.DataFrame], None]
 
 
+def _misspell(df: pd.DataFrame) -> None:
+    df.columns = ["k000_promos" if c == "k000_promo" else c for c in df.columns]
+
+
 def _set(col: str, fn: Callable[[pd.DataFrame], object]) -> Edit:
     def edit(df: pd.DataFrame) -> None:
         df[col] = fn(df)
@@ -50,6 +54,10 @@ CASES: dict[str, tuple[Edit, list[str]]] = {
     # values near 1e308 are quarantined at ingest (their squares overflow); the check says so
     "a target near 1e308": (_set("k000_units", lambda df: df["k000_units"] * 1e305),
                             ["'k000_units' has 259 value(s) in quarantine", "beyond ±1e+100"]),
+    # the file's header misspells the driver: the store's nearest name is offered
+    "a misspelt driver column": (_misspell,
+                                 ["no observations of 'k000_promo'",
+                                  "'k000_promo' is not in the store; did you mean 'k000_promos'?"]),
 }
 
 
@@ -94,6 +102,17 @@ def test_a_feed_refused_at_ingest_is_not_only_late(tmp_path: Path) -> None:
     assert late["driver"] == "k000_units" and late["missing_periods"] == 30
     assert "Ingest quarantined 30 value(s) of 'k000_units'" in late["reason"], late["reason"]
     assert "beyond ±1e+100" in late["reason"]
+
+
+def test_series_names_on_every_store(store, tmp_path: Path) -> None:
+    """The names the did-you-mean of a missing series is drawn from, read alike from SQLite and PostgreSQL."""
+    from drift.ingest import ingest_all
+    from tests.ingest.helpers import NOW, make_config
+
+    (tmp_path / "data.csv").write_text("week,b,a\n2024-01-01,1,1e308\n2024-01-08,2,2\n")
+    src = {"name": "src", "kind": "csv", "path": "data.csv", "period_column": "week", "frequency": "W"}
+    ingest_all(make_config(tmp_path, [src]), store, now=NOW)
+    assert store.series_names() == ["a", "b"]
 
 
 def test_quarantined_columns_on_every_store(store, tmp_path: Path) -> None:
