@@ -1140,8 +1140,10 @@ def _check_semantics(cfg: Config, lines: _Lines) -> None:
                     key = ("models", i, "drivers", j, "lag")
                     raise ConfigError(
                         f"lag {d.lag} is too short for '{d.series}': with a publication delay of "
-                        f"{_fmt_td(delay)}, its value for the period {d.lag} before the forecast period does "
-                        f"not exist yet when the forecast is made, so the model would use data from the "
+                        f"{_fmt_td(delay)}, its value "
+                        + ("for the forecast period itself" if d.lag == 0 else
+                           f"from {d.lag} period{'s' if d.lag != 1 else ''} before the forecast period")
+                        + " does not exist yet when the forecast is made, so the model would use data from the "
                         f"future; use lag >= {need}, or form 'forecast'/'known' if a forecast or plan of it "
                         f"is available in advance",
                         file=file, key=_key_path(key), line=lines.get(key) or lines.get(key[:-1]),

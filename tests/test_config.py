@@ -72,6 +72,10 @@ def test_example_config_loads() -> None:
          "models[0].reference", 14, "must come after start"),
         ("lag: 1, form: lagged}   #", "lag: 1, form: lagged, delay: 2 days}   #", "models[0].drivers[0].lag", 12,
          "data from the future"),
+        ("lag: 1, form: lagged}   #", "lag: 1, form: lagged, delay: 2 days}   #", "models[0].drivers[0].lag", 12,
+         "its value from 1 period before the forecast period does not exist yet"),
+        ("lag: 1, form: lagged}   #", "lag: 0, form: lagged}   #", "models[0].drivers[0].lag", 12,
+         "its value for the forecast period itself does not exist yet"),
         ("target: k000_units", "target: k000_units\n    errors: arima(1)", "models[0].errors", 10, "ar(1)"),
     ],
 )
