@@ -504,3 +504,24 @@ def test_a_crossing_after_the_horizon_has_no_p_value_and_its_chart_marks_the_hor
     assert p["charts"]["monitor"]["horizon_end"] == last_within
     (refit,) = _acts(p, "refit")
     assert "after the monitoring horizon" in refit["reason"]
+
+
+def test_a_driver_published_later_than_its_lag_allows_is_named_with_when_it_arrived(tmp_path):
+    # invented scenario (simulation): x1 is published ten days after its week ends, so at lag 1 none of its
+    # values exists when the forecast it feeds is made. The model cannot be fitted; the error says why (the
+    # values are stored, but arrive too late) and gives one value's arrival against its forecast's origin
+    cfg = config(tmp_path)
+    periods, values = simulate(Scenario(seed=5))
+    obs = observations(periods, values)
+    late = obs["series"] == "x1"
+    obs.loc[late, "available_at"] += pd.Timedelta(days=10)
+    obs.loc[late, "ingested_at"] += pd.Timedelta(days=10)
+    moment = end_moment(periods) + pd.Timedelta(days=14)
+    payloads, errors = analyse(cfg, cfg.models, known_by(obs, moment), moment)
+    assert not payloads
+    why = errors["sim"]
+    assert "rows without a value: x1[L1] 156" in why
+    # the first reference row's lag-1 period precedes the data: 155 of them are stored
+    assert ("155 of the 156 missing values of 'x1' are stored but were first available only after the forecast "
+            "they feed was made (its value for the period starting 2021-01-04 was available from 2021-01-21 "
+            "00:00 UTC; the forecast of 2021-01-11 is made at its start): at lag 1 the model never sees them") in why

@@ -22,7 +22,7 @@ from drift.config import MAX_ABS_VALUE, Config, ModelConfig
 from drift.engine.tables import family as _fam_table
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
-from drift.panel import Design, SeriesVintages, Vintages, build_design, build_designs, shift_periods
+from drift.panel import Design, SeriesVintages, Vintages, as_ns, build_design, build_designs, shift_periods
 from drift.verdicts import fmt_num
 
 
@@ -196,6 +196,39 @@ def _prepare(cfg: Config, m: ModelConfig, by_series: Mapping[str, pd.DataFrame],
     return c
 
 
+def _published_too_late(c: _Ctx) -> str:
+    """Why a lagged driver's reference rows are empty when its values are stored: they were first available
+    only after the forecasts they feed were made (a source's ``available_column`` later than the lag
+    allows). Says how many, with one example; empty when no such value is found."""
+    d, m = c.design, c.model
+    if c.vintages is None:
+        return ""
+    notes = []
+    for dr in m.drivers:
+        s = dr.series
+        v = c.vintages.get(s)
+        if dr.form != "lagged" or s not in d.driver_columns or v is None or len(v) == 0:
+            continue
+        miss = np.flatnonzero(~np.isfinite(d.X[: d.n_ref, d.driver_columns[s]]))
+        if miss.size == 0:
+            continue
+        lag = d.lags.get(s, dr.lag)
+        want = as_ns(shift_periods(d.periods[miss], m.frequency, lag))
+        stored = np.isin(want, v.period)
+        if not stored.any():
+            continue
+        k, p_ns = int(miss[stored][0]), int(want[stored][0])
+        first = pd.Timestamp(int(v.available[v.period == p_ns].min()), tz="UTC")
+        notes.append(
+            f"{int(stored.sum())} of the {miss.size} missing values of '{s}' are stored but were first available "
+            f"only after the forecast they feed was made (its value for the period starting "
+            f"{pd.Timestamp(p_ns).date().isoformat()} was available from {first.strftime('%Y-%m-%d %H:%M')} UTC; "
+            f"the forecast of {d.periods[k].date().isoformat()} is made at its start): at lag {lag} the model "
+            f"never sees them; lengthen the lag (and give the driver its publication delay), or check the "
+            f"source's available times")
+    return (". " + "; ".join(notes)) if notes else ""
+
+
 def _prewhiten(model: ModelConfig, d: Design) -> tuple[np.ndarray, np.ndarray, str | None, float]:
     """Filter y and X by the error model estimated on the reference period (``errors: ar(p)/arma``).
 
@@ -290,7 +323,7 @@ def _validate(c: _Ctx) -> None:
         raise InsufficientDataError(
             f"model '{m.name}': reference fit ({m.reference.start.isoformat()} to {m.reference.end.isoformat()}, "
             f"{d.n_ref} periods)", need, c.n_ref_ok,
-            f"{d.k} regressors ({', '.join(d.columns)}){where}")
+            f"{d.k} regressors ({', '.join(d.columns)}){where}{_published_too_late(c)}")
     y_ok = d.y[ref][np.isfinite(d.y[ref])]
     if y_ok.size and np.ptp(y_ok) == 0:
         raise DriftError(
