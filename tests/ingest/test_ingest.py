@@ -352,15 +352,20 @@ def test_quarantine_duplicates_long(store, tmp_path):
     assert "rows 2 and 4" in q.iloc[0]["reason"]
 
 
-def test_quarantine_off_frequency_weekly_and_monthly(store, tmp_path):
-    write(tmp_path / "data.csv", "week,a\n2024-03-04,1\n2024-03-05,2\n")
-    write(tmp_path / "m.csv", "month,y\n2024-03-01,1\n2024-03-15,2\n")
+def _ingest_weekly_and_monthly(store, tmp_path, weeks: str, months: str) -> None:
+    """A weekly file (series a of a weekly model) and a monthly one (series y of a monthly model), ingested."""
+    write(tmp_path / "data.csv", "week,a\n" + weeks)
+    write(tmp_path / "m.csv", "month,y\n" + months)
     model_m = {"name": "mm", "target": "y", "frequency": "M",
                "reference": {"start": "2020-01-01", "end": "2023-12-01"}}
     cfg = make_config(tmp_path, [csv_source(), {"name": "m", "kind": "csv", "path": "m.csv",
                                                 "period_column": "month"}],
                       [weekly_model("a"), model_m])
     ingest_all(cfg, store, now=NOW)
+
+
+def test_quarantine_off_frequency_weekly_and_monthly(store, tmp_path):
+    _ingest_weekly_and_monthly(store, tmp_path, "2024-03-04,1\n2024-03-05,2\n", "2024-03-01,1\n2024-03-15,2\n")
     q = quar(store).sort_values("source")
     r = q[q["source"] == "src"].iloc[0]
     assert (r["row"], r["column"], r["raw_value"]) == (3, "week", "2024-03-05")
@@ -374,14 +379,7 @@ def test_quarantine_off_frequency_weekly_and_monthly(store, tmp_path):
 def test_off_frequency_reason_says_which_setting_reads_the_file(store, tmp_path):
     # month ends and Sunday week ends under the default period_label: start. The reason names the setting
     # that reads them; a mid-week day gets only the weekday hint, a mid-month day none
-    write(tmp_path / "data.csv", "week,a\n2024-03-10,1\n2024-03-06,2\n")
-    write(tmp_path / "m.csv", "month,y\n2024-02-29,1\n2024-03-15,2\n")
-    model_m = {"name": "mm", "target": "y", "frequency": "M",
-               "reference": {"start": "2020-01-01", "end": "2023-12-01"}}
-    cfg = make_config(tmp_path, [csv_source(), {"name": "m", "kind": "csv", "path": "m.csv",
-                                                "period_column": "month"}],
-                      [weekly_model("a"), model_m])
-    ingest_all(cfg, store, now=NOW)
+    _ingest_weekly_and_monthly(store, tmp_path, "2024-03-10,1\n2024-03-06,2\n", "2024-02-29,1\n2024-03-15,2\n")
     q = quar(store).sort_values(["source", "row"])
     w = q[q["source"] == "src"]["reason"].tolist()
     assert "(it is the last day of a W period: if the file names each period by its last day, set " \
