@@ -18,7 +18,7 @@ from markupsafe import Markup
 
 from drift.check import CheckOutcome
 from drift.config import Config
-from drift.delivery.present import Table, accuracy_text, context_line, driver_table, tests_table
+from drift.delivery.present import Table, accuracy_text, context_line, driver_table, keep_reason, tests_table
 from drift.verdicts import ERROR, KEEP, accuracy_short, fmt_p, headline, label
 
 log = logging.getLogger(__name__)
@@ -63,8 +63,7 @@ def _section(m: Mapping[str, Any], i: int, folder: Path) -> dict[str, Any]:
     if m.get("verdict") == ERROR:
         actions = [{"label": label(ERROR), "severity": "act", "reason": m.get("reason") or "no reason recorded"}]
     elif not actions:
-        actions = [{"label": label(KEEP), "severity": "",
-                    "reason": "the monitors found no change and every feed is on time."}]
+        actions = [{"label": label(KEEP), "severity": "", "reason": keep_reason(m)}]
     images, notes = [], []
     if m.get("verdict") != ERROR:
         cs = _chart_set(m)
@@ -129,6 +128,8 @@ def format_table(outcome: CheckOutcome) -> str:
         lines.append(f"{m['name']}  →  {headline(m['verdict'])}")
         for a in m["actions"]:
             lines.append(f"  - {label(a['action'])}: {a['reason']}")
+        if not m["actions"] and keep_reason(m).startswith("nothing"):
+            lines.append(f"  - {label(KEEP)}: {keep_reason(m)}")
         for d in m["drivers"]:
             rw = d.get("recent_window") or {}
             brk = d.get("break") or {}

@@ -298,3 +298,21 @@ def test_relag_and_drop_reasons_quote_payload_figures(tmp_path: Path, sc: Scenar
     assert not errors
     assert action in [a["action"] for a in p["actions"]], p["actions"]
     _check_reasons(p, cfg.check.level)
+
+
+def test_a_kept_model_with_nothing_monitored_says_so() -> None:
+    """A model whose data end with its reference period (a new model, or a new epoch fitted up to the check)
+    is kept, but not because "the monitors found no change": nothing was monitored (common practice, no
+    source: the keep line must say what the check did)."""
+    from drift.check import CheckOutcome
+    from drift.delivery.present import keep_reason
+
+    base = {"name": "m", "verdict": "keep", "actions": [], "drivers": [], "tests": [], "alarms": [],
+            "reference": {"start": "2024-10-01", "end": "2025-12-01"}, "last_period": "2025-12-01"}
+    fresh = {**base, "monitor_start": None}
+    watched = {**base, "reference": {"start": "2021-01-04", "end": "2023-12-25"}, "monitor_start": "2024-01-01"}
+    assert keep_reason(fresh).startswith("nothing is monitored yet: the reference period runs to 2025-12-01")
+    assert keep_reason(watched) == "the monitors found no change and every feed is on time."
+    text = format_table(CheckOutcome(run_id=None, as_of=pd.Timestamp("2025-12-31").date(), models=[fresh, watched],
+                                     order=["m", "m"]))
+    assert text.count("nothing is monitored yet") == 1

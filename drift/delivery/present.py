@@ -107,5 +107,16 @@ def context_line(payload: Mapping[str, Any]) -> str:
     return ", ".join(bits) + "." if bits else ""
 
 
+def keep_reason(payload: Mapping[str, Any]) -> str:
+    """Why a model with no action is kept: the monitors found nothing, or there was nothing to monitor yet
+    (no period after the reference period has data: a new model, or a new epoch fitted up to the check)."""
+    start, last = payload.get("monitor_start"), payload.get("last_period")
+    if start and (not last or str(start) <= str(last)):
+        return "the monitors found no change and every feed is on time."
+    end = as_map(payload.get("reference")).get("end")
+    return ("nothing is monitored yet: the reference period runs to " + (f"{end}" if end else "the last period")
+            + ", and the monitors start with the first period after it that has data. Every feed is on time.")
+
+
 def cells(rows: Sequence[Sequence[Any]]) -> tuple[tuple[str, ...], ...]:
     return tuple(tuple(str(c) for c in r) for r in rows)
