@@ -23,7 +23,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import date, datetime, timezone
 from typing import Any
 
 import sqlalchemy as sa
@@ -214,7 +214,7 @@ def model_history(cfg: Any, store: Store, name: str) -> dict[str, Any]:
 
     A verdict belongs to the epoch its payload names (older payloads without ``epoch``: epoch 1); an alert
     closed by a decision belongs to the epoch that decision ended, any other to the epoch in force at the
-    check date it was last seen at.
+    check date it was last seen at, among the decisions recorded by the time it was last seen.
     """
     from drift.store import alerts, verdicts
 
@@ -243,14 +243,25 @@ def model_history(cfg: Any, store: Store, name: str) -> dict[str, Any]:
         if isinstance(acted, dict) and isinstance(acted.get("epoch"), int):
             number = acted["epoch"] - 1
         else:
+            # the epoch in force at the check date it was last seen at, among the decisions recorded by then:
+            # a check run before a decision was recorded ran in the epoch before it, even at the same date
             day = r.as_of if isinstance(r.as_of, date) else None
-            number = in_force(model, eps[1:], day).number if day else 1
+            seen = _utc(r.last_seen)
+            known = [e for e in eps[1:] if seen is None or e.recorded_at is None or _utc(e.recorded_at) <= seen]
+            number = in_force(model, known, day).number if day else 1
         out[index.get(number, 0)]["alerts"].append({
             "id": int(r.id), "condition": r.condition, "status": r.status, "as_of": _iso(r.as_of),
             "first_seen": r.first_seen.isoformat() if r.first_seen else None,
             "closed_at": r.cleared_at.isoformat() if r.cleared_at else None,
             "acted_on": acted if isinstance(acted, dict) else None})
     return {"model": name, "epochs": out}
+
+
+def _utc(t: Any) -> datetime | None:
+    """A stored time as an aware UTC datetime (SQLite gives naive UTC), None when absent."""
+    if not isinstance(t, datetime):
+        return None
+    return t if t.tzinfo is not None else t.replace(tzinfo=timezone.utc)
 
 
 def _iso(d: Any) -> str | None:

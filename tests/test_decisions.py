@@ -228,3 +228,30 @@ def test_a_relag_that_explains_a_break_is_fitted_from_the_break(tmp_path: Path, 
         assert refit.propose(cfg, store, "sim", as_of=day, action="relag", lags={"x1": 2})["since"] == "2024-01-01"
     finally:
         store.dispose()
+
+
+def test_history_puts_an_alert_seen_before_the_decision_in_the_epoch_it_was_seen_in(project: Path) -> None:
+    """A check run before a decision was recorded ran in the epoch before it, even when its check date is on
+    or after the date the decision takes effect: its alerts are listed there (common practice, no source)."""
+    from datetime import datetime, timedelta, timezone
+
+    from drift.config import load_config
+    from drift.store import alerts, open_store
+
+    assert run("ingest", cwd=project).returncode == 0
+    assert run("check", "--as-of", "2024-12-31", cwd=project).returncode == 0
+    store = open_store(load_config(project / "drift.yaml").store_url())
+    now = datetime.now(timezone.utc)
+    try:
+        with store.begin() as conn:  # two cleared alerts seen by checks as of 2025-01-06: before and after
+            for cond, seen in (("drop-driver:x2", now - timedelta(hours=1)), ("data-late:x2", now + timedelta(hours=1))):
+                conn.execute(alerts.insert().values(
+                    model="sim", condition=cond, action=cond.split(":")[0], severity=2, status="cleared",
+                    first_seen=seen, last_seen=seen, cleared_at=seen, as_of=date(2025, 1, 6), payload="{}"))
+    finally:
+        store.dispose()
+    assert run("accept", "--model", "sim", "--action", "refit", "--as-of", "2024-12-31", cwd=project).returncode == 0
+    h = json.loads(run("history", "--model", "sim", "--json", cwd=project).stdout)
+    e1, e2 = h["epochs"]
+    assert "drop-driver:x2" in {a["condition"] for a in e1["alerts"]}
+    assert [a["condition"] for a in e2["alerts"]] == ["data-late:x2"]
