@@ -557,8 +557,9 @@ def _label_hint(p: pd.Timestamp, freq: str, anchor: int, label: str) -> str:
                 f"set 'period_label: {other}' on the source")
     if freq == "W":
         day = _WEEKDAYS[p.weekday()]
+        first = day if label == "start" else _WEEKDAYS[(p.weekday() + 1) % 7]  # the weekday its week starts on
         hint += ("; if" if hint else " (if") + (
-            f" the weeks start on {day}, give the models' reference.start on a {day}: a week starts on the "
+            f" the weeks {label} on {day}, give the models' reference.start on a {first}: a week starts on the "
             "weekday of reference.start")
     return hint + (")" if hint else "")
 

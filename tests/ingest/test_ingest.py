@@ -266,6 +266,8 @@ def test_period_label_end(store, tmp_path):
     assert value(df, "a", "2024-01-01").iloc[0]["available_at"] == utc(2024, 1, 8)
     q = quar(store).sort_values("row")
     assert "2024-01-10 is not the last day of a W period (weeks end on Sunday)" in q.iloc[0]["reason"]
+    # a Wednesday under period_label: end names the weekday its weeks would start on
+    assert "(if the weeks end on Wednesday, give the models' reference.start on a Thursday" in q.iloc[0]["reason"]
     assert "2024-03-30 is not the last day of a M period" in q.iloc[1]["reason"]
 
 
