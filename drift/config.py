@@ -59,6 +59,21 @@ MAX_ABS_VALUE = 1e100
 MAX_NAME_LENGTH = 200
 
 
+#: the words a frequency may also be written as
+_FREQUENCY_WORDS = {"daily": "D", "weekly": "W", "monthly": "M", "quarterly": "Q"}
+
+
+def frequency_letter(v: Any) -> Any:
+    """A frequency as its letter: ``D``/``W``/``M``/``Q`` in any case, or ``daily``, ``weekly``, ``monthly``,
+    ``quarterly``; anything else is left as written, so the error quotes what the user wrote."""
+    if isinstance(v, str):
+        t = v.strip()
+        if t.upper() in FREQUENCIES:
+            return t.upper()
+        return _FREQUENCY_WORDS.get(t.lower(), v)
+    return v
+
+
 def check_date(v: date) -> date:
     """``v`` when it lies in :data:`DATE_RANGE`; ValueError naming the range otherwise."""
     lo, hi = DATE_RANGE
@@ -161,6 +176,7 @@ class SourceConfig(_Strict):
     columns: list[str] | None = None
 
     _dur = field_validator("delay", mode="before")(lambda cls, v: parse_duration(v))
+    _freq = field_validator("frequency", mode="before")(lambda cls, v: frequency_letter(v))
 
     @model_validator(mode="after")
     def _check(self) -> SourceConfig:
@@ -313,13 +329,7 @@ class ModelConfig(_Strict):
     def _monitor_start(cls, v: date | None) -> date | None:
         return None if v is None else check_date(v)
 
-    @field_validator("frequency", mode="before")
-    @classmethod
-    def _freq_case(cls, v: Any) -> Any:
-        # letters in any case; anything else is left as written, so the error quotes what the user wrote
-        if isinstance(v, str) and v.strip().upper() in ("D", "W", "M", "Q"):
-            return v.strip().upper()
-        return v
+    _freq_case = field_validator("frequency", mode="before")(lambda cls, v: frequency_letter(v))
 
     @field_validator("errors")
     @classmethod
@@ -1086,6 +1096,8 @@ def _load_config(file: Path, check_files: bool) -> Config:
         elif etype == "literal_error":
             expected = err.get("ctx", {}).get("expected", "")
             msg = f"'{err.get('input')}' is not allowed; expected {expected}"
+            if loc and loc[-1] == "frequency":
+                msg += " (or " + ", ".join(repr(w) for w in _FREQUENCY_WORDS) + ")"
         elif etype == "union_tag_invalid":
             msg = f"'{err.get('input', {}).get('kind') if isinstance(err.get('input'), dict) else err.get('input')}' "
             msg += "is not a channel kind; expected 'email', 'folder' or 'webhook'"

@@ -66,6 +66,8 @@ def test_example_config_loads() -> None:
         ("frequency: W ", "frequency: X ", "models[0].frequency", 10, "'X' is not allowed"),
         # the value as written (not upper-cased) is quoted back
         ("frequency: W ", "frequency: fortnightly ", "models[0].frequency", 10, "'fortnightly' is not allowed"),
+        ("frequency: W ", "frequency: fortnightly ", "models[0].frequency", 10,
+         "(or 'daily', 'weekly', 'monthly', 'quarterly')"),
         ("kind: csv ", "kind: excel ", "sources[0].kind", 4, "expected 'csv', 'parquet' or 'sql'"),
         ("    period_column: week", "    perod_column: week", "sources[0].perod_column", 6, "did you mean 'period_column'"),
         ("reference: {start: 2021-01-04, end: 2023-12-25}", "reference: {start: 2021-01-04, end: 2020-12-25}",
@@ -194,3 +196,11 @@ def test_check_horizon_rejects_what_it_cannot_read(value: object) -> None:
 
     with pytest.raises(ValidationError, match="horizon"):
         CheckConfig(horizon=value)
+
+
+@pytest.mark.parametrize("written, letter", [("weekly", "W"), ("Monthly", "M"), (" QUARTERLY ", "Q"), ("d", "D")])
+def test_frequency_as_a_word_or_a_letter_in_any_case(tmp_path: Path, written: str, letter: str) -> None:
+    text = MINIMUM.replace("frequency: W ", f"frequency: '{written}' ", 1)
+    text = text.replace("period_column: week", f"period_column: week\n    frequency: '{written}'", 1)
+    cfg = load_config(write(tmp_path, text))
+    assert cfg.models[0].frequency == letter and cfg.sources[0].frequency == letter
