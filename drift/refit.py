@@ -154,7 +154,8 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
     Returns
     -------
     dict (JSON-able): model, as_of, action, epoch (the one in force), since, until, reference (what
-    :func:`accept` would set), lags, dropped, fit, current_source, coefficients, accuracy.
+    :func:`accept` would set), lags, dropped, fit, current_source, coefficients, check_effects (the refit
+    verdict's effects since the same date, when it gave that date: driver, after, se_after), accuracy.
 
     Raises
     ------
@@ -291,6 +292,15 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
         accuracy = {"window": None, "current": None, "proposed": None, "diebold_mariano": None,
                     "reason": (f"only {int(both.sum())} periods of the recent window have a one-step forecast of the "
                                f"proposal with {need} periods behind it; the comparison needs {MIN_COMPARED}")}
+    # the check's own estimate of each driver's effect since the same date (the refit verdict's before/after
+    # split: trend, season and the other terms shared with the earlier data), quoted beside the proposal's
+    # (every term re-estimated on the rows since): the two answer different questions and can differ
+    check_effects = []
+    refit_found = _verdict_action(latest, epoch, "refit")
+    if refit_found and str(refit_found[0].get("since") or "")[:10] == start_day.isoformat():
+        for e in refit_found[0].get("effects") or []:
+            if isinstance(e, Mapping) and e.get("after") is not None and e.get("se_after") is not None:
+                check_effects.append({"driver": e.get("driver"), "after": e["after"], "se_after": e["se_after"]})
     new_lags = dict(epoch.lags)
     new_lags.update({s: int(v) for s, v in (lags or {}).items()})
     dropped = [*epoch.dropped, *[s for s in drop if s not in epoch.dropped]]
@@ -304,7 +314,7 @@ def propose(cfg: Config, store: Store, name: str, *, since: date | None = None, 
         "fit": {"rows": n_ok, "regressors": k, "sigma": _num(sigma_new), "df": df_new,
                 "error_model": cur.error_model},
         "current_source": source, "current_errors": errors_source, "coefficients": coefficients,
-        "accuracy": accuracy,
+        "check_effects": check_effects, "accuracy": accuracy,
         "unit": model.unit,
     })
 
@@ -405,6 +415,12 @@ def format_proposal(p: Mapping[str, Any]) -> str:
         lines.append(f"  {c['term']:<22} {cell(c['current'], c['current_ci']):>30} "
                      f"{cell(c['proposed'], c['proposed_ci']):>30} "
                      f"{(fmt_num(c['change']) if c['change'] is not None else '-'):>10}")
+    ce = p.get("check_effects") or []
+    if ce:
+        lines.append("")
+        lines.append(f"  the check's estimate since {p['since']} (its refit verdict: trend, season and the other terms "
+                     "shared with the earlier data): "
+                     + "; ".join(f"{e['driver']} {fmt_num(e['after'])} (se {fmt_num(e['se_after'])})" for e in ce))
     acc = p["accuracy"]
     lines.append("")
     if acc.get("window"):

@@ -100,12 +100,18 @@ def test_refit_accept_and_the_next_epoch_keeps_without_repeating_the_alert(proje
     assert abs(coef["x1"]["proposed"] - B1_AFTER) < 0.1                       # truth 0.8
     assert coef["x1"]["proposed_ci"][0] <= B1_AFTER <= coef["x1"]["proposed_ci"][1]
     assert abs(coef["x1"]["current"] - 2.0) < 0.1 and abs(coef["x2"]["proposed"] - 1.5) < 0.15
+    # the check's own estimate since the same date is quoted beside it: the refit verdict's figures
+    refit_effects = next(a["effects"] for a in m["actions"] if a["action"] == "refit")
+    assert p["check_effects"] == [{"driver": e["driver"], "after": e["after"], "se_after": e["se_after"]}
+                                  for e in refit_effects]
+    assert abs(next(e["after"] for e in p["check_effects"] if e["driver"] == "x1") - B1_AFTER) < 0.1
     acc = p["accuracy"]
     assert acc["window"]["n"] >= 20
     assert acc["proposed"]["mae"] < 0.5 * acc["current"]["mae"]
     assert acc["diebold_mariano"]["pvalue"] < 0.01 and "HLN" in acc["diebold_mariano"]["method"]
     text = run("refit", "--model", "sim", cwd=project)
     assert "Nothing was changed" in text.stdout and "Diebold–Mariano" in text.stdout
+    assert f"the check's estimate since {since}" in text.stdout
     status = json.loads(run("status", "--json", cwd=project).stdout)
     assert status["epochs"]["sim"]["number"] == 1 and "refit" in {a["condition"] for a in status["open_alerts"]["sim"]}
 
