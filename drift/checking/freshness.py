@@ -19,7 +19,7 @@ import pandas as pd
 
 from drift.checking.context import _Ctx
 from drift.config import next_period, period_start
-from drift.panel import as_ns, next_due, shift_periods, week_anchor
+from drift.panel import as_ns, next_due, period_index, shift_periods, week_anchor
 from drift.verdicts import Action
 
 _NO_NS = np.empty(0, np.int64)
@@ -182,7 +182,7 @@ def _forward_feed(c: _Ctx, dr: Any, per: np.ndarray, at: np.ndarray
         covers = f"its latest {kind} covers the period starting {last.date().isoformat()}" if last is not None \
             else f"no {kind} of it is stored at all"
         # the periods it should have covered by now and does not: after its last one up to the one needed
-        missing = _periods_after(last, need, m.frequency) if last is not None and last < need else 1
+        missing = len(period_index(m, last, need)) - 1 if last is not None and last < need else 1
         limit = c.cfg.check.feed_limit
         what = "that same period" if need == cur else f"the period starting {need.date().isoformat()}"
         c.actions.append(Action("data-late", extra={
@@ -212,15 +212,6 @@ def _forward_periods(as_of: pd.Timestamp, freq: str, anchor: int, lag: int
     need_ns = int(as_ns(pd.DatetimeIndex([need]))[0])
     start_ns = int(as_ns(shift_periods(pd.DatetimeIndex([cur]), freq, 26))[0])
     return cur, need, need_ns, start_ns
-
-
-def _periods_after(last: pd.Timestamp, upto: pd.Timestamp, freq: str) -> int:
-    """How many periods follow ``last`` up to and including ``upto`` (both period starts)."""
-    n, p = 0, last
-    while p < upto and n <= 10000:
-        p = next_period(p, freq)
-        n += 1
-    return n
 
 
 def _periods_between(last: pd.Timestamp, as_of: pd.Timestamp, freq: str, delay: timedelta) -> int:
