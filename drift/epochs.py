@@ -23,7 +23,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import date, datetime, timezone
+from datetime import date, datetime
 from typing import Any
 
 import sqlalchemy as sa
@@ -246,8 +246,8 @@ def model_history(cfg: Any, store: Store, name: str) -> dict[str, Any]:
             # the epoch in force at the check date it was last seen at, among the decisions recorded by then:
             # a check run before a decision was recorded ran in the epoch before it, even at the same date
             day = r.as_of if isinstance(r.as_of, date) else None
-            seen = _utc(r.last_seen)
-            known = [e for e in eps[1:] if seen is None or e.recorded_at is None or _utc(e.recorded_at) <= seen]
+            seen = r.last_seen  # the store's UTCDateTime: aware UTC, as recorded_at
+            known = [e for e in eps[1:] if seen is None or e.recorded_at is None or e.recorded_at <= seen]
             number = in_force(model, known, day).number if day else 1
         out[index.get(number, 0)]["alerts"].append({
             "id": int(r.id), "condition": r.condition, "status": r.status, "as_of": _iso(r.as_of),
@@ -255,13 +255,6 @@ def model_history(cfg: Any, store: Store, name: str) -> dict[str, Any]:
             "closed_at": r.cleared_at.isoformat() if r.cleared_at else None,
             "acted_on": acted if isinstance(acted, dict) else None})
     return {"model": name, "epochs": out}
-
-
-def _utc(t: Any) -> datetime | None:
-    """A stored time as an aware UTC datetime (SQLite gives naive UTC), None when absent."""
-    if not isinstance(t, datetime):
-        return None
-    return t if t.tzinfo is not None else t.replace(tzinfo=timezone.utc)
 
 
 def _iso(d: Any) -> str | None:
