@@ -151,24 +151,11 @@ def _outbox(store: Store) -> dict[str, Any]:
 
 
 def _stale_feeds(store: Store) -> list[dict[str, Any]]:
-    out = []
-    for v in store.latest_verdicts(charts=False):  # the drivers only: the charts are not read
-        drivers = v["payload"].get("drivers") or []
-        items = ([{"driver": k, **d} for k, d in drivers.items() if isinstance(d, dict)]
-                 if isinstance(drivers, dict) else [d for d in drivers if isinstance(d, dict)])
-        named = set()
-        for d in items:
-            name = d.get("driver") or d.get("series") or d.get("name")
-            named.add(name)
-            if d.get("late") is True:
-                out.append({**d, "model": v["model"], "driver": name})
-        # the target's own feed is no driver: its data-late action says it
-        for a in v["payload"].get("actions") or []:
-            if isinstance(a, dict) and a.get("action") == "data-late" and a.get("driver") not in named:
-                out.append({"series": a.get("driver"), "late": True, "last_period": a.get("last_period"),
-                            "next_due": a.get("next_due"), "role": a.get("role", "target"),
-                            "model": v["model"], "driver": a.get("driver")})
-    return out
+    """Every late feed of the newest verdicts (:func:`drift.delivery.present.late_feeds`), with its model."""
+    from drift.delivery.present import late_feeds
+
+    return [{**f, "model": v["model"]} for v in store.latest_verdicts(charts=False)  # the charts are not read
+            for f in late_feeds(v["payload"])]
 
 
 def _open_alerts(store: Store) -> dict[str, list[dict[str, Any]]]:

@@ -47,7 +47,7 @@ import sqlalchemy as sa
 
 from drift.config import Config
 from drift.delivery import charts as _charts
-from drift.delivery.present import accuracy_text, driver_table
+from drift.delivery.present import accuracy_text, driver_table, late_feeds
 from drift.store import Store, alert_snoozes, alerts, outbox, runs, utcnow, verdicts
 from drift.verdicts import LABEL, ORDER, accuracy_short, fmt_num, fmt_p, label
 
@@ -310,13 +310,7 @@ def condition_words(condition: str) -> str:
 
 
 def _late(payload: Mapping[str, Any]) -> tuple[str, ...]:
-    out = [str(d.get("series")) for d in payload.get("drivers") or []
-           if isinstance(d, Mapping) and d.get("late") and d.get("series")]
-    for a in payload.get("actions") or []:
-        if (isinstance(a, Mapping) and a.get("action") == "data-late" and a.get("driver")
-                and str(a["driver"]) not in out):
-            out.append(str(a["driver"]))
-    return tuple(out)
+    return tuple(str(f["driver"]) for f in late_feeds(payload))
 
 
 def _line(row: Mapping[str, Any], previous: Mapping[str, str]) -> ModelLine:

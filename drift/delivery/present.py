@@ -107,6 +107,28 @@ def context_line(payload: Mapping[str, Any]) -> str:
     return ", ".join(bits) + "." if bits else ""
 
 
+def late_feeds(payload: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """The late feeds of a check payload, as ``drift status`` and the digest list them: each driver marked
+    ``late`` (its own entry, with ``driver`` its series name), then each other series a ``data-late`` action
+    names (the target, whose feed is no driver: ``series``, ``late``, ``last_period``, ``next_due``,
+    ``role``, ``driver``)."""
+    drivers = payload.get("drivers") or []
+    items = ([{"driver": k, **d} for k, d in drivers.items() if isinstance(d, Mapping)]
+             if isinstance(drivers, Mapping) else [d for d in drivers if isinstance(d, Mapping)])
+    out: list[dict[str, Any]] = []
+    for d in items:
+        if d.get("late") is True:
+            out.append({**d, "driver": d.get("driver") or d.get("series") or d.get("name")})
+    seen = {f["driver"] for f in out}
+    for a in payload.get("actions") or []:
+        if isinstance(a, Mapping) and a.get("action") == "data-late" and a.get("driver") \
+                and a["driver"] not in seen:
+            seen.add(a["driver"])
+            out.append({"series": a["driver"], "late": True, "last_period": a.get("last_period"),
+                        "next_due": a.get("next_due"), "role": a.get("role", "target"), "driver": a["driver"]})
+    return out
+
+
 def keep_reason(payload: Mapping[str, Any]) -> str:
     """Why a model with no action is kept: the monitors found nothing, or there was nothing to monitor yet
     (no period after the reference period has data: a new model, or a new epoch fitted up to the check)."""
