@@ -58,6 +58,9 @@ from drift.engine.tables import monitoring as _mon_table
 
 #: actions, most pressing first: a confirmed change of the relationship outranks a late feed
 PRIORITY = ("refit", "relag", "drop-driver", "data-late", "watch")
+#: half-width, in standard errors, of the 95% intervals drift shows and reasons on (a driver's recent
+#: coefficient, the refit's before/after effects): the normal 0.975 quantile, rounded as tables print it
+Z95 = 1.96
 #: the verdict of a model that could not be checked (its entry gives the ``reason``); not an action
 ERROR = "error"
 #: the verdict of a model with no action

@@ -24,7 +24,7 @@ from drift.checking.designs import _prewhiten
 from drift.config import MAX_LAG_BY_FREQ, period_length
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.panel import as_ns, build_design
-from drift.verdicts import Action, fmt_num, fmt_p, window_words
+from drift.verdicts import Z95, Action, fmt_num, fmt_p, window_words
 
 
 def _worth_batched(ctxs: list[_Ctx]) -> None:
@@ -172,7 +172,7 @@ def _drivers_and_worth(c: _Ctx) -> None:
             # whatever a recent window that straddles the break says
             brk = effects.get(s) or {}
             after, se_after = _num(brk.get("after")), _num(brk.get("se_after"))
-            since_break = after is not None and se_after is not None and abs(after) > _Z95 * se_after
+            since_break = after is not None and se_after is not None and abs(after) > Z95 * se_after
             late_action = next((a for a in c.actions if a.action == "data-late" and a.extra.get("driver") == s),
                                None)
             if late_action is not None and late_action.extra.get("missing_periods", 0) > chk.feed_limit:
@@ -206,11 +206,6 @@ def _drivers_and_worth(c: _Ctx) -> None:
                           f"{fmt_num(mae_without)} {c.model.unit} ({_refitted(window)}).")
                 c.actions.append(Action("drop-driver", reason=reason, extra={"driver": s}))
         c.drivers.append(info)
-
-
-#: the half-width, in standard errors, of the 95% intervals the report shows (recent coefficients, the
-#: refit's before/after effects)
-_Z95 = 1.96
 
 
 def _refitted(window: int) -> str:

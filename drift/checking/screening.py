@@ -23,6 +23,7 @@ from drift.checking.context import _Ctx, _list, _num, log
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.replay import h_step_errors
+from drift.verdicts import Z95
 
 #: smallest scale degrees of freedom the tables cover
 MIN_DOF = float(_mon_table.DOF[0])
@@ -187,7 +188,7 @@ def _per_model(group: list[_Ctx], Y: np.ndarray, off: np.ndarray, m: np.ndarray,
         ck = np.atleast_3d(roll.coef).transpose(2, 0, 1)[used]
         sk = np.atleast_3d(roll.se).transpose(2, 0, 1)[used]
         pos = {j: p for p, j in enumerate(used)}
-        roll_rows = (_rows(ck), _rows(ck - 1.96 * sk), _rows(ck + 1.96 * sk))
+        roll_rows = (_rows(ck), _rows(ck - Z95 * sk), _rows(ck + Z95 * sk))
     pers = [dates.of(c.design.periods) for c in group]
     mon_charts = _monitor_charts(group, off, specs, mons, levels, mon_vals, pers)
     for i, c in enumerate(group):

@@ -41,6 +41,8 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from PIL import Image
 
+from drift.verdicts import Z95
+
 log = logging.getLogger(__name__)
 
 #: chart kinds, in the order a reader meets them
@@ -389,7 +391,7 @@ def coefficient_chart(
             for x0, x1, v, se in seg:
                 ax.plot([x0, x1], [v, v], color=VERMILION, linewidth=2.0, solid_capstyle="butt")
                 if se is not None and math.isfinite(float(se)):
-                    ax.fill_between([x0, x1], v - 1.96 * float(se), v + 1.96 * float(se), color=VERMILION,
+                    ax.fill_between([x0, x1], v - Z95 * float(se), v + Z95 * float(se), color=VERMILION,
                                     alpha=0.12, linewidth=0)
             ax.axvline(at, color=VERMILION, linewidth=1.0, linestyle=":")  # type: ignore[arg-type]
             # on the side the effect moved to (away from the before line), on a light box: the rolling line,
