@@ -65,7 +65,7 @@ from drift.checking.production import (  # noqa: F401
     _logged_evidence,
     _logged_forecasts,
 )
-from drift.checking.screening import MIN_DOF, _monitor, _monitor_chart, _screen  # noqa: F401
+from drift.checking.screening import MIN_DOF, _monitor, _screen  # noqa: F401
 from drift.config import (
     Config,
     ModelConfig,

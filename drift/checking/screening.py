@@ -19,7 +19,7 @@ import pandas as pd
 from drift import engine
 from drift.checking.accuracy import _accuracy, _accuracy_block, _seasonal_naive
 from drift.checking.actions import _relationship_actions, _sentence_start, _test_words
-from drift.checking.context import _Ctx, _list, _num, log
+from drift.checking.context import _Ctx, _num, log
 from drift.engine.tables import monitoring as _mon_table
 from drift.exceptions import DriftError, InsufficientDataError
 from drift.replay import h_step_errors
@@ -346,9 +346,12 @@ def _chosen_monitor(specs: list[tuple[str, str, int | None]], mons: list[Any], v
 def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, str, int | None]],
                     mons: list[Any], levels: list[tuple[float, float]], vals: list[Any],
                     dates: list[list[str]]) -> list[tuple[str, Any] | None]:
-    """:func:`_monitor_chart` for every model of the batch: each model's (charts key, value), None when it
-    draws no monitor. The monitor is chosen per model as there; the paths and boundaries of the models
-    that draw the same monitor are rounded and turned into JSON values together (:func:`_rows`)."""
+    """The monitor chart of every model of the batch: each model's (charts key, value), None when it draws no
+    monitor. The chart is the monitor that raised the alarm (the first to cross), else the one nearest its
+    boundary (:func:`_chosen_monitor`): its path and its own boundary as the monitor computed them (read
+    from its result, never recomputed), the period where that path crossed that boundary, and the last
+    period within its horizon. The paths and boundaries of the models that draw the same monitor are
+    rounded and turned into JSON values together (:func:`_rows`)."""
     out: list[tuple[str, Any] | None] = [None] * len(group)
     chosen: dict[int, list[int]] = {}
     for i, c in enumerate(group):
@@ -378,36 +381,6 @@ def _monitor_charts(group: list[_Ctx], off: np.ndarray, specs: list[tuple[str, s
                 "path": pr[p, o:].tolist(), "boundary": br[p, o:].tolist(), "level": level,
                 "alarm_date": per[ai - o] if ai >= o else None, "horizon_end": _horizon_end(he_all[i], o, per)})
     return out
-
-
-def _monitor_chart(c: _Ctx, i: int, o: int, specs: list[tuple[str, str, int | None]], mons: list[Any],
-                   levels: list[tuple[float, float]], *, vals: list[Any] | None = None,
-                   dates: list[str] | None = None) -> None:
-    """The chart of the monitor that raised the alarm (the first to cross), else of the one nearest its
-    boundary: its path and its own boundary as the monitor computed them (read from its result, never
-    recomputed), and the period where that path crossed that boundary.
-
-    ``vals``: each monitor's (alarm indices, horizon ends, statistics, ...) as Python lists, and ``dates``
-    the model's periods as ISO dates, when the caller has them already (read from ``mons`` otherwise)."""
-    drivers_i = list(c.design.driver_columns)
-    chosen = _chosen_monitor(specs, mons, vals, i, len(drivers_i))
-    if chosen is None:
-        return
-    (name, _det, j), r, (lv, _wl) = specs[chosen], mons[chosen], levels[chosen]
-    path = np.atleast_2d(np.asarray(r.path, float))[i]
-    bound = np.atleast_2d(np.asarray(r.boundary, float))[i]
-    n = c.design.n
-    if path.size != o + n or bound.size != o + n:
-        c.charts["monitor_note"] = f"the {name} path does not line up with the periods; not drawn"
-        return
-    ai = int(np.atleast_1d(r.alarm_index)[i])
-    per = dates if dates is not None else [p.date().isoformat() for p in c.design.periods]
-    c.charts["monitor"] = {
-        "test": name, **({"driver": drivers_i[j]} if j is not None else {}),
-        "title": _sentence_start(_test_words(name, drivers_i[j] if j is not None else None)),
-        "path": _list(path[o:]), "boundary": _list(bound[o:]), "level": _num(round(float(lv), 6)),
-        "alarm_date": per[ai - o] if ai >= o else None,
-        "horizon_end": _horizon_end(np.atleast_1d(r.horizon_end)[i], o, per)}
 
 
 def _horizon_end(end: Any, o: int, per: list[str]) -> str | None:
